@@ -1,0 +1,154 @@
+"""The ``polkit`` command line.
+
+Every refusal of bad input is printed as one line naming the file and the problem,
+and the command exits non-zero; ``--debug`` shows the traceback instead.
+
+Exit status: 0 success; 1 an error writing results (disk full, read-only folder);
+2 bad input, bad options or a fit that could not run; 3 a fit that ran but did not
+converge (its results are written and marked ``"converged": false``).
+"""
+
+from __future__ import annotations
+
+import argparse
+import logging
+import sys
+import warnings
+from pathlib import Path
+
+from . import __version__
+from .errors import ConvergenceWarning, PolkitError, PolkitWarning
+
+EXIT_OK = 0
+EXIT_WRITE = 1
+EXIT_INPUT = 2
+EXIT_NOT_CONVERGED = 3
+
+
+def _add_common_fit_options(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--seed", type=int, default=None, help="root seed (recorded in the result)")
+    p.add_argument("--resume", action="store_true", help="continue from the HDF5 checkpoint in --out")
+    p.add_argument("--out", type=Path, default=None, help="output folder")
+    p.add_argument("--max-steps", type=int, default=None, help="MCMC step limit per ensemble")
+    p.add_argument("--walkers", type=int, default=None, help="walkers per ensemble")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="polkit",
+        description="Characterise exciton-polariton microcavity samples: dispersion, power "
+        "series and energy budgets with honest uncertainties.",
+    )
+    parser.add_argument("--version", action="version", version=f"polkit {__version__}")
+    parser.add_argument("--debug", action="store_true", help="show tracebacks on errors")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+    sub.required = True
+
+    p = sub.add_parser("demo", help="run the whole job on the bundled invented demo sample")
+    p.add_argument("--data", type=Path, default=None, help="demo data folder (default: bundled)")
+    p.add_argument("--out", type=Path, default=Path("polkit-out") / "demo", help="output folder")
+    p.add_argument("--seed", type=int, default=20261202)
+    p.add_argument("--quick", action="store_true", help="short chains, for a smoke run")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
+
+    p = sub.add_parser("inspect", help="describe a data file and write a quick-look PNG")
+    p.add_argument("file", type=Path)
+    p.add_argument("--png", type=Path, default=None, help="quick-look PNG (default: FILE.png beside --out)")
+    p.add_argument("--out", type=Path, default=Path("polkit-out") / "inspect")
+    p.add_argument("--series", action="store_true", help="read the file as a power series")
+    p.add_argument("--wavelength-medium", choices=["vacuum", "air"], default=None)
+
+    p = sub.add_parser("dispersion", help="fit a coupled-oscillator model to an angle-resolved map")
+    p.add_argument("map", type=Path)
+    p.add_argument("--model", choices=["two", "three"], default="two")
+    p.add_argument("--kind", choices=["emission", "reflectance"], default=None)
+    p.add_argument("--peaks-only", action="store_true", help="fit the peak table only (fast)")
+    p.add_argument("--priors", type=Path, default=None, help="TOML file of priors")
+    p.add_argument("--strict", action="store_true", help="4 ensembles, nested R-hat gate")
+    p.add_argument("--wavelength-medium", choices=["vacuum", "air"], default=None)
+    _add_common_fit_options(p)
+
+    return parser
+
+
+def _cmd_inspect(args) -> int:
+    from .data import inspect_file
+
+    png = args.png or (args.out / (args.file.name + ".png"))
+    text = inspect_file(args.file, png=png, series=args.series,
+                        wavelength_medium=args.wavelength_medium)
+    print(text)
+    print(f"quick-look figure: {png}")
+    return EXIT_OK
+
+
+def _cmd_demo(args) -> int:
+    from .demo import run_demo
+
+    return run_demo(data=args.data, out=args.out, seed=args.seed, quick=args.quick,
+                    progress=not args.quiet)
+
+
+def _cmd_dispersion(args) -> int:
+    from .workflows.dispersion import fit_dispersion
+
+    out = args.out or Path("polkit-out") / args.map.stem
+    result = fit_dispersion(
+        args.map, model=args.model, kind=args.kind, peaks_only=args.peaks_only,
+        priors=args.priors, seed=args.seed, resume=args.resume, strict=args.strict,
+        out=out, max_steps=args.max_steps, n_walkers=args.walkers, progress=not args.quiet,
+        wavelength_medium=args.wavelength_medium,
+    )
+    print(result.table())
+    print(f"results written to {out}")
+    return EXIT_OK if result.converged else EXIT_NOT_CONVERGED
+
+
+_COMMANDS = {
+    "demo": _cmd_demo,
+    "inspect": _cmd_inspect,
+    "dispersion": _cmd_dispersion,
+}
+
+
+def _one_line(exc: BaseException) -> str:
+    return " ".join(str(exc).split())
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Entry point of the ``polkit`` command; returns the exit status."""
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    logging.basicConfig(level=logging.DEBUG if args.debug else logging.WARNING,
+                        format="polkit: %(levelname)s: %(message)s")
+
+    def _show_warning(message, category, filename, lineno, file=None, line=None):
+        if issubclass(category, PolkitWarning):
+            label = "not converged" if issubclass(category, ConvergenceWarning) else "warning"
+            print(f"polkit: {label}: {_one_line(message)}", file=sys.stderr)
+        elif args.debug:
+            print(warnings.formatwarning(message, category, filename, lineno, line), file=sys.stderr)
+
+    warnings.showwarning = _show_warning
+    try:
+        status = _COMMANDS[args.command](args)
+    except PolkitError as exc:
+        if args.debug:
+            raise
+        print(f"polkit: error: {_one_line(exc)}", file=sys.stderr)
+        return EXIT_INPUT
+    except OSError as exc:
+        if args.debug:
+            raise
+        print(f"polkit: error: {_one_line(exc)}", file=sys.stderr)
+        return EXIT_WRITE
+    except KeyboardInterrupt:
+        print("polkit: interrupted; finished MCMC steps are kept in the checkpoint "
+              "(rerun with --resume)", file=sys.stderr)
+        return 130
+    return status
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())
