@@ -73,6 +73,24 @@ def test_root_count_changes_exactly_at_turning_drives(delta, gamma):
     assert list(np.isfinite(roots).sum(axis=-1)) == expected
 
 
+@pytest.mark.parametrize("ratio", [BISTABILITY_RATIO * (1 + 1e-6), 1.5, 1e3])
+def test_roots_near_turning_drives_solve_the_cubic(ratio):
+    gamma = 0.1
+    delta = ratio * gamma
+    tp = turning_points(delta, gamma)
+    eps = np.geomspace(1e-14, 1e-9, 6)
+    drives = np.concatenate([tp.drive_up * (1 - eps), tp.drive_up * (1 + eps),
+                             tp.drive_down * (1 - eps), tp.drive_down * (1 + eps)])
+    roots = blueshift_roots(delta, gamma, drives)
+    assert list(np.isfinite(roots).sum(axis=-1)) == [3] * 6 + [1] * 6 + [1] * 6 + [3] * 6
+    # Source: the cubic itself, y[(Delta - y)^2 + gamma^2/4] = F (Baas et al. 2004): relative
+    # residual at rounding level even where two roots nearly coincide.
+    for y, f in zip(roots, drives, strict=True):
+        y = y[np.isfinite(y)]
+        resid = np.abs(_cubic_response(y, delta, gamma) - f)
+        assert np.all(resid <= 1e-14 * np.maximum(f, y * delta**2))
+
+
 def test_bistability_appears_exactly_above_sqrt3_over_2():
     gamma = 0.5
     # Source: Baas et al., Phys. Rev. A 69, 023809 (2004): bistable iff Delta > (sqrt 3/2) gamma
