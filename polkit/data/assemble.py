@@ -1,0 +1,804 @@
+"""Turn a reader's raw dataset into a canonical map or series.
+
+Every reader returns a *raw* :class:`xarray.Dataset`: the file's own names, a
+``units`` attribute wherever the file gave units, and the file's metadata as
+attributes.  This module does everything that is common to all readers: it finds the
+signal and tells the axes apart (units first, names second, see
+:mod:`polkit.data.roles`), converts units (:mod:`polkit.data.units`), calibrates
+Fourier-plane pixel axes (:mod:`polkit.data.fourier`), scales spectral densities on a
+wavelength axis by the Jacobian, sorts axes ascending, masks non-finite values on
+request, and finally hands the object to :mod:`polkit.data.validate`.
+
+Spectral densities
+    Emission recorded on a wavelength grid is treated as a density on that grid (a
+    count per pixel is a count per wavelength bin), and is multiplied by
+    |d lambda / d E| (lambda^2 / hc in vacuum) so that its integral over the axis is
+    kept: integral I_E dE = integral I_lambda d lambda.  The units become
+    ``"<units> nm/eV"`` (or ``".../eV"`` when the file said ``".../nm"``) and the
+    attribute ``jacobian`` records the factor; the raw per-bin counts are
+    ``signal * E**2 / hc`` (vacuum).  Reflectance and transmission are ratios and are
+    never scaled.  Linear relabellings (meV, 1/cm) change no values.
+    ``wavelength_jacobian=False`` keeps the file's values (for noise models that need
+    raw counts).
+"""
+
+from __future__ import annotations
+
+import logging
+import re
+import warnings
+
+import numpy as np
+import xarray as xr
+
+from ..errors import DataError, DataWarning
+from . import units as U
+from .build import make_series
+from .fourier import calibrate_pixel_axis
+from .roles import SIGNAL_NAMES, axis_role
+from .schema import (
+    CARRIED_ATTRS,
+    COORD_ATTRS,
+    DENSITY_KINDS,
+    KINDS,
+    MAP_NUMBER_ATTRS,
+    MEDIA,
+    append_history,
+)
+from .validate import validate_map, validate_series
+
+__all__ = ["raw_to_map", "raw_to_series", "raw_content", "find_signal"]
+
+logger = logging.getLogger(__name__)
+
+_SPECTRAL_FIX = (
+    "accepted: "
+    + U.accepted(U.ENERGY_UNITS)
+    + ", "
+    + U.accepted(U.WAVELENGTH_UNITS)
+    + ", "
+    + U.accepted(U.WAVENUMBER_UNITS)
+)
+
+# column names of a series table -> canonical name
+_COLUMN_ALIASES = {
+    "power": "power",
+    "pump_power": "power",
+    "intensity": "intensity",
+    "integrated_intensity": "intensity",
+    "counts": "intensity",
+    "signal": "intensity",
+    "peak_energy": "peak_energy",
+    "energy": "peak_energy",
+    "peak": "peak_energy",
+    "wavelength": "peak_energy",
+    "peak_wavelength": "peak_energy",
+    "linewidth": "linewidth",
+    "fwhm": "linewidth",
+    "width": "linewidth",
+    "sweep": "sweep",
+    "direction": "sweep",
+}
+_ERROR_SUFFIXES = ("_error", "_err", "_std")
+
+
+def _warn(message: str, path, field) -> None:
+    warnings.warn(f"{path}: field '{field}': {message}", DataWarning, stacklevel=4)
+
+
+# ----------------------------------------------------------------------------- helpers
+def find_signal(raw: xr.Dataset, *, variable: str | None = None, path=None, min_ndim: int = 2):
+    """Name of the signal variable: ``variable``, a known name, or the single N-D variable."""
+    names = [str(n) for n in raw.data_vars]
+    if variable is not None:
+        if variable not in raw.data_vars:
+            raise DataError(
+                f"expected a variable {variable!r}; found variables {names}. Fix: pass one of them",
+                path=path,
+                field=variable,
+            )
+        return variable
+    lower = {n.lower(): n for n in names}
+    for cand in SIGNAL_NAMES:
+        if cand in lower and raw[lower[cand]].ndim >= min_ndim:
+            return lower[cand]
+    multi = [n for n in names if raw[n].ndim >= min_ndim]
+    if len(multi) == 1:
+        return multi[0]
+    raise DataError(
+        f"expected one signal variable ({', '.join(SIGNAL_NAMES)}) or a single "
+        f"{min_ndim}-D variable; found "
+        + (", ".join(f"{n}{tuple(raw[n].dims)}" for n in names) or "no variables")
+        + ". Fix: pass variable='...' to choose",
+        path=path,
+        field="signal",
+    )
+
+
+def raw_content(raw: xr.Dataset) -> str:
+    """``"map"``, ``"cube"`` or ``"table"``: what a raw dataset holds."""
+    try:
+        name = find_signal(raw)
+    except DataError:
+        return "table"
+    dims = raw[name].dims
+    roles = [axis_role(d, raw[d].attrs.get("units") if d in raw.variables else None) for d in dims]
+    return "cube" if "power" in roles else "map"
+
+
+def _number(value, key: str, *, path) -> float:
+    units = MAP_NUMBER_ATTRS[key][0]
+    if isinstance(value, str):
+        m = re.match(r"^\s*([-+0-9.eE]+|nan|inf)\s*(.*?)\s*$", value)
+        suffix = m.group(2) if m else None
+        if not m or (suffix and suffix not in (units, "px" if units == "pixel" else units)):
+            raise DataError(
+                f"expected a number in {units}; found {value!r}. Fix: write e.g. '{key}: 10'",
+                path=path,
+                field=key,
+            )
+        value = m.group(1)
+    try:
+        return float(value)
+    except (TypeError, ValueError):
+        raise DataError(
+            f"expected a number in {units}; found {value!r}", path=path, field=key
+        ) from None
+
+
+def _carried(raw_attrs: dict, sig_attrs: dict, *, path) -> dict:
+    merged = {**raw_attrs, **{k: v for k, v in sig_attrs.items() if k != "units"}}
+    out = {}
+    for key in CARRIED_ATTRS:
+        if key not in merged:
+            continue
+        value = merged[key]
+        if key in MAP_NUMBER_ATTRS:
+            out[key] = _number(value, key, path=path)
+        elif key == "position":
+            arr = np.asarray(value)
+            out[key] = value if isinstance(value, str) else arr.astype(float).ravel()
+        else:
+            out[key] = str(value)
+    if "masked" in merged:
+        try:
+            out["masked"] = int(merged["masked"])
+        except (TypeError, ValueError):
+            raise DataError(
+                f"expected masked = 0 or 1; found {merged['masked']!r}", path=path, field="masked"
+            ) from None
+    return out
+
+
+def _choose_medium(option, attrs: dict, *, path) -> str:
+    file_medium = attrs.get("wavelength_medium")
+    if file_medium is not None:
+        file_medium = str(file_medium).strip().lower()
+        if file_medium not in MEDIA:
+            raise DataError(
+                f"expected wavelength_medium one of {MEDIA}; found {attrs['wavelength_medium']!r}",
+                path=path,
+                field="wavelength_medium",
+            )
+    if option is None:
+        return file_medium or "vacuum"
+    if option not in MEDIA:
+        raise DataError(
+            f"expected wavelength_medium one of {MEDIA}; found {option!r}",
+            path=path,
+            field="wavelength_medium",
+        )
+    if file_medium and file_medium != option:
+        _warn(
+            f"the file says {file_medium!r} wavelengths; using {option!r} as requested",
+            path,
+            "wavelength_medium",
+        )
+    return option
+
+
+def _choose_kind(option, attrs: dict, sig_name: str, *, path) -> str:
+    kind = option if option is not None else attrs.get("kind")
+    if kind is None:
+        low = sig_name.lower()
+        kind = low if low in KINDS else "emission"
+    kind = str(kind).strip().lower()
+    if kind not in KINDS:
+        raise DataError(
+            f"expected kind one of {KINDS}; found {kind!r}. Fix: pass kind='emission' (or "
+            "'reflectance', 'transmission')",
+            path=path,
+            field="kind",
+        )
+    return kind
+
+
+def _density_units(units: str, axis_units: str) -> str:
+    suffix = f"/{axis_units}"
+    if units.endswith(suffix):
+        return units[: -len(suffix)] + "/eV"
+    return f"{units} {axis_units}/eV"
+
+
+def _coord_values(raw: xr.Dataset, dim: str, *, path) -> np.ndarray:
+    if dim not in raw.variables:
+        raise DataError(
+            f"expected coordinate values for dimension {dim!r}; found none. Fix: store the axis "
+            f"as a variable named {dim!r}",
+            path=path,
+            field=dim,
+        )
+    values = np.asarray(raw[dim].values)
+    if values.dtype.kind not in "biuf":
+        raise DataError(
+            f"expected numeric axis values; found dtype {values.dtype}. Fix: store numbers",
+            path=path,
+            field=dim,
+        )
+    return values.astype(float)
+
+
+def _float_signal(values, *, path, field) -> np.ndarray:
+    arr = np.asarray(values)
+    if arr.dtype.kind not in "biuf":
+        raise DataError(
+            f"expected numeric values; found dtype {arr.dtype}. Fix: store numbers",
+            path=path,
+            field=field,
+        )
+    return arr.astype(np.float64, copy=True)
+
+
+def _resolve_roles(raw, dims, *, allowed: list[set[str]], energy_units, angle_units, path):
+    """Units and roles per dim; ``allowed`` lists the acceptable sets of roles."""
+    units = {d: (raw[d].attrs.get("units") if d in raw.variables else None) for d in dims}
+    units = {d: (u.strip() if isinstance(u, str) and u.strip() else None) for d, u in units.items()}
+    roles = {d: axis_role(d, units[d]) for d in dims}
+    unknown = [d for d in dims if roles[d] is None]
+    if len(unknown) == 1:
+        candidates = [s - {r for r in roles.values() if r} for s in allowed if len(s) == len(dims)]
+        left = {next(iter(c)) for c in candidates if len(c) == 1}
+        if len(left) == 1:
+            roles[unknown[0]] = left.pop()
+    for opt, opt_roles, label in (
+        (energy_units, ("spectral",), "energy_units"),
+        (angle_units, ("angle", "k"), "angle_units"),
+    ):
+        if opt is None:
+            continue
+        targets = [d for d in dims if roles[d] in opt_roles]
+        if not targets:
+            raise DataError(
+                f"expected an axis for {label}={opt!r}; found dims {tuple(dims)} with roles "
+                f"{tuple(roles[d] for d in dims)}. Fix: name the axes in the file",
+                path=path,
+                field=label,
+            )
+        d = targets[0]
+        if units[d] is not None and units[d] != opt:
+            raise DataError(
+                f"expected {label}={opt!r} to agree with the file; found the file's units "
+                f"{units[d]!r} on {d!r}. Fix: drop {label}= or correct the file",
+                path=path,
+                field=d,
+            )
+        units[d] = opt
+        roles[d] = axis_role(d, opt) or roles[d]
+    got = {roles[d] for d in dims}
+    if None in got or not any(got == s for s in allowed):
+        want = " or ".join("/".join(sorted(s)) for s in allowed)
+        raise DataError(
+            f"expected axes {want}; found dims "
+            + ", ".join(f"{d} [{units[d] or 'no units'}] -> {roles[d] or 'unknown'}" for d in dims)
+            + ". Fix: name the axes (energy/wavelength, angle/k/pixel, power) and give their units "
+            "(or pass energy_units=/angle_units=)",
+            path=path,
+            field="dims",
+        )
+    for d in dims:
+        if units[d] is None:
+            label = "energy_units" if roles[d] == "spectral" else "angle_units"
+            fix = (
+                f"add a units attribute to {d!r} (e.g. 'nm'), a header '# rows: wavelength [nm]', "
+                f"or pass {label}=..."
+            )
+            if roles[d] == "power":
+                fix = f"add a units attribute to {d!r} (e.g. 'mW')"
+            raise DataError(
+                f"expected units on axis {d!r}; found none. Fix: {fix}",
+                path=path,
+                field=d,
+            )
+    return roles, units
+
+
+def _convert_grid(
+    raw, sig_name, *, allowed, path, kind, medium, energy_units, angle_units, fourier, jacobian
+):
+    """Convert a signal on (spectral, angle/k/pixel[, power]) axes; return pieces in order."""
+    var = raw[sig_name]
+    for d in var.dims:
+        if (
+            var.sizes[d] == 1
+            and axis_role(d, raw[d].attrs.get("units") if d in raw.variables else None) is None
+        ):
+            var = var.isel({d: 0})
+    dims = list(var.dims)
+    roles, units = _resolve_roles(
+        raw, dims, allowed=allowed, energy_units=energy_units, angle_units=angle_units, path=path
+    )
+    signal = _float_signal(var.values, path=path, field=sig_name)
+    sig_units = var.attrs.get("units")
+    history = []
+    extra_attrs = {}
+    coords = {}
+    target = {}
+    for axis, d in enumerate(dims):
+        values = _coord_values(raw, d, path=path)
+        role, u = roles[d], units[d]
+        if role == "spectral":
+            q = U.energy_axis_quantity(u)
+            if q is None:
+                raise DataError(
+                    f"expected units of a spectral axis; found {u!r}. Fix: {_SPECTRAL_FIX}",
+                    path=path,
+                    field=d,
+                )
+            quantity, factor = q
+            energy = U.axis_to_ev(values, quantity, factor, medium=medium, path=path, field=d)
+            step = f"{d} [{u}] -> energy [eV]"
+            if quantity == "wavelength":
+                extra_attrs["wavelength_medium"] = medium
+                step += f" ({medium} wavelengths)"
+                if kind in DENSITY_KINDS and jacobian:
+                    jac = U.wavelength_jacobian(energy, factor, medium=medium)
+                    shape = [1] * signal.ndim
+                    shape[axis] = -1
+                    signal = signal * jac.reshape(shape)
+                    if isinstance(sig_units, str) and sig_units.strip():
+                        sig_units = _density_units(sig_units.strip(), u)
+                    extra_attrs["jacobian"] = (
+                        f"signal multiplied by |d lambda/d E| in {u}/eV "
+                        "(lambda^2/hc in vacuum) to keep its integral"
+                    )
+                    step += ", density scaled by |d lambda/d E|"
+            history.append(step)
+            coords["energy"] = energy
+            target["energy"] = axis
+        elif role == "angle" and u in U.PIXEL_UNITS:
+            image = np.moveaxis(signal, axis, 0).reshape(signal.shape[axis], -1)
+            merged_attrs = {**raw.attrs, **var.attrs}
+            angle, keep, calibration = calibrate_pixel_axis(
+                values, image, fourier=fourier, attrs=merged_attrs, path=path, image_axis=0
+            )
+            signal = np.compress(keep, signal, axis=axis)
+            extra_attrs.update(calibration)
+            history.append(
+                f"{d} [pixel] -> angle [degree] by sin(theta) = NA (p - p0)/r_NA with NA "
+                f"{calibration['na']:g}, p0 {calibration['k0_pixel']:.3f} px, r_NA "
+                f"{calibration['pupil_radius_px']:.3f} px ({calibration['fourier_calibration']})"
+            )
+            coords["angle"] = angle
+            target["angle"] = axis
+        elif role == "angle":
+            coords["angle"] = U.angle_to_degree(values, u, path=path, field=d)
+            target["angle"] = axis
+            if u not in ("degree",):
+                history.append(f"{d} [{u}] -> angle [degree]")
+        elif role == "k":
+            coords["k"] = U.wavevector_to_inv_um(values, u, path=path, field=d)
+            target["k"] = axis
+            if u != "1/um":
+                history.append(f"{d} [{u}] -> k [1/um]")
+        elif role == "power":
+            coords["power"] = U.power_to_mw(values, u, path=path, field=d)
+            target["power"] = axis
+            if u != "mW":
+                history.append(f"{d} [{u}] -> power [mW]")
+    order = [n for n in ("power", "angle", "k", "energy") if n in target]
+    signal = np.transpose(signal, [target[n] for n in order])
+    for axis, name in enumerate(order):
+        c = coords[name]
+        if c.size > 1 and np.all(np.diff(c) < 0):
+            coords[name] = c[::-1]
+            signal = np.flip(signal, axis=axis)
+    return signal, order, coords, sig_units, extra_attrs, history
+
+
+def _apply_signal_units(raw, sig_name, signal_units, *, path) -> None:
+    if signal_units is None:
+        return
+    have = raw[sig_name].attrs.get("units")
+    if isinstance(have, str) and have.strip() and have.strip() != signal_units:
+        raise DataError(
+            f"expected signal_units={signal_units!r} to agree with the file; found {have!r}. "
+            "Fix: drop signal_units= or correct the file",
+            path=path,
+            field=sig_name,
+        )
+    raw[sig_name].attrs["units"] = signal_units
+
+
+def _mask(values: np.ndarray, mask_nonfinite: bool, *, path, field) -> tuple[np.ndarray, int]:
+    bad = ~np.isfinite(values)
+    n_bad = int(np.count_nonzero(bad))
+    if n_bad and mask_nonfinite:
+        values = values.copy()
+        values[bad] = np.nan
+        _warn(f"{n_bad} NaN/Inf value(s) masked as NaN (attrs masked=1)", path, field)
+    return values, n_bad
+
+
+# ----------------------------------------------------------------------------- maps
+def raw_to_map(
+    raw: xr.Dataset,
+    *,
+    path,
+    reader: str,
+    kind: str | None = None,
+    wavelength_medium: str | None = None,
+    energy_units: str | None = None,
+    angle_units: str | None = None,
+    fourier: dict | None = None,
+    mask_nonfinite: bool = False,
+    wavelength_jacobian: bool = True,
+    variable: str | None = None,
+    signal_units: str | None = None,
+) -> xr.DataArray:
+    """Build and validate a canonical map from a raw dataset (see :func:`polkit.data.load_map`)."""
+    if raw_content(raw) == "table" and variable is None:
+        raise DataError(
+            "expected a 2-D signal (a map); found a table of columns "
+            f"{[str(n) for n in raw.data_vars]}. Fix: use polkit.data.load_series for power series",
+            path=path,
+            field="signal",
+        )
+    sig_name = find_signal(raw, variable=variable, path=path)
+    _apply_signal_units(raw, sig_name, signal_units, path=path)
+    medium = _choose_medium(wavelength_medium, raw.attrs, path=path)
+    kind_ = _choose_kind(kind, {**raw.attrs, **raw[sig_name].attrs}, sig_name, path=path)
+    signal, order, coords, sig_units, extra, history = _convert_grid(
+        raw,
+        sig_name,
+        allowed=[{"spectral", "angle"}, {"spectral", "k"}],
+        path=path,
+        kind=kind_,
+        medium=medium,
+        energy_units=energy_units,
+        angle_units=angle_units,
+        fourier=fourier,
+        jacobian=wavelength_jacobian,
+    )
+    attrs = _carried(raw.attrs, raw[sig_name].attrs, path=path)
+    signal, n_bad = _mask(signal, mask_nonfinite, path=path, field=sig_name)
+    attrs.update(extra)
+    attrs.update({"units": sig_units, "kind": kind_, "source": str(path)})
+    if n_bad and mask_nonfinite:
+        attrs["masked"] = 1
+    attrs.setdefault("masked", 0)
+    attrs = append_history(
+        attrs, f"loaded {path} ({reader} reader): " + "; ".join(history or ["no conversion"])
+    )
+    adim = order[0]
+    da = xr.DataArray(
+        signal,
+        dims=tuple(order),
+        coords={n: (n, coords[n], dict(COORD_ATTRS[n])) for n in order},
+        attrs=attrs,
+        name="signal",
+    )
+    logger.info("loaded map %s: %s x energy, %s", path, adim, attrs["units"])
+    return validate_map(da, path=path)
+
+
+# ----------------------------------------------------------------------------- series
+def _canonical_column(name: str) -> tuple[str, bool] | None:
+    key = name.lower()
+    for suffix in _ERROR_SUFFIXES:
+        if key.endswith(suffix) and key[: -len(suffix)] in _COLUMN_ALIASES:
+            return _COLUMN_ALIASES[key[: -len(suffix)]], True
+    if key in _COLUMN_ALIASES:
+        return _COLUMN_ALIASES[key], False
+    return None
+
+
+def _table_columns(raw: xr.Dataset, *, path) -> dict[str, xr.DataArray]:
+    columns = {}
+    dims = set()
+    for name in list(raw.data_vars) + [c for c in raw.coords]:
+        var = raw[name]
+        if var.ndim != 1:
+            raise DataError(
+                f"expected 1-D table columns; found {name!r} with dims {var.dims}. Fix: store a "
+                "table of columns, or a spectra cube with power and energy axes",
+                path=path,
+                field=str(name),
+            )
+        dims.add(var.dims[0])
+        columns[str(name)] = var
+    if len(dims) > 1:
+        raise DataError(
+            f"expected columns on one dimension; found dims {sorted(map(str, dims))}",
+            path=path,
+            field="file",
+        )
+    return columns
+
+
+def _require_units(var, name, *, path, example) -> str:
+    u = var.attrs.get("units")
+    if not isinstance(u, str) or not u.strip():
+        raise DataError(
+            f"expected units for column {name!r}; found none. Fix: write the header as "
+            f"'{name} [{example}]' (or set a 'units' attribute)",
+            path=path,
+            field=name,
+        )
+    return u.strip()
+
+
+def _numeric(var, name, *, path) -> np.ndarray:
+    return _float_signal(var.values, path=path, field=name)
+
+
+def _table_to_series(raw, *, path, reader, medium, mask_nonfinite) -> xr.Dataset:
+    columns = _table_columns(raw, path=path)
+    found: dict[tuple[str, bool], str] = {}
+    extras = {}
+    for name in columns:
+        canon = _canonical_column(name)
+        if canon is None:
+            extras[name] = columns[name]
+            continue
+        if canon in found:
+            raise DataError(
+                f"expected one column for {canon[0]}{' error' if canon[1] else ''}; found both "
+                f"{found[canon]!r} and {name!r}. Fix: remove one",
+                path=path,
+                field=name,
+            )
+        found[canon] = name
+    for required, example in (("power", "mW"), ("intensity", "counts")):
+        if (required, False) not in found:
+            raise DataError(
+                f"expected a column {required!r}; found columns {list(columns)}. Fix: add a column "
+                f"'{required} [{example}]'",
+                path=path,
+                field=required,
+            )
+
+    def col(canon, err=False):
+        name = found.get((canon, err))
+        return (name, columns[name]) if name else (None, None)
+
+    history = []
+    pname, pvar = col("power")
+    punits = _require_units(pvar, pname, path=path, example="mW")
+    power = U.power_to_mw(_numeric(pvar, pname, path=path), punits, path=path, field=pname)
+    if punits != "mW":
+        history.append(f"{pname} [{punits}] -> power [mW]")
+    iname, ivar = col("intensity")
+    iunits = _require_units(ivar, iname, path=path, example="counts")
+    arrays = {"intensity": _numeric(ivar, iname, path=path)}
+    ename, evar = col("intensity", True)
+    if evar is not None:
+        eunits = _require_units(evar, ename, path=path, example=iunits)
+        if eunits != iunits:
+            raise DataError(
+                f"expected the intensity error in the intensity's units {iunits!r}; "
+                f"found {eunits!r}",
+                path=path,
+                field=ename,
+            )
+        arrays["intensity_error"] = _numeric(evar, ename, path=path)
+
+    peak_wavelength = None  # (quantity factor) when the peak came as a wavelength
+    name, var = col("peak_energy")
+    if var is not None:
+        u = _require_units(var, name, path=path, example="eV")
+        q = U.energy_axis_quantity(u)
+        if q is None:
+            raise DataError(
+                f"expected units of a photon energy or wavelength; found {u!r}. "
+                f"Fix: {_SPECTRAL_FIX}",
+                path=path,
+                field=name,
+            )
+        values = _numeric(var, name, path=path)
+        energy = U.axis_to_ev(values, *q, medium=medium, path=path, field=name)
+        arrays["peak_energy"] = energy
+        if q[0] == "wavelength":
+            peak_wavelength = q[1]
+            history.append(f"{name} [{u}, {medium}] -> peak_energy [eV]")
+        name_e, var_e = col("peak_energy", True)
+        if var_e is not None:
+            ue = _require_units(var_e, name_e, path=path, example=u)
+            qe = U.energy_axis_quantity(ue)
+            err = _numeric(var_e, name_e, path=path)
+            if qe is not None and qe[0] == "energy":
+                arrays["peak_energy_error"] = err * qe[1]
+            elif qe is not None and qe[0] == "wavelength" and peak_wavelength is not None:
+                jac = U.wavelength_jacobian(energy, qe[1], medium=medium)
+                arrays["peak_energy_error"] = err / jac
+            else:
+                raise DataError(
+                    f"expected the peak error in energy units (or in the wavelength units of the "
+                    f"peak column); found {ue!r}",
+                    path=path,
+                    field=name_e,
+                )
+    for canon in ("linewidth",):
+        for err in (False, True):
+            name, var = col(canon, err)
+            if var is None:
+                continue
+            u = _require_units(var, name, path=path, example="meV")
+            values = _numeric(var, name, path=path)
+            q = U.energy_axis_quantity(u)
+            out_name = canon + ("_error" if err else "")
+            if q is not None and q[0] == "energy":
+                arrays[out_name] = values * q[1] * 1e3
+            elif q is not None and q[0] == "wavelength":
+                if peak_wavelength is None:
+                    raise DataError(
+                        f"expected a peak wavelength column to convert a width in {u!r} to meV; "
+                        "found none. Fix: add the peak column or give widths in meV",
+                        path=path,
+                        field=name,
+                    )
+                jac = U.wavelength_jacobian(arrays["peak_energy"], q[1], medium=medium)
+                arrays[out_name] = values / jac * 1e3
+                history.append(f"{name} [{u}] -> {out_name} [meV] at the peak wavelength")
+            else:
+                raise DataError(
+                    f"expected linewidth units {U.accepted(U.LINEWIDTH_UNITS)} (or a wavelength "
+                    f"unit with a peak wavelength column); found {u!r}",
+                    path=path,
+                    field=name,
+                )
+    sweep = None
+    name, var = col("sweep")
+    if var is not None:
+        raw_labels = np.asarray(var.values)
+        if raw_labels.dtype.kind not in "SUO":
+            raise DataError(
+                f"expected 'up'/'down' labels; found values of dtype {raw_labels.dtype}",
+                path=path,
+                field=name,
+            )
+        sweep = np.array([str(s).strip().lower() for s in raw_labels.ravel()], dtype=str)
+    extra_vars = {}
+    for name, var in extras.items():
+        arr = np.asarray(var.values)
+        u = var.attrs.get("units")
+        if arr.dtype.kind not in "biuf" or not (isinstance(u, str) and u.strip()):
+            _warn(
+                "column not used by polkit and without units (or not numeric): dropped",
+                path,
+                name,
+            )
+            continue
+        extra_vars[name] = (arr.astype(float), u.strip())
+    attrs = _carried(raw.attrs, {}, path=path)
+    n_masked = 0
+    for key in list(arrays):
+        arrays[key], n_bad = _mask(arrays[key], mask_nonfinite, path=path, field=key)
+        n_masked += n_bad if mask_nonfinite else 0
+    if not np.all(np.isfinite(power)):
+        raise DataError(
+            "expected a finite power in every row; found NaN/Inf (or an empty cell). Fix: fill in "
+            "every power",
+            path=path,
+            field=pname,
+        )
+    attrs["masked"] = 1 if n_masked else int(attrs.get("masked", 0))
+    if "peak_energy" in arrays and peak_wavelength is not None:
+        attrs["wavelength_medium"] = medium
+    attrs["source"] = str(path)
+    attrs = append_history(
+        attrs, f"loaded {path} ({reader} reader): " + "; ".join(history or ["no conversion"])
+    )
+    ds = make_series(
+        power,
+        arrays.pop("intensity"),
+        units=iunits,
+        sweep=sweep,
+        extra_variables=extra_vars,
+        **arrays,
+        **attrs,
+    )
+    return ds
+
+
+def _cube_to_series(
+    raw,
+    *,
+    path,
+    reader,
+    medium,
+    energy_units,
+    angle_units,
+    fourier,
+    mask_nonfinite,
+    jacobian,
+    variable,
+    signal_units,
+) -> xr.Dataset:
+    sig_name = find_signal(raw, variable=variable, path=path)
+    _apply_signal_units(raw, sig_name, signal_units, path=path)
+    kind_ = _choose_kind(None, {**raw.attrs, **raw[sig_name].attrs}, sig_name, path=path)
+    signal, order, coords, sig_units, extra, history = _convert_grid(
+        raw,
+        sig_name,
+        allowed=[{"power", "spectral"}, {"power", "spectral", "angle"}, {"power", "spectral", "k"}],
+        path=path,
+        kind=kind_,
+        medium=medium,
+        energy_units=energy_units,
+        angle_units=angle_units,
+        fourier=fourier,
+        jacobian=jacobian,
+    )
+    if not isinstance(sig_units, str) or not sig_units.strip():
+        raise DataError(
+            f"expected units on the signal {sig_name!r}; found none. Fix: add a units attribute",
+            path=path,
+            field=sig_name,
+        )
+    attrs = _carried(raw.attrs, raw[sig_name].attrs, path=path)
+    signal, n_bad = _mask(signal, mask_nonfinite, path=path, field=sig_name)
+    attrs.update(extra)
+    attrs.update({"kind": kind_, "source": str(path)})
+    attrs["masked"] = 1 if (n_bad and mask_nonfinite) else int(attrs.get("masked", 0))
+    attrs = append_history(
+        attrs, f"loaded {path} ({reader} reader): " + "; ".join(history or ["no conversion"])
+    )
+    ds = xr.Dataset(
+        {"intensity": (tuple(order), signal, {"units": sig_units.strip()})},
+        coords={n: (n, coords[n], dict(COORD_ATTRS[n])) for n in order},
+        attrs=attrs,
+    )
+    return validate_series(ds, path=path)
+
+
+def raw_to_series(
+    raw: xr.Dataset,
+    *,
+    path,
+    reader: str,
+    wavelength_medium: str | None = None,
+    energy_units: str | None = None,
+    angle_units: str | None = None,
+    fourier: dict | None = None,
+    mask_nonfinite: bool = False,
+    wavelength_jacobian: bool = True,
+    variable: str | None = None,
+    signal_units: str | None = None,
+) -> xr.Dataset:
+    """Build and validate a canonical series from a raw dataset (see ``load_series``)."""
+    medium = _choose_medium(wavelength_medium, raw.attrs, path=path)
+    content = raw_content(raw)
+    if content == "map":
+        raise DataError(
+            "expected a power series (a table with a power column, or a cube with a power axis); "
+            "found a 2-D map without a power axis. Fix: use polkit.data.load_map",
+            path=path,
+            field="power",
+        )
+    if content == "cube":
+        return _cube_to_series(
+            raw,
+            path=path,
+            reader=reader,
+            medium=medium,
+            energy_units=energy_units,
+            angle_units=angle_units,
+            fourier=fourier,
+            mask_nonfinite=mask_nonfinite,
+            jacobian=wavelength_jacobian,
+            variable=variable,
+            signal_units=signal_units,
+        )
+    return _table_to_series(
+        raw, path=path, reader=reader, medium=medium, mask_nonfinite=mask_nonfinite
+    )

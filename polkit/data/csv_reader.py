@@ -1,0 +1,163 @@
+"""CSV tables whose header cells carry units in brackets.
+
+Example (an invented up/down sweep)::
+
+    # sample: invented demo cavity; temperature: 10
+    power [mW],intensity [counts],peak_energy [eV],linewidth [meV],sweep
+    0.5,120,1.4521,0.31,up
+    1.0,260,1.4523,0.32,up
+
+The first non-comment line is the header; ``#`` lines anywhere are comments (and may
+carry ``key: value`` metadata).  A UTF-8 byte-order mark and CRLF line ends are fine.
+The delimiter is a tab, comma or semicolon, decided from the header line.  The column
+``sweep`` holds text; every other cell must be a number with a decimal point (an
+empty cell is a missing value).  Decimal commas and unparsable cells are refused with
+the line and column named.
+
+The reader returns a raw table (dim ``row``); :mod:`polkit.data.assemble` turns it
+into the canonical series.
+"""
+
+from __future__ import annotations
+
+import csv
+import logging
+from pathlib import Path
+
+import numpy as np
+import xarray as xr
+
+from ..errors import DataError
+from .text import (
+    decode_text,
+    parse_header_name,
+    parse_metadata,
+    parse_number,
+    split_comments,
+)
+
+__all__ = ["read", "TEXT_COLUMNS"]
+
+logger = logging.getLogger(__name__)
+
+#: columns that hold text rather than numbers
+TEXT_COLUMNS = ("sweep",)
+
+
+def _delimiter(header: str) -> str:
+    for d in ("\t", ",", ";"):
+        if d in header:
+            return d
+    return ","
+
+
+def _cells(line: str, delimiter: str, *, path, number: int) -> list[str]:
+    try:
+        return next(csv.reader([line], delimiter=delimiter, strict=False))
+    except (csv.Error, StopIteration) as exc:
+        raise DataError(
+            f"expected a delimited row at line {number}; found unreadable text ({exc}). "
+            "Fix: correct the quoting of that line",
+            path=path,
+            field="file",
+        ) from None
+
+
+def read(path, *, delimiter: str | None = None) -> xr.Dataset:
+    """Read a CSV table into a raw table on dim ``row``.
+
+    Parameters
+    ----------
+    path
+        The file.
+    delimiter
+        Force a delimiter instead of detecting it from the header line.
+
+    Returns
+    -------
+    xarray.Dataset
+        One variable per column (``units`` attribute from the brackets), the comment
+        metadata as attributes.
+
+    Raises
+    ------
+    DataError
+        For empty files, bad headers, ragged rows, decimal commas and bad cells.
+    """
+    data = Path(path).read_bytes()
+    text = decode_text(data, path=path)
+    comments, lines = split_comments(text)
+    if not lines:
+        raise DataError(
+            "expected a header line and data rows; found only comments. Fix: check the export",
+            path=path,
+            field="file",
+        )
+    header_number, header_line = lines[0]
+    delim = delimiter or _delimiter(header_line)
+    header = _cells(header_line, delim, path=path, number=header_number)
+    while header and not header[-1].strip():
+        header.pop()
+    if not header:
+        raise DataError(
+            f"expected column names on line {header_number}; found an empty header. "
+            "Fix: add a header such as 'power [mW],intensity [counts]'",
+            path=path,
+            field="header",
+        )
+    names: list[str] = []
+    units: list[str | None] = []
+    for cell in header:
+        name, unit = parse_header_name(cell, path=path, field=cell.strip() or "header")
+        if name in names:
+            raise DataError(
+                f"expected distinct column names; found {name!r} twice. Fix: rename one column",
+                path=path,
+                field=name,
+            )
+        names.append(name)
+        units.append(unit)
+    rows = lines[1:]
+    if not rows:
+        raise DataError(
+            "expected data rows below the header; found none. Fix: check the export",
+            path=path,
+            field="file",
+        )
+    columns: list[list[str]] = [[] for _ in names]
+    for number, line in rows:
+        cells = _cells(line, delim, path=path, number=number)
+        while len(cells) > len(names) and not cells[-1].strip():
+            cells.pop()
+        if len(cells) != len(names):
+            hint = (
+                " (decimal commas split numbers into extra cells: export with '.' as "
+                "decimal separator)"
+                if len(cells) > len(names) and delim == ","
+                else ""
+            )
+            raise DataError(
+                f"expected {len(names)} cells at line {number} (one per header column); "
+                f"found {len(cells)}.{hint} Fix: make every row match the header",
+                path=path,
+                field="row",
+            )
+        for i, cell in enumerate(cells):
+            columns[i].append(cell)
+    variables = {}
+    for name, unit, cells in zip(names, units, columns, strict=True):
+        if name in TEXT_COLUMNS:
+            values = np.array([c.strip() for c in cells], dtype=str)
+        else:
+            values = np.array(
+                [
+                    parse_number(c, path=path, line=line_number, column=name)
+                    for c, (line_number, _) in zip(cells, rows, strict=True)
+                ],
+                dtype=float,
+            )
+        attrs = {"units": unit} if unit else {}
+        variables[name] = xr.Variable(("row",), values, attrs)
+    meta = parse_metadata(comments)
+    logger.debug("read %d rows x %d columns from %s", len(rows), len(names), path)
+    return xr.Dataset(variables, attrs=meta)

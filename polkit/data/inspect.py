@@ -1,0 +1,189 @@
+"""Describe a data file in a few readable lines, with an optional quick-look PNG."""
+
+from __future__ import annotations
+
+import logging
+import warnings
+
+import numpy as np
+import xarray as xr
+
+from ..io import save_figure
+
+__all__ = ["inspect_file", "describe"]
+
+logger = logging.getLogger(__name__)
+
+
+def _range(values, units: str) -> str:
+    v = np.asarray(values, dtype=float)
+    v = v[np.isfinite(v)]
+    if v.size == 0:
+        return "no finite values"
+    text = f"{v.min():.6g} .. {v.max():.6g} {units}".rstrip()
+    return text
+
+
+def _axis_line(da_or_ds, dim: str) -> str:
+    c = da_or_ds[dim]
+    units = c.attrs.get("units", "")
+    line = f"  {dim}: {c.size} values, {_range(c.values, units)}"
+    if c.size > 1:
+        d = np.diff(np.asarray(c.values, dtype=float))
+        line += f", step {np.median(d):.4g} {units}"
+        if not np.allclose(d, d[0], rtol=1e-6, atol=0):
+            line += " (non-uniform)"
+    return line
+
+
+def _attr_lines(attrs: dict, skip=("history", "units", "source")) -> list[str]:
+    lines = []
+    for key in sorted(attrs):
+        if key in skip:
+            continue
+        value = attrs[key]
+        if isinstance(value, np.ndarray):
+            value = np.array2string(value, precision=6)
+        lines.append(f"  {key}: {value}")
+    return lines
+
+
+def describe(obj: xr.DataArray | xr.Dataset) -> list[str]:
+    """Readable lines describing a canonical map or series."""
+    lines = []
+    if isinstance(obj, xr.DataArray):
+        lines.append(f"content: {obj.attrs.get('kind', '?')} map")
+        lines.append("dims: " + " x ".join(f"{d} ({obj.sizes[d]})" for d in obj.dims))
+        lines += [_axis_line(obj, d) for d in obj.dims]
+        v = obj.values
+        n_nan = int(np.isnan(v).sum())
+        lines.append(
+            f"signal [{obj.attrs.get('units', '')}]: min {np.nanmin(v):.6g}, median "
+            f"{np.nanmedian(v):.6g}, max {np.nanmax(v):.6g}; masked pixels {n_nan}"
+        )
+    else:
+        inten = obj["intensity"]
+        cube = "energy" in inten.dims
+        lines.append("content: power series " + ("(spectra cube)" if cube else "(table)"))
+        lines.append("dims: " + " x ".join(f"{d} ({obj.sizes[d]})" for d in inten.dims))
+        if cube:
+            lines += [_axis_line(obj, d) for d in inten.dims]
+        else:
+            lines.append(
+                f"  power: {obj['power'].size} values, {_range(obj['power'].values, 'mW')}"
+            )
+            if "sweep" in obj.variables:
+                labels, counts = np.unique(
+                    np.asarray(obj["sweep"].values, dtype=str), return_counts=True
+                )
+                lines.append(
+                    "  sweep: "
+                    + ", ".join(f"{n} {lab}" for lab, n in zip(labels, counts, strict=True))
+                )
+        for name in obj.data_vars:
+            var = obj[name]
+            lines.append(
+                f"variable {name} [{var.attrs.get('units', '')}]: {_range(var.values, '')}"
+            )
+    attr_lines = _attr_lines(dict(obj.attrs))
+    if attr_lines:
+        lines.append("attributes:")
+        lines += attr_lines
+    history = obj.attrs.get("history")
+    if history:
+        lines.append("history:")
+        lines += [f"  {h}" for h in str(history).splitlines()]
+    return lines
+
+
+def _figure(obj):
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=(6.0, 4.5))
+    FigureCanvasAgg(fig)
+    ax = fig.add_subplot()
+    if isinstance(obj, xr.DataArray):
+        dim = obj.dims[0]
+        mesh = ax.pcolormesh(
+            obj[dim].values, obj["energy"].values, obj.values.T, shading="auto", cmap="magma"
+        )
+        fig.colorbar(mesh, ax=ax, label=f"signal [{obj.attrs.get('units', '')}]")
+        ax.set_xlabel(f"{obj[dim].attrs.get('long_name', dim)} [{obj[dim].attrs['units']}]")
+        ax.set_ylabel("photon energy [eV]")
+        ax.set_title(f"{obj.attrs.get('kind', '')} map")
+    else:
+        inten = obj["intensity"]
+        units = inten.attrs.get("units", "")
+        if "energy" in inten.dims:
+            y = inten.sum(dim=[d for d in inten.dims if d != "power"], skipna=True).values
+            groups = [("integrated spectra", obj["power"].values, y)]
+        elif "sweep" in obj.variables:
+            sweep = np.asarray(obj["sweep"].values, dtype=str)
+            groups = [
+                (f"{lab} sweep", obj["power"].values[sweep == lab], inten.values[sweep == lab])
+                for lab in ("up", "down")
+                if np.any(sweep == lab)
+            ]
+        else:
+            groups = [("intensity", obj["power"].values, inten.values)]
+        for label, p, y in groups:
+            keep = (p > 0) & (y > 0) & np.isfinite(y)
+            ax.loglog(p[keep], y[keep], "o-", ms=3, label=label)
+        ax.set_xlabel("pump power [mW]")
+        ax.set_ylabel(f"intensity [{units}]")
+        ax.legend()
+        ax.set_title("power series")
+    return fig
+
+
+def inspect_file(path, *, png=None, **load_options) -> str:
+    """Describe a data file: kind, dims, ranges, units, attributes and warnings.
+
+    Parameters
+    ----------
+    path
+        Any file :func:`polkit.data.load_map` or :func:`polkit.data.load_series` reads.
+    png
+        When given, a quick-look figure is written there atomically: the map as
+        angle vs energy (pcolormesh), or the series as intensity vs power (log-log).
+    **load_options
+        Passed to the loader (``energy_units=``, ``fourier=`` ...).
+
+    Returns
+    -------
+    str
+        A multi-line description.
+
+    Raises
+    ------
+    DataError
+        When the file cannot be loaded (the message says why).
+    """
+    from . import load_map, load_series
+    from .assemble import raw_content
+    from .registry import read_raw
+
+    reader_options = {
+        k: load_options.pop(k) for k in ("rows", "columns", "delimiter") if k in load_options
+    }
+    raw, reader = read_raw(path, load_options.pop("reader", None), **reader_options)
+    content = raw_content(raw)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        if content == "map":
+            obj = load_map(path, reader=reader, **load_options, **reader_options)
+        else:
+            obj = load_series(path, reader=reader, **load_options, **reader_options)
+    lines = [f"file: {path}", f"reader: {reader}"]
+    lines += describe(obj)
+    if caught:
+        lines.append("warnings:")
+        lines += [f"  {w.category.__name__}: {w.message}" for w in caught]
+    else:
+        lines.append("warnings: none")
+    if png is not None:
+        fig = _figure(obj)
+        save_figure(png, fig)
+        lines.append(f"quick-look figure: {png}")
+    return "\n".join(lines)

@@ -1,0 +1,117 @@
+"""Choose a reader for a file from its content (and suffix), or by name.
+
+Binary files are recognised by their first bytes: HDF5/netCDF-4 and classic netCDF
+go to the ``netcdf`` reader, zip archives to the ``npz`` reader.  A text file whose
+first non-comment line holds names is a ``csv`` table; one whose first line holds
+only numbers is a ``matrix``.  A suffix that promises a binary format the content
+does not have is refused rather than parsed as text.
+"""
+
+from __future__ import annotations
+
+import inspect
+import os
+from collections.abc import Callable
+from pathlib import Path
+
+import xarray as xr
+
+from ..errors import ConfigError, DataError
+from . import csv_reader, matrix_reader, netcdf_reader, npz_reader
+from .text import decode_text, split_comments
+
+__all__ = ["READERS", "choose_reader", "read_raw"]
+
+#: reader name -> function(path, **options) -> raw xarray.Dataset
+READERS: dict[str, Callable[..., xr.Dataset]] = {
+    "netcdf": netcdf_reader.read,
+    "csv": csv_reader.read,
+    "matrix": matrix_reader.read,
+    "npz": npz_reader.read,
+}
+
+_NETCDF_SUFFIXES = {".nc", ".nc4", ".cdf", ".h5", ".hdf5", ".hdf", ".he5"}
+_ZIP_MAGIC = b"PK\x03\x04"
+
+
+def choose_reader(path, reader: str | None = None) -> str:
+    """Name of the reader for ``path``.
+
+    Raises
+    ------
+    DataError
+        For missing or empty files, unknown reader names, and suffixes that
+        contradict the content.
+    """
+    p = Path(path)
+    if reader is not None:
+        if reader not in READERS:
+            raise DataError(
+                f"expected reader one of {sorted(READERS)}; found {reader!r}",
+                path=path,
+                field="reader",
+            )
+    if not p.is_file():
+        raise DataError(
+            "expected an existing file; found "
+            + ("a folder" if p.is_dir() else "nothing at this path")
+            + ". Fix: check the path",
+            path=path,
+            field="file",
+        )
+    if os.path.getsize(p) == 0:
+        raise DataError(
+            "expected data; found an empty file (0 bytes). Fix: check the export",
+            path=path,
+            field="file",
+        )
+    if reader is not None:
+        return reader
+    with open(p, "rb") as fh:
+        head = fh.read(8)
+    suffix = p.suffix.lower()
+    if head == netcdf_reader.HDF5_MAGIC or head.startswith(netcdf_reader.CDF_MAGICS):
+        return "netcdf"
+    if head.startswith(_ZIP_MAGIC):
+        return "npz"
+    if suffix in _NETCDF_SUFFIXES or suffix == ".npz":
+        kind = "netCDF/HDF5" if suffix != ".npz" else ".npz (zip)"
+        raise DataError(
+            f"expected a {kind} file as its suffix says; found content starting with {head!r}. "
+            "Fix: check the file, or pass reader= to read it as another format",
+            path=path,
+            field="file",
+        )
+    text = decode_text(p.read_bytes(), path=path)
+    _, lines = split_comments(text)
+    if not lines:
+        raise DataError(
+            "expected data lines; found only comments or blank lines. Fix: check the export",
+            path=path,
+            field="file",
+        )
+    return "matrix" if matrix_reader.looks_like_matrix(lines[0][1]) else "csv"
+
+
+def read_raw(path, reader: str | None = None, **options) -> tuple[xr.Dataset, str]:
+    """Read ``path`` with the chosen reader; return the raw dataset and the reader's name.
+
+    Raises
+    ------
+    ConfigError
+        For options the chosen reader does not take.
+    """
+    name = choose_reader(path, reader)
+    func = READERS[name]
+    accepted = [
+        p.name for p in inspect.signature(func).parameters.values() if p.kind is p.KEYWORD_ONLY
+    ]
+    unknown = sorted(set(options) - set(accepted))
+    if unknown:
+        raise ConfigError(
+            f"expected options of the {name} reader ({', '.join(accepted) or 'none'}); found "
+            f"{', '.join(unknown)}. Fix: drop them or choose another reader=",
+            path=path,
+            key=unknown[0],
+        )
+    return func(path, **options), name
