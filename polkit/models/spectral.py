@@ -898,12 +898,21 @@ def project_linear(
 
     if isinstance(y, WeightedMap):
         data = y
+        found = data.shape
     else:
-        data = prepare_map(y, inv_var, background=background, energy_ev=energy_ev)
-    if data.shape != (n_a, n_e):
+        y = np.asarray(y, dtype=float)
+        found = y.shape
+    if found != (n_a, n_e):
         raise DataError(
             f"expected the map to have shape (in-plane, energy) = ({n_a}, {n_e}) like the "
-            f"basis, found {data.shape}. Build the basis on the map's own axes.", field="y")
+            f"basis, found {found}. Build the basis on the map's own axes.", field="y")
+    if not isinstance(y, WeightedMap):
+        data = prepare_map(y, inv_var, background=background, energy_ev=energy_ev)
+    elif (data.energy_ev is not None and isinstance(basis, MapBasis)
+          and not np.allclose(data.energy_ev, basis.energy_ev, rtol=0, atol=1e-12)):
+        raise DataError("expected the prepared map and the basis to share one energy axis, "
+                        "found different axes. Prepare the map with the basis's energies.",
+                        field="energy_ev")
     m = data.columns.shape[1]
     sw, rhs = data.sqrt_weight, data.weighted_rhs
 
