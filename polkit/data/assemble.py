@@ -52,7 +52,7 @@ __all__ = ["raw_to_map", "raw_to_series", "raw_content", "find_signal"]
 logger = logging.getLogger(__name__)
 
 _SPECTRAL_FIX = (
-    "accepted: "
+    "write the units with one of "
     + U.accepted(U.ENERGY_UNITS)
     + ", "
     + U.accepted(U.WAVELENGTH_UNITS)
