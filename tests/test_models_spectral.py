@@ -162,12 +162,17 @@ def test_disorder_tends_to_lorentzian_model():
     np.testing.assert_allclose(dis, lor, atol=1e-5 * lor.max())
 
 
-def test_emission_branches_sum_to_photon_spectral_function():
+@pytest.mark.parametrize("excitons", [1, 2])
+def test_emission_branches_sum_to_photon_spectral_function(excitons):
     # Source: A_C = -Im G_CC / pi = sum_b B_b (partial fractions; DESIGN notes section 4)
-    e_c = cavity_energy(TRUTH["e_c0"], TRUTH["n_eff"], angle_deg=ANGLES)
-    kw = {k: TRUTH[k] for k in ("e_x", "g", "gamma_c", "gamma_x")}
+    truth = dict(TRUTH)
+    if excitons == 2:
+        truth.update(e_x=[1.530, 1.537], g=[0.0017, 0.0011], gamma_x=[0.0004, 0.0008])
+    e_c = cavity_energy(truth["e_c0"], truth["n_eff"], angle_deg=ANGLES)
+    kw = {k: truth[k] for k in ("e_x", "g", "gamma_c", "gamma_x")}
     for sigma in (None, 0.0009):
-        basis = np.asarray(emission_basis(ANGLES, ENERGIES, **TRUTH, sigma_x=sigma))
+        basis = np.asarray(emission_basis(ANGLES, ENERGIES, **truth, sigma_x=sigma))
+        assert basis.shape[1] == excitons + 1
         a_c = photon_spectral_function(ENERGIES, e_c[:, None], **kw, sigma_x=sigma)
         np.testing.assert_allclose(basis.sum(axis=1), a_c, rtol=1e-9, atol=1e-9 * a_c.max())
 
@@ -293,6 +298,28 @@ def test_known_amplitudes_are_recovered_from_a_synthetic_map():
     np.testing.assert_allclose(sim.components.sum(axis=1) + sim.background, sim.signal)
 
 
+def test_physics_parameters_are_recovered_by_minimising_projected_chi2():
+    # Source: simulated data with known truth (noiseless): minimising the projected
+    # chi^2 over the six physics parameters alone (scipy.optimize.minimize, Nelder-Mead)
+    # from a start 0.05-0.5 meV away must land on the truth
+    occ = np.column_stack([1.0 + 0.02 * ANGLES, 0.3 + 0.01 * np.abs(ANGLES)])
+    sim = simulate_map(ANGLES, ENERGIES, **TRUTH, amplitudes=occ, background=0.2)
+    prepared = prepare_map(sim.signal, 1.0)
+    names = list(TRUTH)
+    truth = np.array([TRUTH[k] for k in names])
+    scale = np.array([1e-3, 0.1, 1e-3, 1e-4, 1e-4, 1e-4])
+
+    def chi2(z):
+        params = dict(zip(names, truth + z * scale, strict=True))
+        return float(project_linear(prepared, None, emission_basis(ANGLES, ENERGIES, **params)))
+
+    start = np.array([0.5, 0.5, -0.4, 0.6, 0.5, -0.5])
+    res = optimize.minimize(chi2, start, method="Nelder-Mead",
+                            options=dict(xatol=1e-7, fatol=1e-14, maxfev=20000))
+    assert chi2(start) > 1e6 * max(res.fun, 1e-12)
+    np.testing.assert_allclose(res.x, 0.0, atol=1e-5)  # i.e. 10 neV on the energies
+
+
 def test_reflectance_scale_and_offset_are_recovered():
     # Source: simulated data with known truth (noiseless reflectance)
     scale = np.linspace(0.9, 0.95, ANGLES.size)
@@ -344,6 +371,10 @@ def test_bad_inputs_are_refused():
         project_linear(y, 1.0, basis, background="quadratic")
     with pytest.raises(DataError, match="kappa"):
         simulate_map(ANGLES, ENERGIES, kind="reflectance", **TRUTH)
+    with pytest.raises(DataError, match="gamma_c >= 0"):
+        emission_basis(ANGLES, ENERGIES, **{**TRUTH, "gamma_c": np.array([1e-3, -1e-4])})
+    with pytest.raises(DataError, match="n_eff > "):
+        reflectance_basis([0.0, 80.0], ENERGIES, **{**TRUTH, "n_eff": 0.9}, kappa=1e-4)
     with pytest.raises(DataError, match="one batch shape"):
         emission_basis(ANGLES, ENERGIES, **{**TRUTH, "g": np.ones(3) * 1e-3,
                                             "e_c0": np.ones(4) * 1.52})

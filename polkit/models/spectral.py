@@ -17,7 +17,9 @@ Units and shapes
 All energies, couplings and linewidths are in **eV** (``gamma`` always a FWHM); the
 workflow converts meV parameters before calling.  Physics parameters are scalars or
 arrays of one batch shape ``S`` (typically ``(W,)`` walkers); ``(W, 1)`` and ``(W, 1, 1)``
-are accepted as ``(W,)``.  Map-level outputs have shape ``S + (A, [K,] E)`` for ``A``
+are accepted as ``(W,)``.  A Python *list or tuple* given for ``e_x``, ``g``, ``gamma_x``
+or ``sigma_x`` means *several excitons* (one entry each); pass a walker batch as an
+ndarray.  Map-level outputs have shape ``S + (A, [K,] E)`` for ``A``
 in-plane points, ``K`` basis columns and ``E`` energies.
 
 Memory layout
@@ -234,6 +236,29 @@ def _strip(p) -> NDArray:
     return a
 
 
+def _check_physics(flat: dict, angles) -> None:
+    """Refuse parameters outside the model's domain (cheap: (W,) arrays only)."""
+    def values(name):
+        v = flat.get(name)
+        return [] if v is None else (v if isinstance(v, list) else [v])
+
+    for name in ("gamma_c", "gamma_x", "sigma_x", "kappa", "g"):
+        for v in values(name):
+            if np.any(~(v >= 0)):
+                raise DataError(f"expected {name} >= 0 eV (a FWHM, width or coupling), found "
+                                f"{v[~(v >= 0)][0]!r}.", field=name)
+    for name in ("e_c0", "e_x"):
+        for v in values(name):
+            if np.any(~(v > 0)):
+                raise DataError(f"expected {name} > 0 eV, found {v[~(v > 0)][0]!r}.", field=name)
+    n_eff = flat["n_eff"]
+    limit = 0.0 if angles is None or angles.size == 0 else np.abs(np.sin(np.deg2rad(angles))).max()
+    if np.any(~(n_eff > limit)):
+        raise DataError(
+            f"expected n_eff > |sin(angle)| = {limit:.3g} for every angle of the map (and > 0), "
+            f"found {n_eff[~(n_eff > limit)][0]!r}.", field="n_eff")
+
+
 def _prepare(in_plane, energy_ev, axis: str, params: dict):
     """Flatten the parameters to a (W,) batch and compute the cavity energy (W, A)."""
     if axis not in ("angle", "k"):
@@ -276,6 +301,7 @@ def _prepare(in_plane, energy_ev, axis: str, params: dict):
         return np.broadcast_to(v, batch).reshape(n)
 
     flat = {k: flatten(v) for k, v in flat.items()}
+    _check_physics(flat, grid if axis == "angle" else None)
     kw = {"angle_deg": grid} if axis == "angle" else {"k": grid}
     e_c = cavity_energy(flat["e_c0"][:, None], flat["n_eff"][:, None], **kw)
     return batch, n, grid, energy, flat, e_c
@@ -450,27 +476,6 @@ def _green_block(energy, e_c, flat, sigma_x):
     return block
 
 
-_PHYSICS_DOC = """
-    in_plane
-        1-D angle (degree) or k (1/um) axis of length ``A``, see ``axis``.
-    energy_ev
-        1-D energy axis of length ``E``, eV.
-    e_c0
-        Cavity energy at normal incidence, eV.
-    n_eff
-        Effective index of the cavity mode.
-    e_x, g, gamma_x
-        Exciton energy, coupling (Rabi splitting ``2 g``) and FWHM, eV; lists for
-        several excitons (a single ``gamma_x`` is shared).
-    gamma_c
-        Cavity FWHM, eV.
-    sigma_x
-        Gaussian exciton-energy disorder (standard deviation, eV) or ``None``.
-    axis
-        ``"angle"`` (degree, default) or ``"k"`` (1/um).
-"""
-
-
 def emission_basis(
     in_plane: ArrayLike,
     energy_ev: ArrayLike,
@@ -504,7 +509,24 @@ def emission_basis(
 
     Parameters
     ----------
-    """ + _PHYSICS_DOC + """
+    in_plane
+        1-D angle (degree) or k (1/um) axis of length ``A``, see ``axis``.
+    energy_ev
+        1-D energy axis of length ``E``, eV.
+    e_c0
+        Cavity energy at normal incidence, eV.
+    n_eff
+        Effective index of the cavity mode.
+    e_x, g, gamma_x
+        Exciton energy, coupling (Rabi splitting ``2 g``) and FWHM, eV; lists for
+        several excitons (a single ``gamma_x`` is shared).
+    gamma_c
+        Cavity FWHM, eV.
+    sigma_x
+        Gaussian exciton-energy disorder (standard deviation, eV) or ``None``.
+    axis
+        ``"angle"`` (degree, default) or ``"k"`` (1/um).
+
     Returns
     -------
     MapBasis
@@ -563,7 +585,23 @@ def reflectance_basis(
 
     Parameters
     ----------
-    """ + _PHYSICS_DOC + """
+    in_plane
+        1-D angle (degree) or k (1/um) axis of length ``A``, see ``axis``.
+    energy_ev
+        1-D energy axis of length ``E``, eV.
+    e_c0
+        Cavity energy at normal incidence, eV.
+    n_eff
+        Effective index of the cavity mode.
+    e_x, g, gamma_x
+        Exciton energy, coupling (Rabi splitting ``2 g``) and FWHM, eV; lists for
+        several excitons (a single ``gamma_x`` is shared).
+    gamma_c
+        Cavity FWHM, eV.
+    sigma_x
+        Gaussian exciton-energy disorder (standard deviation, eV) or ``None``.
+    axis
+        ``"angle"`` (degree, default) or ``"k"`` (1/um).
     kappa
         Top-mirror coupling, eV.
 
