@@ -157,7 +157,7 @@ class _Noise:
         return self.gain is not None
 
     def variance(self, level: np.ndarray) -> np.ndarray:
-        floor = max(self.read_noise**2, 1.0 / self.gain)
+        floor = max(self.read_noise**2, 1.0 / self.gain**2)  # at least one electron
         var = np.maximum(np.asarray(level, dtype=float), 0.0) / self.gain + self.read_noise**2
         return np.maximum(var, floor) / self.n_avg
 
