@@ -282,6 +282,8 @@ def test_model_and_chi2_are_consistent():
     # a prepared map gives the same numbers
     prepared = prepare_map(y, w, background="linear", energy_ev=ENERGIES)
     np.testing.assert_allclose(project_linear(prepared, None, basis), lazy.chi2, rtol=1e-12)
+    with pytest.raises(DataError, match="prepared with 'linear'"):
+        project_linear(prepared, None, basis, background="constant")
 
 
 def test_known_amplitudes_are_recovered_from_a_synthetic_map():

@@ -661,8 +661,8 @@ class LinearSolution:
     model: NDArray
 
 
-def _background_columns(energy: NDArray, background: str | None) -> NDArray:
-    if background in (None, "none"):
+def _background_columns(energy: NDArray, background: str) -> NDArray:
+    if background == "none":
         return np.empty((energy.size, 0))
     if background == "constant":
         return np.ones((energy.size, 1))
@@ -727,7 +727,7 @@ def prepare_map(
     y: ArrayLike,
     inv_var: ArrayLike,
     *,
-    background: str | None = "constant",
+    background: str = "constant",
     energy_ev: ArrayLike | None = None,
 ) -> WeightedMap:
     """Validate a map and precompute everything :func:`project_linear` needs from it alone.
@@ -851,7 +851,7 @@ def project_linear(
     basis: MapBasis | ArrayLike,
     *,
     nonneg: bool = True,
-    background: str | None = "constant",
+    background: str | None = None,
     return_parts: bool = False,
     energy_ev: ArrayLike | None = None,
 ) -> NDArray | LinearSolution:
@@ -884,7 +884,7 @@ def project_linear(
     y
         The map, shape ``(A, E)`` (NaN pixels are masked), or a :class:`WeightedMap`
         from :func:`prepare_map` (then ``inv_var``, ``background`` and ``energy_ev`` are
-        taken from it and must be left at their defaults / None).
+        taken from it: leave them None).
     inv_var
         Inverse variances, broadcastable to ``(A, E)``; finite and >= 0 at every
         unmasked pixel (zero removes a pixel).
@@ -894,7 +894,8 @@ def project_linear(
         Constrain the basis amplitudes to be >= 0 (emission occupations, reflectance
         scale).  The background is never constrained.
     background
-        ``"constant"`` (default), ``"linear"`` or ``"none"``.
+        ``"constant"`` (the default for a raw map), ``"linear"`` or ``"none"``; with a
+        :class:`WeightedMap` leave it ``None`` (the prepared map fixes it).
     return_parts
         If True return a :class:`LinearSolution` (amplitudes, background, model map)
         instead of ``chi2`` alone.
@@ -945,7 +946,13 @@ def project_linear(
             f"expected the map to have shape (in-plane, energy) = ({n_a}, {n_e}) like the "
             f"basis, found {found}. Build the basis on the map's own axes.", field="y")
     if not isinstance(y, WeightedMap):
-        data = prepare_map(y, inv_var, background=background, energy_ev=energy_ev)
+        data = prepare_map(y, inv_var, background=background or "constant",
+                           energy_ev=energy_ev)
+    elif background is not None and background != data.background_kind:
+        raise DataError(
+            f"expected background=None with a prepared map (it was prepared with "
+            f"{data.background_kind!r}), found {background!r}. Call prepare_map with the "
+            "background wanted.", field="background")
     elif (data.energy_ev is not None and isinstance(basis, MapBasis)
           and not np.allclose(data.energy_ev, basis.energy_ev, rtol=0, atol=1e-12)):
         raise DataError("expected the prepared map and the basis to share one energy axis, "
