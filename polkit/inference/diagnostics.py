@@ -1,0 +1,299 @@
+"""Convergence diagnostics for ensemble MCMC.
+
+* integrated autocorrelation time (emcee's estimator, averaged over walkers);
+* per-walker acceptance read off the stored chain, and stuck-walker detection;
+* nested R-hat over independently seeded ensembles, written out from
+  Margossian et al., "Nested R-hat: assessing the convergence of Markov chain
+  Monte Carlo when running many short chains", arXiv:2110.13017 (2022), because
+  ArviZ 0.23 does not provide it;
+* ArviZ bulk/tail effective sample sizes and rank-normalised split R-hat.
+
+Walkers of one affine-invariant ensemble are *not* independent chains (each
+proposal is built from the other walkers), so R-hat computed over the walkers of a
+single ensemble raises false alarms; polkit reports it for information and gates
+on it only through nested R-hat across independent ensembles (strict mode).
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+import warnings
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+
+import numpy as np
+import xarray as xr
+
+__all__ = [
+    "autocorr_time",
+    "walker_acceptance",
+    "stuck_walkers",
+    "nested_rhat",
+    "arviz_diagnostics",
+    "GateCheck",
+    "convergence_gate",
+]
+
+log = logging.getLogger(__name__)
+
+
+def _arviz():
+    with warnings.catch_warnings():  # ArviZ 0.23 announces its refactor on import
+        warnings.simplefilter("ignore", FutureWarning)
+        import arviz
+
+    return arviz
+
+
+def autocorr_time(chain: np.ndarray) -> np.ndarray:
+    """Integrated autocorrelation time of each parameter, in steps.
+
+    Parameters
+    ----------
+    chain
+        Shape ``(steps, walkers, P)``.
+
+    Returns
+    -------
+    ndarray
+        Shape ``(P,)``: emcee's estimator (normalised autocorrelation averaged over
+        walkers, Sokal's automatic window with ``c = 5``).  Walkers that never move
+        are left out; a parameter no walker moves in gets ``inf``.
+    """
+    import emcee
+
+    chain = np.asarray(chain, dtype=float)
+    n_steps, _, n_params = chain.shape
+    out = np.full(n_params, np.inf)
+    if n_steps < 2:
+        return out
+    for j in range(n_params):
+        moving = np.ptp(chain[:, :, j], axis=0) > 0
+        if not moving.any():
+            continue
+        # tol=0: the 'chain long enough' test is the convergence gate's job, not a log line
+        out[j] = float(
+            emcee.autocorr.integrated_time(chain[:, moving, j], c=5, tol=0, quiet=True)[0]
+        )
+    return out
+
+
+def walker_acceptance(chain: np.ndarray) -> np.ndarray:
+    """Fraction of steps in which each walker moved, shape ``(walkers,)``.
+
+    An accepted proposal moves a walker to a new point (landing exactly on the old
+    point has probability zero), so this equals the acceptance fraction over the
+    window ``chain`` covers.
+    """
+    chain = np.asarray(chain)
+    if chain.shape[0] < 2:
+        return np.full(chain.shape[1], np.nan)
+    moved = np.any(chain[1:] != chain[:-1], axis=-1)
+    return moved.mean(axis=0)
+
+
+def stuck_walkers(
+    acceptance: np.ndarray,
+    log_prob: np.ndarray,
+    n_params: int,
+    *,
+    min_acceptance: float = 0.05,
+) -> np.ndarray:
+    """Indices of walkers that are stuck.
+
+    A walker is stuck when it accepts fewer than ``min_acceptance`` of its
+    proposals, or when its median log-probability lies more than ``max(10, P)``
+    below the median over walkers (``-2 log p`` of a ``P``-dimensional Gaussian
+    posterior spreads over about ``P``, so such a walker sits where the bulk never
+    goes -- typically a minor mode).
+
+    Parameters
+    ----------
+    acceptance
+        Shape ``(walkers,)``.
+    log_prob
+        Shape ``(steps, walkers)``.
+    n_params
+        ``P``.
+    """
+    acceptance = np.asarray(acceptance, dtype=float)
+    med = np.median(np.asarray(log_prob, dtype=float), axis=0)
+    finite = np.isfinite(med)
+    centre = np.median(med[finite]) if finite.any() else -np.inf
+    low_lp = ~finite | (med < centre - max(10.0, float(n_params)))
+    return np.flatnonzero((acceptance < min_acceptance) | low_lp)
+
+
+def nested_rhat(draws: np.ndarray) -> np.ndarray | float:
+    """Nested R-hat of Margossian et al. (arXiv:2110.13017, 2022).
+
+    With ``K`` superchains of ``M`` subchains of ``N`` draws ``f[k, m, n]``::
+
+        fbar_.mk = mean_n f[k, m, n]          (subchain means)
+        fbar_..k = mean_m fbar_.mk            (superchain means)
+        fbar_... = mean_k fbar_..k
+        B_nu  = 1/(K-1) sum_k (fbar_..k - fbar_...)^2
+        Btilde_k = 1/(M-1) sum_m (fbar_.mk - fbar_..k)^2      (0 when M = 1)
+        Wtilde_k = 1/M sum_m 1/(N-1) sum_n (f[k,m,n] - fbar_.mk)^2   (0 when N = 1)
+        W_nu  = 1/K sum_k (Btilde_k + Wtilde_k)
+        nRhat = sqrt(1 + B_nu / W_nu)
+
+    In polkit the superchains are independently seeded ensembles and the
+    subchains are their walkers.
+
+    Parameters
+    ----------
+    draws
+        Shape ``(K, M, N)`` or ``(K, M, N, P)``, ``K >= 2``.
+
+    Returns
+    -------
+    float or ndarray
+        One value, or shape ``(P,)``.
+    """
+    f = np.asarray(draws, dtype=float)
+    single = f.ndim == 3
+    if single:
+        f = f[..., None]
+    if f.ndim != 4:
+        raise ValueError(f"nested R-hat needs draws of shape (K, M, N[, P]); got {f.shape}")
+    n_super, n_sub, n_draw, _ = f.shape
+    if n_super < 2:
+        raise ValueError(f"nested R-hat needs at least 2 superchains; got {n_super}")
+    sub_mean = f.mean(axis=2)  # (K, M, P)
+    super_mean = sub_mean.mean(axis=1)  # (K, P)
+    b_nu = super_mean.var(axis=0, ddof=1)
+    b_tilde = sub_mean.var(axis=1, ddof=1) if n_sub > 1 else np.zeros_like(super_mean)
+    w_tilde = f.var(axis=2, ddof=1).mean(axis=1) if n_draw > 1 else np.zeros_like(super_mean)
+    w_nu = (b_tilde + w_tilde).mean(axis=0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        out = np.sqrt(1.0 + b_nu / w_nu)
+    out = np.where((w_nu == 0) & (b_nu == 0), 1.0, out)
+    return float(out[0]) if single else out
+
+
+def arviz_diagnostics(draws: xr.Dataset) -> dict:
+    """ArviZ bulk/tail ESS and rank-normalised split R-hat of every variable.
+
+    Parameters
+    ----------
+    draws
+        Dataset with dims ``(chain, draw)``.
+
+    Returns
+    -------
+    dict
+        ``ess_bulk``, ``ess_tail``, ``rhat`` (``{name: value}``) and their extremes
+        ``min_ess_bulk``, ``min_ess_tail``, ``max_rhat``.  R-hat here treats walkers as
+        chains and is informational (see the module notes).
+    """
+    az = _arviz()
+    with warnings.catch_warnings(), np.errstate(invalid="ignore", divide="ignore"):
+        warnings.simplefilter("ignore", RuntimeWarning)
+        bulk = az.ess(draws, method="bulk")
+        tail = az.ess(draws, method="tail")
+        rhat = az.rhat(draws)
+
+    def as_dict(ds):
+        return {name: float(ds[name].values) for name in draws.data_vars}
+
+    out = {"ess_bulk": as_dict(bulk), "ess_tail": as_dict(tail), "rhat": as_dict(rhat)}
+
+    def extreme(values, fn):
+        finite = [v for v in values if math.isfinite(v)]
+        return fn(finite) if len(finite) == len(values) and finite else math.nan
+
+    out["min_ess_bulk"] = extreme(list(out["ess_bulk"].values()), min)
+    out["min_ess_tail"] = extreme(list(out["ess_tail"].values()), min)
+    out["max_rhat"] = extreme(list(out["rhat"].values()), max)
+    return out
+
+
+@dataclass
+class GateCheck:
+    """One evaluation of the convergence gate on the first ``steps`` steps of a chain."""
+
+    steps: int
+    tau: np.ndarray
+    tau_change: float
+    acceptance: np.ndarray
+    stuck: np.ndarray
+    passed: bool
+    reasons: list[str] = field(default_factory=list)
+
+
+def convergence_gate(
+    chain: np.ndarray,
+    log_prob: np.ndarray,
+    previous_tau: np.ndarray | None,
+    *,
+    names: Sequence[str],
+    autocorr_factor: float = 50.0,
+    tau_rtol: float = 0.01,
+    acceptance_range: tuple[float, float] = (0.15, 0.7),
+) -> GateCheck:
+    """Evaluate the convergence gate on a chain of ``n`` steps.
+
+    The gate passes when (1) ``n >= autocorr_factor * max(tau)``, (2) every
+    ``tau`` changed by less than ``tau_rtol`` (relative) since the previous check,
+    (3) every walker's acceptance lies in ``acceptance_range`` and (4) no walker is
+    stuck (:func:`stuck_walkers`).  ``tau`` is estimated after discarding the first
+    quarter of the chain; acceptance and stuck walkers use the same window.  The
+    result depends on the chain alone, so a resumed run takes the same decisions.
+
+    Parameters
+    ----------
+    chain
+        Shape ``(n, walkers, P)``.
+    log_prob
+        Shape ``(n, walkers)``.
+    previous_tau
+        ``tau`` from the previous check (``None`` at the first).
+    names
+        Parameter names, for the reasons.
+    """
+    n = chain.shape[0]
+    start = n // 4
+    window = chain[start:]
+    tau = autocorr_time(window)
+    reasons = []
+    jmax = int(np.argmax(np.where(np.isfinite(tau), tau, np.inf)))
+    tau_max = float(tau[jmax])
+    if not np.isfinite(tau_max):
+        reasons.append(f"no walker moves in {names[jmax]!r}: the autocorrelation time is "
+                       "undefined")
+    elif n < autocorr_factor * tau_max:
+        reasons.append(
+            f"chain of {n} steps is shorter than {autocorr_factor:g} x the autocorrelation "
+            f"time ({autocorr_factor * tau_max:.0f} steps; tau = {tau_max:.1f} for "
+            f"{names[jmax]!r})"
+        )
+    if previous_tau is None:
+        change = math.nan
+        reasons.append("no previous autocorrelation estimate to compare with")
+    else:
+        with np.errstate(invalid="ignore", divide="ignore"):
+            rel = np.abs(tau - previous_tau) / tau
+        change = float(np.max(np.where(np.isfinite(rel), rel, np.inf)))
+        if not change < tau_rtol:
+            reasons.append(
+                f"autocorrelation time still changing ({100 * change:.1f} % since the "
+                f"previous check; limit {100 * tau_rtol:g} %)"
+            )
+    acceptance = walker_acceptance(window)
+    lo, hi = acceptance_range
+    outside = np.flatnonzero((acceptance < lo) | (acceptance > hi))
+    if outside.size:
+        reasons.append(
+            f"{outside.size} walker(s) with acceptance outside {lo:g}-{hi:g} "
+            f"(range {np.nanmin(acceptance):.3f}-{np.nanmax(acceptance):.3f}; walkers "
+            f"{outside[:10].tolist()})"
+        )
+    stuck = stuck_walkers(acceptance, log_prob[start:], chain.shape[2])
+    if stuck.size:
+        reasons.append(
+            f"stuck walkers {stuck[:10].tolist()} (acceptance < 0.05 or log-probability far "
+            "below the rest)"
+        )
+    return GateCheck(n, tau, change, acceptance, stuck, not reasons, reasons)

@@ -1,0 +1,808 @@
+"""The ensemble MCMC runner: emcee with recorded seeds, HDF5 checkpoints and a convergence gate.
+
+Scope: this module drives :class:`emcee.EnsembleSampler`; it knows nothing of physics
+or input files.  A caller hands it a :class:`~polkit.inference.priors.ParameterSpace`
+and a vectorised log-likelihood ``theta[W, P] -> [W]``; the runner adds the log
+prior, seeds everything from one :class:`numpy.random.SeedSequence`, stops when the
+convergence gate of the design notes is passed (or at ``max_steps``), and returns a
+:class:`SamplerOutput`.
+
+Run plan (a pure function of the stored chains, so a resumed run takes the same
+decisions and produces the same chain as an uninterrupted one):
+
+1. each ensemble runs on its own until its gate passes (checked every
+   ``check_every`` steps from ``min_steps`` on) or ``max_steps`` is reached;
+2. all ensembles are then continued to a common length; in strict mode the common
+   length grows (by half, at least ``check_every`` steps) until nested R-hat over
+   the ensembles is at most ``nested_rhat_max`` or ``max_steps`` is reached.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import logging
+import math
+import os
+import threading
+import warnings
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import xarray as xr
+
+from ..errors import ConfigError, ConvergenceWarning, FitError
+from . import diagnostics as diag
+from .optimize import MapResult, check_ensemble, initial_ball
+from .posterior import LogPosterior, describe_point
+from .priors import ParameterSpace
+
+__all__ = ["SamplerOutput", "run_ensemble", "default_moves"]
+
+log = logging.getLogger(__name__)
+
+_CHECKPOINT_FORMAT = 1
+
+
+def default_moves() -> list:
+    """Differential-evolution moves: ``[(DEMove(), 0.8), (DESnookerMove(), 0.2)]``.
+
+    Why: each walker's DE proposal is built from the difference of two other
+    walkers (Ter Braak 2006; Nelson et al. 2014), so proposals adapt to the scale
+    and correlations of the posterior while every walker gets its own; the snooker
+    variant (Ter Braak and Vrugt 2008) adds moves along lines through other walkers,
+    which helps on curved and multimodal posteriors.  The stretch move loses
+    efficiency as the dimension grows, and a full-covariance Gaussian move would
+    give every walker the same proposal distribution.
+    """
+    import emcee
+
+    return [(emcee.moves.DEMove(), 0.8), (emcee.moves.DESnookerMove(), 0.2)]
+
+
+# ----------------------------------------------------------------------------------------
+# output
+# ----------------------------------------------------------------------------------------
+@dataclass
+class SamplerOutput:
+    """The chains of a run and what the convergence gate found.
+
+    Attributes
+    ----------
+    space
+        The parameter space sampled.
+    chains
+        Shape ``(n_ensembles, steps, walkers, P)``.
+    log_prob
+        Log posterior, shape ``(n_ensembles, steps, walkers)``.
+    acceptance
+        Acceptance fraction of each walker after burn-in, ``(n_ensembles, walkers)``.
+    autocorr_time
+        Integrated autocorrelation time, ``(n_ensembles, P)`` in steps.
+    burn_in, thin
+        Steps dropped at the start and the thinning of :meth:`posterior_draws`.
+    converged
+        Whether every gate passed.
+    reasons
+        Why not, one line per failed test (empty when converged).
+    diagnostics
+        JSON-ready dict (see :func:`run_ensemble`).
+    seed_entropy, seed_spawn_key
+        The root :class:`~numpy.random.SeedSequence` of the run.
+    extras, extras_units
+        Per-walker side results of the log-likelihood, ``{name: (n_ensembles, steps,
+        walkers)}``, and their units.
+    """
+
+    space: ParameterSpace
+    chains: np.ndarray
+    log_prob: np.ndarray
+    acceptance: np.ndarray
+    autocorr_time: np.ndarray
+    burn_in: int
+    thin: int
+    converged: bool
+    reasons: list[str]
+    diagnostics: dict[str, Any]
+    seed_entropy: int
+    seed_spawn_key: tuple[int, ...] = ()
+    extras: dict[str, np.ndarray] = field(default_factory=dict)
+    extras_units: dict[str, str] = field(default_factory=dict)
+
+    @property
+    def names(self) -> list[str]:
+        """Parameter names."""
+        return self.space.names
+
+    @property
+    def n_ensembles(self) -> int:
+        """Number of independently seeded ensembles."""
+        return self.chains.shape[0]
+
+    def _kept(self, array: np.ndarray) -> np.ndarray:
+        """(E, S, W, ...) -> (E*W, D, ...) after burn-in and thinning; chain = ensemble-major."""
+        kept = array[:, self.burn_in :: self.thin]
+        kept = np.moveaxis(kept, 2, 1)  # (E, W, D, ...)
+        return kept.reshape((-1,) + kept.shape[2:])
+
+    def _chain_coords(self) -> dict:
+        n_ens, _, n_walk = self.chains.shape[:3]
+        return {
+            "chain": np.arange(n_ens * n_walk),
+            "ensemble": ("chain", np.repeat(np.arange(n_ens), n_walk)),
+            "walker": ("chain", np.tile(np.arange(n_walk), n_ens)),
+        }
+
+    def posterior_draws(self) -> xr.Dataset:
+        """The burned-in, thinned draws as a Dataset with dims ``(chain, draw)``.
+
+        ``chain`` runs over walkers (ensemble-major: chain = ensemble * walkers +
+        walker, with ``ensemble`` and ``walker`` coordinates); every variable
+        (parameters, then extras) carries ``units`` and ``long_name``.
+        """
+        kept = self._kept(self.chains)  # (C, D, P)
+        coords = self._chain_coords()
+        coords["draw"] = np.arange(kept.shape[1])
+        data = {}
+        for j, p in enumerate(self.space):
+            data[p.name] = (
+                ("chain", "draw"),
+                kept[:, :, j],
+                {"units": p.units, "long_name": p.description or p.name.replace("_", " ")},
+            )
+        for name, values in self.extras.items():
+            data[name] = (
+                ("chain", "draw"),
+                self._kept(values),
+                {"units": self.extras_units.get(name, "1"), "long_name": name.replace("_", " ")},
+            )
+        return xr.Dataset(data, coords=coords)
+
+    def sample_stats(self) -> xr.Dataset:
+        """``lp`` (log posterior of each kept draw) and per-walker ``acceptance``."""
+        lp = self._kept(self.log_prob)
+        coords = self._chain_coords()
+        coords["draw"] = np.arange(lp.shape[1])
+        return xr.Dataset(
+            {
+                "lp": (("chain", "draw"), lp, {"units": "1", "long_name": "log posterior"}),
+                "acceptance": (
+                    ("chain",),
+                    self.acceptance.reshape(-1),
+                    {"units": "1", "long_name": "acceptance fraction after burn-in"},
+                ),
+            },
+            coords=coords,
+        )
+
+
+# ----------------------------------------------------------------------------------------
+# seeds and checkpoints
+# ----------------------------------------------------------------------------------------
+def _root_seed(seed) -> np.random.SeedSequence:
+    if seed is None:
+        return np.random.SeedSequence()
+    if isinstance(seed, np.random.SeedSequence):
+        # a fresh copy: the run depends on (entropy, spawn_key) only, which are recorded
+        return np.random.SeedSequence(seed.entropy, spawn_key=seed.spawn_key)
+    if isinstance(seed, (int, np.integer)) and not isinstance(seed, bool) and seed >= 0:
+        return np.random.SeedSequence(int(seed))
+    raise ConfigError(
+        f"seed must be a non-negative int, None or numpy.random.SeedSequence; got {seed!r}",
+        key="seed",
+    )
+
+
+def _entropy_int(seq: np.random.SeedSequence) -> int:
+    ent = seq.entropy
+    if isinstance(ent, (int, np.integer)):
+        return int(ent)
+    # a sequence of words, as SeedSequence accepts: pack it into one int (little-endian words)
+    return sum(int(w) << (32 * i) for i, w in enumerate(np.asarray(ent, dtype=np.uint64)))
+
+
+def _checkpoint_meta(space, n_walkers, seed_seq) -> dict[str, str]:
+    return {
+        "polkit_checkpoint_format": str(_CHECKPOINT_FORMAT),
+        "polkit_parameter_names": json.dumps(space.names),
+        "polkit_parameter_units": json.dumps(space.units),
+        "polkit_n_walkers": str(n_walkers),
+        "polkit_seed_entropy": json.dumps(
+            seed_seq.entropy if isinstance(seed_seq.entropy, int) else
+            [int(w) for w in np.asarray(seed_seq.entropy)]
+        ),
+        "polkit_seed_spawn_key": json.dumps([int(k) for k in seed_seq.spawn_key]),
+    }
+
+
+def _open_checkpoint(path: Path, space, n_walkers, seed, resume) -> np.random.SeedSequence:
+    """Prepare the checkpoint file; returns the root seed sequence to use."""
+    import h5py
+
+    if path.exists() and not resume:
+        raise ConfigError(
+            "a checkpoint already exists here; pass resume=True to continue it, or remove "
+            "the file to start afresh",
+            path=path,
+        )
+    if not path.exists():
+        seed_seq = _root_seed(seed)
+        path.parent.mkdir(parents=True, exist_ok=True)
+        with h5py.File(path, "w") as fh:
+            fh.attrs.update(_checkpoint_meta(space, n_walkers, seed_seq))
+        return seed_seq
+    try:
+        with h5py.File(path, "r") as fh:
+            attrs = {k: fh.attrs[k] for k in fh.attrs}
+    except OSError as exc:
+        raise ConfigError(
+            f"cannot read the checkpoint ({exc}); it may have been damaged by a crash "
+            "during a write -- remove it to start afresh",
+            path=path,
+        ) from None
+    if "polkit_parameter_names" not in attrs:
+        raise ConfigError(
+            "this HDF5 file is not a polkit checkpoint (no 'polkit_parameter_names' "
+            "attribute); choose another checkpoint path",
+            path=path,
+        )
+
+    def text(key):
+        value = attrs[key]
+        return value.decode() if isinstance(value, bytes) else str(value)
+
+    names = json.loads(text("polkit_parameter_names"))
+    if names != space.names:
+        raise ConfigError(
+            f"the checkpoint belongs to parameters {names}, not {space.names}; use another "
+            "checkpoint path",
+            path=path,
+            key="polkit_parameter_names",
+        )
+    stored_walkers = int(text("polkit_n_walkers"))
+    if stored_walkers != n_walkers:
+        raise ConfigError(
+            f"the checkpoint holds {stored_walkers} walkers, this run asks for {n_walkers}; "
+            f"pass n_walkers={stored_walkers} or use another checkpoint path",
+            path=path,
+            key="polkit_n_walkers",
+        )
+    entropy = json.loads(text("polkit_seed_entropy"))
+    spawn_key = tuple(json.loads(text("polkit_seed_spawn_key")))
+    stored = np.random.SeedSequence(entropy, spawn_key=spawn_key)
+    if seed is not None:
+        asked = _root_seed(seed)
+        if _entropy_int(asked) != _entropy_int(stored) or tuple(asked.spawn_key) != spawn_key:
+            raise ConfigError(
+                f"the checkpoint was started with seed entropy {entropy} (spawn key "
+                f"{list(spawn_key)}); resuming with a different seed would not reproduce it "
+                "-- pass seed=None or the original seed",
+                path=path,
+                key="polkit_seed_entropy",
+            )
+    return stored
+
+
+def _group_attr(path: Path | None, group: str, key: str, value=None):
+    """Read (value None) or write a polkit attribute on an ensemble's HDF5 group."""
+    if path is None:
+        return None
+    import h5py
+
+    if value is None:
+        with h5py.File(path, "r") as fh:
+            return fh[group].attrs.get(key) if group in fh else None
+    with h5py.File(path, "a") as fh:
+        fh[group].attrs[key] = value
+    return value
+
+
+# ----------------------------------------------------------------------------------------
+# the run
+# ----------------------------------------------------------------------------------------
+class _Stopped(Exception):
+    pass
+
+
+class _OpenFile:
+    """Context manager handing out an already open h5py file without closing it."""
+
+    def __init__(self, handle):
+        self.handle = handle
+
+    def __enter__(self):
+        return self.handle
+
+    def __exit__(self, *exc):
+        return False
+
+
+def _checkpoint_backend(path: Path, name: str):
+    """An emcee HDFBackend that keeps the file open while sampling and flushes every step.
+
+    emcee's backend reopens the file several times per step; holding it open during
+    a stretch of sampling and flushing after each stored step keeps every finished
+    step on disk at a fraction of the cost.
+    """
+    import emcee
+    import h5py
+
+    class _Backend(emcee.backends.HDFBackend):
+        _handle = None
+
+        @contextlib.contextmanager
+        def session(self):
+            self._handle = h5py.File(self.filename, "a")
+            try:
+                yield
+            finally:
+                handle, self._handle = self._handle, None
+                handle.close()
+
+        def open(self, mode="r"):
+            if self._handle is not None:
+                return _OpenFile(self._handle)
+            return super().open(mode)
+
+        def save_step(self, state, accepted):
+            super().save_step(state, accepted)
+            if self._handle is not None:
+                self._handle.flush()
+
+    return _Backend(os.fspath(path), name=name)
+
+
+class _Ensemble:
+    """One emcee sampler, its backend and its gate history."""
+
+    def __init__(self, index, log_post, space, n_walkers, moves, checkpoint, seq):
+        import emcee
+
+        self.index = index
+        self.name = f"ensemble{index}"
+        self.checkpoint = checkpoint
+        if checkpoint is not None:
+            backend = _checkpoint_backend(checkpoint, self.name)
+        else:
+            backend = emcee.backends.Backend()
+        self.backend = backend
+        self.sampler = emcee.EnsembleSampler(
+            n_walkers, space.ndim, log_post, moves=moves, vectorize=True, backend=backend
+        )
+        ball_seq, mcmc_seq = seq.spawn(2)
+        self.ball_rng = np.random.Generator(np.random.PCG64(ball_seq))
+        self.rng_state = np.random.RandomState(np.random.MT19937(mcmc_seq)).get_state()
+        self.state = None
+        self.taus: dict[int, np.ndarray] = {}
+
+    @property
+    def steps(self) -> int:
+        return int(self.backend.iteration) if self.backend.initialized else 0
+
+    def start(self, p0: np.ndarray, space: ParameterSpace):
+        import emcee
+
+        if self.steps > 0:
+            self.state = self.sampler.get_last_sample()
+            return
+        log_prob, blobs = self.sampler.compute_log_prob(p0)
+        bad = np.flatnonzero(~np.isfinite(log_prob))
+        if bad.size:
+            raise FitError(
+                f"{bad.size} walker(s) of {self.name} start at zero posterior, e.g. walker "
+                f"{int(bad[0])}: {describe_point(space, p0[bad[0]])}; start inside the prior "
+                "where the likelihood is positive"
+            )
+        self.state = emcee.State(p0, log_prob=log_prob, blobs=blobs, random_state=self.rng_state)
+
+    def advance(self, n_steps: int, pbar, stop_event) -> None:
+        session = self.backend.session() if self.checkpoint is not None else (
+            contextlib.nullcontext())
+        with session:
+            for state in self.sampler.sample(
+                self.state, iterations=n_steps, skip_initial_state_check=True, store=True
+            ):
+                self.state = state
+                pbar.update(1)
+                if stop_event is not None and stop_event.is_set():
+                    raise _Stopped()
+
+    def chain(self, n: int | None = None) -> tuple[np.ndarray, np.ndarray]:
+        chain = self.backend.get_chain()
+        lp = self.backend.get_log_prob()
+        return (chain, lp) if n is None else (chain[:n], lp[:n])
+
+    def tau_at(self, n: int) -> np.ndarray:
+        if n not in self.taus:
+            chain, _ = self.chain(n)
+            self.taus[n] = diag.autocorr_time(chain[n // 4 :])
+        return self.taus[n]
+
+
+def _validate(n_walkers, max_steps, min_steps, check_every, autocorr_factor, n_ensembles,
+              strict, space):
+    def need(cond, key, msg):
+        if not cond:
+            raise ConfigError(msg, key=key)
+
+    need(isinstance(n_walkers, (int, np.integer)) and n_walkers >= 2 * space.ndim, "n_walkers",
+         f"n_walkers must be an int >= 2 x {space.ndim} parameters; got {n_walkers!r}")
+    need(isinstance(max_steps, (int, np.integer)) and max_steps >= 1, "max_steps",
+         f"max_steps must be a positive int; got {max_steps!r}")
+    need(isinstance(check_every, (int, np.integer)) and check_every >= 2, "check_every",
+         f"check_every must be an int >= 2; got {check_every!r}")
+    need(isinstance(min_steps, (int, np.integer)) and 0 <= min_steps, "min_steps",
+         f"min_steps must be a non-negative int; got {min_steps!r}")
+    need(autocorr_factor > 0, "autocorr_factor",
+         f"autocorr_factor must be > 0; got {autocorr_factor!r}")
+    need(isinstance(n_ensembles, (int, np.integer)) and n_ensembles >= 1, "n_ensembles",
+         f"n_ensembles must be a positive int; got {n_ensembles!r}")
+    if strict:
+        need(n_ensembles >= 4, "n_ensembles",
+             f"strict mode needs n_ensembles >= 4 independently seeded ensembles; got "
+             f"{n_ensembles}")
+
+
+def _initial_positions(x0, space, n_walkers, n_ensembles):
+    """A callable ``(ensemble index, rng) -> p0[W, P]`` from the accepted x0 forms."""
+    if isinstance(x0, MapResult):
+        return lambda e, rng: initial_ball(x0.x, x0.scale, n_walkers, rng, space)
+    arr = np.asarray(x0, dtype=float)
+    if arr.shape == (space.ndim,):
+        scale = space.scales
+        return lambda e, rng: initial_ball(arr, scale, n_walkers, rng, space)
+    if arr.shape == (n_walkers, space.ndim):
+        check_ensemble(arr, space)
+        return lambda e, rng: arr.copy()
+    if arr.shape == (n_ensembles, n_walkers, space.ndim):
+        for e in range(n_ensembles):
+            check_ensemble(arr[e], space)
+        return lambda e, rng: arr[e].copy()
+    raise FitError(
+        f"x0 has shape {arr.shape}; expected a MapResult, a point ({space.ndim},), an "
+        f"ensemble ({n_walkers}, {space.ndim}) or one per ensemble ({n_ensembles}, "
+        f"{n_walkers}, {space.ndim})"
+    )
+
+
+def _describe_moves(moves) -> str:
+    if moves is None:
+        return "none"
+    items = moves if isinstance(moves, (list, tuple)) else [moves]
+    parts = []
+    for item in items:
+        if isinstance(item, tuple):
+            parts.append(f"{type(item[0]).__name__}:{item[1]:g}")
+        else:
+            parts.append(type(item).__name__)
+    return ", ".join(parts)
+
+
+def run_ensemble(
+    log_likelihood: Callable[[np.ndarray], np.ndarray],
+    space: ParameterSpace,
+    x0: MapResult | np.ndarray,
+    *,
+    n_walkers: int = 32,
+    seed: int | np.random.SeedSequence | None = None,
+    max_steps: int = 20000,
+    min_steps: int = 500,
+    check_every: int = 100,
+    checkpoint: str | os.PathLike | None = None,
+    resume: bool = False,
+    progress: bool = True,
+    strict: bool = False,
+    n_ensembles: int | None = None,
+    moves: Any = None,
+    autocorr_factor: float = 50.0,
+    log_prob_extras: Mapping[str, str] | Sequence[str] | None = None,
+    stop_event: threading.Event | None = None,
+    tau_rtol: float = 0.01,
+    acceptance_range: tuple[float, float] = (0.15, 0.7),
+    nested_rhat_max: float = 1.01,
+) -> SamplerOutput:
+    """Sample the posterior with emcee until the convergence gate passes.
+
+    Parameters
+    ----------
+    log_likelihood
+        Vectorised ``theta[W, P] -> log L[W]``; the runner adds the log prior and
+        evaluates the likelihood only inside the prior support.  NaN (or ``+inf``)
+        raises :class:`~polkit.errors.FitError` naming the parameter values.  With
+        ``log_prob_extras`` it returns ``(log L[W], extras[W, K])``.
+    space
+        Parameters and priors.
+    x0
+        A :class:`~polkit.inference.optimize.MapResult` (walkers in a ball of its
+        curvature scale), a point ``(P,)`` (ball of 0.1 prior spreads), a starting
+        ensemble ``(W, P)`` or one per ensemble ``(n_ensembles, W, P)``.
+    n_walkers
+        Walkers per ensemble (at least ``2 P``).
+    seed
+        ``int``, ``None`` (fresh entropy, recorded) or a :class:`~numpy.random.SeedSequence`.
+        One child sequence is spawned per ensemble; the same seed gives bit-identical
+        chains.
+    max_steps, min_steps, check_every
+        Step limits per ensemble and the spacing of convergence checks.
+    checkpoint
+        HDF5 file for the chains (one group per ensemble, ``ensemble0`` ...), written
+        at every step.  An existing file is refused unless ``resume=True``.
+    resume
+        Continue the run stored in ``checkpoint`` (start one if the file does not
+        exist).  The parameter names, walker count and seed must match; the other
+        settings should too.  The continued chain equals an uninterrupted run's.
+    progress
+        Show a ``tqdm.auto`` progress bar.
+    strict
+        Run ``n_ensembles >= 4`` independently seeded ensembles one after another and
+        also gate on nested R-hat <= ``nested_rhat_max`` (Margossian et al. 2022).
+    n_ensembles
+        Number of ensembles; default 1, or 4 in strict mode.
+    moves
+        emcee moves; default :func:`default_moves`.
+    autocorr_factor
+        The chain must be at least this many autocorrelation times long.
+    log_prob_extras
+        Names (``{name: units}`` or a list, units ``"1"``) of per-walker side results
+        returned by the log-likelihood; they are stored with the chain and appear in
+        :meth:`SamplerOutput.posterior_draws`.
+    stop_event
+        A :class:`threading.Event`; when set, sampling ends cleanly after the current
+        step and the result is marked not converged (the checkpoint can be resumed).
+    tau_rtol
+        Largest relative change of the autocorrelation time between checks.
+    acceptance_range
+        Allowed per-walker acceptance fraction after burn-in.
+    nested_rhat_max
+        Strict-mode limit on nested R-hat.
+
+    Returns
+    -------
+    SamplerOutput
+        With ``diagnostics`` holding ``converged``, ``steps``, ``walkers``,
+        ``n_ensembles``, ``max_autocorr_time``, ``min_ess_bulk``, ``min_ess_tail``,
+        ``max_rhat`` (walkers as chains: informational), ``nested_rhat`` (two or more
+        ensembles), ``acceptance_fraction`` (mean), ``burn_in``, ``thin``,
+        ``stuck_walkers``, ``reasons`` and the settings.
+
+    Warns
+    -----
+    ConvergenceWarning
+        When a gate failed, naming what failed.
+
+    Raises
+    ------
+    FitError
+        NaN log-likelihood, degenerate or zero-posterior starting ensemble.
+    ConfigError
+        Bad settings, or a checkpoint that belongs to another run.
+    KeyboardInterrupt
+        Passed on after the finished steps are safely in the checkpoint.
+    """
+    from tqdm.auto import tqdm
+
+    n_ens = n_ensembles if n_ensembles is not None else (4 if strict else 1)
+    _validate(n_walkers, max_steps, min_steps, check_every, autocorr_factor, n_ens, strict,
+              space)
+    if log_prob_extras is None:
+        extras_units: dict[str, str] = {}
+    elif isinstance(log_prob_extras, Mapping):
+        extras_units = {str(k): str(v) for k, v in log_prob_extras.items()}
+    else:
+        extras_units = {str(k): "1" for k in log_prob_extras}
+    clash = sorted(set(extras_units) & set(space.names))
+    if clash:
+        raise ConfigError(f"extras {clash} share names with parameters", key="log_prob_extras")
+    moves = default_moves() if moves is None else moves
+
+    path = Path(checkpoint) if checkpoint is not None else None
+    if path is not None:
+        root = _open_checkpoint(path, space, n_walkers, seed, resume)
+    else:
+        if resume:
+            raise ConfigError("resume=True needs a checkpoint path", key="resume")
+        root = _root_seed(seed)
+    children = root.spawn(n_ens)
+    log_post = LogPosterior(log_likelihood, space, n_extras=len(extras_units))
+    positions = _initial_positions(x0, space, n_walkers, n_ens)
+    ensembles = [
+        _Ensemble(e, log_post, space, n_walkers, moves, path, children[e]) for e in range(n_ens)
+    ]
+
+    gate: dict[int, diag.GateCheck] = {}
+    stopped = False
+    pbar = tqdm(total=max_steps * n_ens, disable=not progress, desc="MCMC", unit="step",
+                dynamic_ncols=True)
+    try:
+        # -- phase 1: each ensemble to its own gate ----------------------------------------
+        for ens in ensembles:
+            done = _group_attr(path, ens.name, "polkit_gate_steps")
+            steps = ens.steps
+            pbar.update(min(steps, max_steps))
+            if done is not None:
+                gate[ens.index] = _gate_at(ens, int(done), space, autocorr_factor, tau_rtol,
+                                           acceptance_range, check_every)
+                continue
+            ens.start(positions(ens.index, ens.ball_rng) if steps == 0 else None, space)
+            while True:
+                n = ens.steps
+                at_check = n > 0 and n >= min_steps and (n % check_every == 0 or n >= max_steps)
+                if at_check:
+                    check = _gate_at(ens, n, space, autocorr_factor, tau_rtol,
+                                     acceptance_range, check_every)
+                    pbar.set_postfix_str(
+                        f"ensemble {ens.index}, tau {np.nanmax(check.tau):.1f}", refresh=False
+                    )
+                    if check.passed or n >= max_steps:
+                        gate[ens.index] = check
+                        _group_attr(path, ens.name, "polkit_gate_steps", n)
+                        break
+                target = min(max_steps, (n // check_every + 1) * check_every)
+                ens.advance(target - n, pbar, stop_event)
+        # -- phase 2: common length (and nested R-hat in strict mode) -----------------------
+        length = max(g.steps for g in gate.values())
+        while True:
+            for ens in ensembles:
+                if ens.steps < length:
+                    if ens.state is None:
+                        ens.start(None, space)
+                    ens.advance(length - ens.steps, pbar, stop_event)
+            if strict and length < max_steps:
+                chains = np.stack([ens.chain(length)[0] for ens in ensembles])
+                _, burn, thin = _burn_thin(chains, length)
+                rhat = float(np.max(diag.nested_rhat(_to_nested(chains[:, burn::thin]))))
+                if not rhat <= nested_rhat_max:
+                    log.info("nested R-hat %.4f at %d steps; extending", rhat, length)
+                    length = min(max_steps, length + max(check_every, length // 2))
+                    continue
+            break
+    except _Stopped:
+        stopped = True
+        log.info("sampling stopped on request")
+    finally:
+        pbar.close()
+
+    return _collect(ensembles, gate, space, root, stopped, strict, n_walkers, extras_units,
+                    moves, autocorr_factor, tau_rtol, nested_rhat_max, acceptance_range)
+
+
+def _gate_at(ens, n, space, autocorr_factor, tau_rtol, acceptance_range, check_every):
+    chain, lp = ens.chain(n)
+    previous = n - check_every
+    prev_tau = ens.tau_at(previous) if previous >= 2 else None
+    check = diag.convergence_gate(
+        chain, lp, prev_tau, names=space.names, autocorr_factor=autocorr_factor,
+        tau_rtol=tau_rtol, acceptance_range=acceptance_range,
+    )
+    ens.taus[n] = check.tau
+    log.debug("%s at %d steps: %s", ens.name, n, "; ".join(check.reasons) or "passed")
+    return check
+
+
+def _burn_thin(chains: np.ndarray, length: int) -> tuple[np.ndarray, int, int]:
+    """Autocorrelation times (E, P), burn-in (5 tau, at most half) and thin (tau / 2)."""
+    taus = np.stack([diag.autocorr_time(c[length // 4 : length]) for c in chains])
+    tau_max = float(np.max(taus))
+    if math.isfinite(tau_max):
+        burn = min(int(math.ceil(5.0 * tau_max)), length // 2)
+        thin = max(1, int(0.5 * tau_max))
+    else:
+        burn, thin = length // 2, 1
+    thin = min(thin, max(1, (length - burn) // 2))  # keep at least two draws per walker
+    return taus, burn, thin
+
+
+def _to_nested(kept: np.ndarray) -> np.ndarray:
+    """(E, D, W, P) -> (K=E, M=W, N=D, P) for nested R-hat."""
+    return np.moveaxis(kept, 2, 1)
+
+
+def _collect(ensembles, gate, space, root, stopped, strict, n_walkers, extras_units, moves,
+             autocorr_factor, tau_rtol, nested_rhat_max, acceptance_range) -> SamplerOutput:
+    reasons: list[str] = []
+    available = [ens for ens in ensembles if ens.steps > 0]
+    if not available:
+        raise FitError("sampling stopped before the first step was stored; nothing to report")
+    if stopped:
+        reasons.append("stopped on request before the convergence gate was passed")
+        lengths = [ens.steps for ens in available]
+        length = min(lengths)
+        if len(set(lengths)) > 1:
+            reasons.append(
+                f"ensembles had {lengths} steps; all cut to {length} (the checkpoint keeps "
+                "every step)"
+            )
+    else:
+        length = max(ens.steps for ens in available)
+        for ens in ensembles:
+            g = gate[ens.index]
+            if not g.passed:
+                prefix = f"ensemble {ens.index}: " if len(ensembles) > 1 else ""
+                reasons.extend(prefix + r for r in g.reasons)
+                reasons.append(prefix + f"stopped at max_steps = {g.steps}")
+    chains = np.stack([ens.chain(length)[0] for ens in available])
+    log_prob = np.stack([ens.chain(length)[1] for ens in available])
+    extras = {}
+    if extras_units:
+        blobs = []
+        for ens in available:
+            b = np.asarray(ens.backend.get_blobs(), dtype=float)[:length]
+            blobs.append(b.reshape(b.shape[0], b.shape[1], -1))
+        blobs = np.stack(blobs)
+        extras = {name: blobs[..., k] for k, name in enumerate(extras_units)}
+
+    taus, burn, thin = _burn_thin(chains, length)
+    acceptance = np.stack([diag.walker_acceptance(c[burn:]) for c in chains])
+    stuck = []
+    for e in range(chains.shape[0]):
+        for w in diag.stuck_walkers(acceptance[e], log_prob[e, burn:], space.ndim):
+            stuck.append([e, int(w)])
+    if stuck and not stopped:
+        reasons.append(f"stuck walkers after burn-in (ensemble, walker): {stuck[:10]}")
+
+    output = SamplerOutput(
+        space=space, chains=chains, log_prob=log_prob, acceptance=acceptance,
+        autocorr_time=taus, burn_in=burn, thin=thin, converged=False, reasons=reasons,
+        diagnostics={}, seed_entropy=_entropy_int(root),
+        seed_spawn_key=tuple(int(k) for k in root.spawn_key), extras=extras,
+        extras_units=extras_units,
+    )
+    az_diag = diag.arviz_diagnostics(output.posterior_draws()[space.names])
+    nested = None
+    if len(available) >= 2:
+        nested_values = diag.nested_rhat(_to_nested(chains[:, burn::thin]))
+        nested = float(np.max(nested_values))
+        if strict and not stopped and not nested <= nested_rhat_max:
+            reasons.append(
+                f"nested R-hat {nested:.4f} > {nested_rhat_max:g} over {len(available)} "
+                f"ensembles at max_steps = {length}"
+            )
+    converged = not reasons
+    tau_by_name = {n: float(np.max(taus[:, j])) for j, n in enumerate(space.names)}
+    diagnostics = {
+        "converged": converged,
+        "steps": int(length),
+        "walkers": int(n_walkers),
+        "n_ensembles": len(available),
+        "max_autocorr_time": float(np.max(taus)),
+        "autocorr_time": tau_by_name,
+        "min_ess_bulk": az_diag["min_ess_bulk"],
+        "min_ess_tail": az_diag["min_ess_tail"],
+        "max_rhat": az_diag["max_rhat"],
+        "ess_bulk": az_diag["ess_bulk"],
+        "ess_tail": az_diag["ess_tail"],
+        "rhat": az_diag["rhat"],
+        "rhat_note": "R-hat over walkers of one ensemble is informational (walkers are not "
+        "independent chains); strict mode gates on nested R-hat across ensembles",
+        "nested_rhat": nested,
+        "acceptance_fraction": float(np.mean(acceptance)),
+        "acceptance_min": float(np.min(acceptance)),
+        "acceptance_max": float(np.max(acceptance)),
+        "burn_in": int(burn),
+        "thin": int(thin),
+        "draws": int(output.posterior_draws().sizes["draw"] * chains.shape[0] * n_walkers),
+        "stuck_walkers": stuck,
+        "reasons": list(reasons),
+        "strict": bool(strict),
+        "stopped": bool(stopped),
+        "moves": _describe_moves(moves),
+        "autocorr_factor": float(autocorr_factor),
+        "tau_rtol": float(tau_rtol),
+        "acceptance_range": [float(a) for a in acceptance_range],
+        "nested_rhat_max": float(nested_rhat_max),
+        "seed_entropy": str(output.seed_entropy),
+        "seed_spawn_key": list(output.seed_spawn_key),
+    }
+    output.converged = converged
+    output.diagnostics = diagnostics
+    if converged:
+        log.info("converged after %d steps (tau max %.1f, min bulk ESS %.0f)", length,
+                 diagnostics["max_autocorr_time"], diagnostics["min_ess_bulk"])
+    else:
+        warnings.warn(
+            "MCMC did not converge: " + "; ".join(reasons), ConvergenceWarning, stacklevel=3
+        )
+    return output
