@@ -358,6 +358,16 @@ def test_masked_pixels_are_ignored():
     assert c.chi2_per_angle[2] == 0.0 and np.all(c.amplitudes[2] == 0.0)
 
 
+def test_non_finite_basis_gives_nan_not_a_silent_fit():
+    # common practice, no published source: NaN must reach the sampler, which refuses it
+    rng = np.random.default_rng(2)
+    basis, y, w = weighted_problem(rng, 4, 2, 20)
+    basis = np.stack([basis, basis])
+    basis[1, 2, 0, 5] = np.nan
+    chi2 = project_linear(y, w, basis)
+    assert np.isfinite(chi2[0]) and np.isnan(chi2[1])
+
+
 def test_bad_inputs_are_refused():
     basis = emission_basis(ANGLES, ENERGIES, **TRUTH)
     y = np.ones((ANGLES.size, ENERGIES.size))

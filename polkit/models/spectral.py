@@ -877,7 +877,8 @@ def project_linear(
     ``nonneg`` this is the constrained optimum of the convex problem, without it the
     ordinary least-squares optimum (robust to a singular column).  Numerically
     singular sub-problems (e.g. a branch lying entirely in masked pixels) are
-    skipped; such amplitudes are 0.
+    skipped; such amplitudes are 0.  A basis with NaN or infinite values gives a NaN
+    ``chi^2`` for that walker (never a silent finite value).
 
     Parameters
     ----------
@@ -998,7 +999,11 @@ def project_linear(
                 full = np.zeros_like(amps)
                 full[..., idx] = x
                 amps = np.where(better[..., None], full, amps)
-    chi2_angle = np.maximum(best, 0.0)
+    # a non-finite basis (e.g. parameters exactly at an exceptional point) must not be
+    # silently replaced by the background-only fit: give NaN, which the sampler reports
+    broken = ~(np.isfinite(g_bb).all(axis=(-2, -1)) & np.isfinite(cross).all(axis=(-2, -1)))
+    best[broken] = np.nan
+    chi2_angle = np.where(best < 0.0, 0.0, best)  # rounding below zero, NaN kept
     chi2 = chi2_angle.sum(axis=-1).reshape(batch)
     if not return_parts:
         return chi2
