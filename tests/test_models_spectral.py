@@ -383,7 +383,7 @@ def test_bad_inputs_are_refused():
         project_linear(y, 1.0, basis, background="quadratic")
     with pytest.raises(DataError, match="kappa"):
         simulate_map(ANGLES, ENERGIES, kind="reflectance", **TRUTH)
-    with pytest.raises(DataError, match="gamma_c >= 0"):
+    with pytest.raises(DataError, match="gamma_c > 0"):
         emission_basis(ANGLES, ENERGIES, **{**TRUTH, "gamma_c": np.array([1e-3, -1e-4])})
     with pytest.raises(DataError, match="n_eff > "):
         reflectance_basis([0.0, 80.0], ENERGIES, **{**TRUTH, "n_eff": 0.9}, kappa=1e-4)

@@ -242,15 +242,17 @@ def _check_physics(flat: dict, angles) -> None:
         v = flat.get(name)
         return [] if v is None else (v if isinstance(v, list) else [v])
 
-    for name in ("gamma_c", "gamma_x", "sigma_x", "kappa", "g"):
+    for name in ("sigma_x", "kappa", "g"):
         for v in values(name):
             if np.any(~(v >= 0)):
-                raise DataError(f"expected {name} >= 0 eV (a FWHM, width or coupling), found "
+                raise DataError(f"expected {name} >= 0 eV (a width or coupling), found "
                                 f"{v[~(v >= 0)][0]!r}.", field=name)
-    for name in ("e_c0", "e_x"):
+    # a zero linewidth is a delta line that no pixel grid can represent
+    for name in ("e_c0", "e_x", "gamma_c", "gamma_x"):
         for v in values(name):
             if np.any(~(v > 0)):
-                raise DataError(f"expected {name} > 0 eV, found {v[~(v > 0)][0]!r}.", field=name)
+                raise DataError(f"expected {name} > 0 eV, found {v[~(v > 0)][0]!r}.",
+                                field=name)
     n_eff = flat["n_eff"]
     limit = 0.0 if angles is None or angles.size == 0 else np.abs(np.sin(np.deg2rad(angles))).max()
     if np.any(~(n_eff > limit)):
@@ -519,9 +521,10 @@ def emission_basis(
         Effective index of the cavity mode.
     e_x, g, gamma_x
         Exciton energy, coupling (Rabi splitting ``2 g``) and FWHM, eV; lists for
-        several excitons (a single ``gamma_x`` is shared).
+        several excitons (a single ``gamma_x`` is shared).  Linewidths must be > 0 (a
+        zero-width line cannot be represented on a pixel grid).
     gamma_c
-        Cavity FWHM, eV.
+        Cavity FWHM, eV (> 0).
     sigma_x
         Gaussian exciton-energy disorder (standard deviation, eV) or ``None``.
     axis
@@ -595,9 +598,10 @@ def reflectance_basis(
         Effective index of the cavity mode.
     e_x, g, gamma_x
         Exciton energy, coupling (Rabi splitting ``2 g``) and FWHM, eV; lists for
-        several excitons (a single ``gamma_x`` is shared).
+        several excitons (a single ``gamma_x`` is shared).  Linewidths must be > 0 (a
+        zero-width line cannot be represented on a pixel grid).
     gamma_c
-        Cavity FWHM, eV.
+        Cavity FWHM, eV (> 0).
     sigma_x
         Gaussian exciton-energy disorder (standard deviation, eV) or ``None``.
     axis
