@@ -11,8 +11,8 @@ Every spectrum is fitted by :func:`scipy.optimize.least_squares` with a constant
 plus Lorentzian or Voigt lines (:mod:`polkit.models.lineshapes`).  Internally energies are in
 meV from a reference energy, which keeps the problem well scaled.
 
-Noise model.  When the data carry ``gain`` (electrons per count) and optionally
-``read_noise`` (counts) in their attrs, the variance of a pixel is
+Noise model.  When the data are in counts and carry ``gain`` (electrons per count) and
+optionally ``read_noise`` (counts) in their attrs, the variance of a pixel is
 ``counts / gain + read_noise**2`` (CCD counting statistics), evaluated first on a smoothed copy
 of the data and then on the fitted model (one reweighting step); the reported errors come from
 the weighted Jacobian without rescaling and ``reduced_chi2`` tells how well the model and the
@@ -170,8 +170,17 @@ class _Noise:
                 f"averaged over {self.n_avg} column(s)")
 
 
+_COUNT_UNITS = ("counts", "count", "adu")
+
+
 def _noise_from_attrs(attrs, kind: str, path, n_avg: int = 1) -> _Noise:
     if kind == "reflectance" or attrs.get("gain") is None:
+        return _Noise()
+    units = str(attrs.get("units", "counts")).strip().lower()
+    if units not in _COUNT_UNITS:
+        # e.g. counts rescaled to a density per energy: counting statistics no longer apply
+        logger.info("%s: gain ignored, the signal is in %r rather than counts; the noise is "
+                    "learnt from the residuals", path or "data", attrs.get("units"))
         return _Noise()
     fields = {}
     for name, default in (("gain", None), ("read_noise", 0.0)):
@@ -621,8 +630,8 @@ def peak_table(
     map
         Canonical map, dims (``angle`` [degree] or ``k`` [1/um], ``energy`` [eV, ascending]).
         ``attrs["kind"] == "reflectance"`` fits dips below a baseline; ``attrs["gain"]``
-        (and ``read_noise``) switch to counting-statistics weights.  NaN pixels are skipped
-        when ``attrs["masked"] == 1``.
+        (and ``read_noise``) switch to counting-statistics weights when the signal is in
+        counts.  NaN pixels are skipped when ``attrs["masked"] == 1``.
     n_peaks
         Largest number of lines (branches) per angle, 1 to 3.
     profile
@@ -957,7 +966,7 @@ def extract_observables(
         (``power`` or ``point``, ``energy`` [eV][, ``angle`` or ``k``]).  With an angle-like
         dim the spectra are averaged over a window around k = 0: by default the columns with
         |angle| <= 1 degree (|k| <= 0.15 1/um), always including the column nearest 0.
-        ``gain``/``read_noise`` attrs switch to counting-statistics weights.
+        ``gain``/``read_noise`` attrs switch to counting-statistics weights for counts.
     energy_window
         ``(low, high)`` in eV: the window of the fit and of the integration.
     angle_window

@@ -139,6 +139,17 @@ def test_voigt_profile_recovers_voigt_lines():
     assert {"fwhm_lorentzian", "sigma_gaussian"} <= set(table.data_vars)
 
 
+def test_gain_is_ignored_for_signals_that_are_not_counts():
+    # Source: simulated truth.  Counts rescaled to a density per energy (as after a wavelength
+    # to energy conversion) no longer follow counts/gain; the noise is then learnt instead.
+    da, centre, _ = single_line_map(13, "poisson", n_angle=40)
+    scaled = (da * 480.0).assign_attrs(da.attrs, units="counts nm/eV", gain=1.0, read_noise=0.0)
+    table = peak_table(scaled, n_peaks=1)
+    assert table.attrs["noise_model"].startswith("learnt")
+    p = pulls(table, centre)
+    assert 0.7 < np.std(p) < 1.4
+
+
 def test_two_branch_map_follows_the_anticrossing():
     # Source: branches of Hopfield, Phys. Rev. 112, 1555 (1958) as simulated truth
     da, lower, upper, _ = two_branch_map(seed=2)
