@@ -21,3 +21,7 @@ from .errors import (  # noqa: F401
     PolkitError,
     PolkitWarning,
 )
+
+from .data import load_map, load_series  # noqa: E402,F401
+from .workflows.dispersion import fit_dispersion  # noqa: E402,F401
+from .inference import FitResult  # noqa: E402,F401

@@ -27,7 +27,9 @@ EXIT_NOT_CONVERGED = 3
 
 def _add_common_fit_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--seed", type=int, default=None, help="root seed (recorded in the result)")
-    p.add_argument("--resume", action="store_true", help="continue from the HDF5 checkpoint in --out")
+    p.add_argument(
+        "--resume", action="store_true", help="continue from the HDF5 checkpoint in --out"
+    )
     p.add_argument("--out", type=Path, default=None, help="output folder")
     p.add_argument("--max-steps", type=int, default=None, help="MCMC step limit per ensemble")
     p.add_argument("--walkers", type=int, default=None, help="walkers per ensemble")
@@ -54,9 +56,10 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("inspect", help="describe a data file and write a quick-look PNG")
     p.add_argument("file", type=Path)
-    p.add_argument("--png", type=Path, default=None, help="quick-look PNG (default: FILE.png beside --out)")
+    p.add_argument(
+        "--png", type=Path, default=None, help="quick-look PNG (default: FILE.png beside --out)"
+    )
     p.add_argument("--out", type=Path, default=Path("polkit-out") / "inspect")
-    p.add_argument("--series", action="store_true", help="read the file as a power series")
     p.add_argument("--wavelength-medium", choices=["vacuum", "air"], default=None)
 
     p = sub.add_parser("dispersion", help="fit a coupled-oscillator model to an angle-resolved map")
@@ -76,18 +79,17 @@ def _cmd_inspect(args) -> int:
     from .data import inspect_file
 
     png = args.png or (args.out / (args.file.name + ".png"))
-    text = inspect_file(args.file, png=png, series=args.series,
-                        wavelength_medium=args.wavelength_medium)
-    print(text)
-    print(f"quick-look figure: {png}")
+    opts = {} if args.wavelength_medium is None else {"wavelength_medium": args.wavelength_medium}
+    print(inspect_file(args.file, png=png, **opts))
     return EXIT_OK
 
 
 def _cmd_demo(args) -> int:
     from .demo import run_demo
 
-    return run_demo(data=args.data, out=args.out, seed=args.seed, quick=args.quick,
-                    progress=not args.quiet)
+    return run_demo(
+        data=args.data, out=args.out, seed=args.seed, quick=args.quick, progress=not args.quiet
+    )
 
 
 def _cmd_dispersion(args) -> int:
@@ -95,9 +97,18 @@ def _cmd_dispersion(args) -> int:
 
     out = args.out or Path("polkit-out") / args.map.stem
     result = fit_dispersion(
-        args.map, model=args.model, kind=args.kind, peaks_only=args.peaks_only,
-        priors=args.priors, seed=args.seed, resume=args.resume, strict=args.strict,
-        out=out, max_steps=args.max_steps, n_walkers=args.walkers, progress=not args.quiet,
+        args.map,
+        model=args.model,
+        kind=args.kind,
+        peaks_only=args.peaks_only,
+        priors=args.priors,
+        seed=args.seed,
+        resume=args.resume,
+        strict=args.strict,
+        out=out,
+        max_steps=args.max_steps,
+        n_walkers=args.walkers,
+        progress=not args.quiet,
         wavelength_medium=args.wavelength_medium,
     )
     print(result.table())
@@ -120,15 +131,19 @@ def main(argv: list[str] | None = None) -> int:
     """Entry point of the ``polkit`` command; returns the exit status."""
     parser = build_parser()
     args = parser.parse_args(argv)
-    logging.basicConfig(level=logging.DEBUG if args.debug else logging.WARNING,
-                        format="polkit: %(levelname)s: %(message)s")
+    logging.basicConfig(
+        level=logging.DEBUG if args.debug else logging.WARNING,
+        format="polkit: %(levelname)s: %(message)s",
+    )
 
     def _show_warning(message, category, filename, lineno, file=None, line=None):
         if issubclass(category, PolkitWarning):
             label = "not converged" if issubclass(category, ConvergenceWarning) else "warning"
             print(f"polkit: {label}: {_one_line(message)}", file=sys.stderr)
         elif args.debug:
-            print(warnings.formatwarning(message, category, filename, lineno, line), file=sys.stderr)
+            print(
+                warnings.formatwarning(message, category, filename, lineno, line), file=sys.stderr
+            )
 
     warnings.showwarning = _show_warning
     try:
@@ -144,8 +159,11 @@ def main(argv: list[str] | None = None) -> int:
         print(f"polkit: error: {_one_line(exc)}", file=sys.stderr)
         return EXIT_WRITE
     except KeyboardInterrupt:
-        print("polkit: interrupted; finished MCMC steps are kept in the checkpoint "
-              "(rerun with --resume)", file=sys.stderr)
+        print(
+            "polkit: interrupted; finished MCMC steps are kept in the checkpoint "
+            "(rerun with --resume)",
+            file=sys.stderr,
+        )
         return 130
     return status
 

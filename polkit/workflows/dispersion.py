@@ -19,14 +19,13 @@ from __future__ import annotations
 import hashlib
 import logging
 import os
-import warnings
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 import xarray as xr
 
-from ..errors import DataError, DataWarning
+from ..errors import DataError
 from ..inference import FitResult, LogPosterior, apply_priors, find_map, run_ensemble
 from .dispersion_model import (
     MODELS,
@@ -35,14 +34,13 @@ from .dispersion_model import (
     guess_from_peaks,
     in_plane_axis,
     noise_inverse_variance,
-    warn_one_branch,
 )
 
 __all__ = ["fit_dispersion", "calibrate_noise", "file_sha256", "DispersionFit"]
 
 log = logging.getLogger(__name__)
 
-DEFAULT_STEPS = {"max_steps": 6000, "min_steps": 400, "check_every": 100}
+DEFAULT_STEPS = {"max_steps": 10000, "min_steps": 400, "check_every": 100}
 CHECKPOINT = "chains.h5"
 
 
@@ -79,10 +77,11 @@ def calibrate_noise(y: np.ndarray, model: np.ndarray, *, min_b: float | None = N
     mmax = float(m.max()) or 1.0
 
     def resid(p):
-        return (p[0] * m / mmax + p[1] - r2 / scale)
+        return p[0] * m / mmax + p[1] - r2 / scale
 
-    sol = least_squares(resid, x0=[0.1, 1.0], bounds=([0.0, 1e-9], [np.inf, np.inf]), loss="huber",
-                        f_scale=3.0)
+    sol = least_squares(
+        resid, x0=[0.1, 1.0], bounds=([0.0, 1e-9], [np.inf, np.inf]), loss="huber", f_scale=3.0
+    )
     a = sol.x[0] * scale / mmax
     b = sol.x[1] * scale
     if min_b is not None:
@@ -162,7 +161,7 @@ def fit_dispersion(
         Output folder (``posterior.nc``, ``summary.json``, figures, ``chains.h5``); nothing
         is written when ``None`` (then ``resume`` is unavailable).
     max_steps, min_steps, n_walkers
-        Sampler limits (defaults 6000, 400 and 32; more walkers for the three-oscillator model).
+        Sampler limits (defaults 10000, 400 and 32; more walkers for the three-oscillator model).
     progress
         Progress bar (tqdm.auto).
     angle_window, energy_window
@@ -192,19 +191,23 @@ def fit_dispersion(
     elif kind in ("emission", "reflectance"):
         kind_model = kind
     else:
-        raise DataError(f"expected kind 'emission', 'reflectance' or 'transmission', found {kind!r}.",
-                        path=source_name, field="kind")
+        raise DataError(
+            f"expected kind 'emission', 'reflectance' or 'transmission', found {kind!r}.",
+            path=source_name,
+            field="kind",
+        )
     if angle_window is not None or energy_window is not None:
         axis = in_plane_axis(da)
-        da = data.crop(da, **{axis: angle_window} if angle_window is not None else {},
-                       **({"energy": energy_window} if energy_window is not None else {}))
+        da = data.crop(
+            da,
+            **{axis: angle_window} if angle_window is not None else {},
+            **({"energy": energy_window} if energy_window is not None else {}),
+        )
     axis = in_plane_axis(da)
     da = da.transpose(axis, "energy")
 
+    # peak_table warns (DataWarning) when only one branch is visible: g and detuning degenerate
     table = peak_table(da, n_peaks=n_exc + 1, profile=profile)
-    one = warn_one_branch(table)
-    if one:
-        warnings.warn(f"{source_name}: {one}", DataWarning, stacklevel=2)
     guess = guess_from_peaks(table, n_excitons=n_exc)
     space = default_space(da["energy"].values, guess, n_excitons=n_exc, kind=kind_model)
     if priors is not None:
@@ -212,17 +215,25 @@ def fit_dispersion(
     x0 = np.array([_clip_into(p, guess.get(p.name, _default_start(p.name, guess))) for p in space])
 
     inv_var, noise_note = noise_inverse_variance(da)
-    problem = DispersionProblem(axis=axis, in_plane=da[axis].values.astype(float),
-                                energy=da["energy"].values.astype(float),
-                                y=np.asarray(da.values, dtype=float), inv_var=inv_var,
-                                space=space, n_excitons=n_exc, kind=kind_model, table=table,
-                                noise_note=noise_note)
+    problem = DispersionProblem(
+        axis=axis,
+        in_plane=da[axis].values.astype(float),
+        energy=da["energy"].values.astype(float),
+        y=np.asarray(da.values, dtype=float),
+        inv_var=inv_var,
+        space=space,
+        n_excitons=n_exc,
+        kind=kind_model,
+        table=table,
+        noise_note=noise_note,
+    )
 
     out_dir = Path(out) if out is not None else None
     checkpoint = (out_dir / CHECKPOINT) if out_dir is not None else None
     if resume and checkpoint is None:
-        raise DataError("resume needs the output folder that holds the checkpoint; pass out=.",
-                        field="resume")
+        raise DataError(
+            "resume needs the output folder that holds the checkpoint; pass out=.", field="resume"
+        )
     if checkpoint is not None and checkpoint.exists() and not resume:
         checkpoint.unlink()  # a fresh run replaces an old checkpoint explicitly
     steps = dict(DEFAULT_STEPS)
@@ -236,7 +247,7 @@ def fit_dispersion(
 
     table_post = LogPosterior(problem.table_log_likelihood, space)
     table_map = find_map(table_post, space, x0)
-    log.info("peak-table mode: %s", dict(zip(space.names, np.round(table_map.x, 6))))
+    log.info("peak-table mode: %s", dict(zip(space.names, np.round(table_map.x, 6), strict=True)))
     if peaks_only:
         path_used, like, start = "peak_table", problem.table_log_likelihood, table_map
         noise_note = "peak-table errors from the per-angle line fits, times noise_scale"
@@ -248,35 +259,67 @@ def fit_dispersion(
         sol = problem.model_map(start.x)
         model_map = np.asarray(sol.model).reshape(problem.y.shape)
         inv_var, a, b = calibrate_noise(problem.y, model_map)
-        problem.inv_var = inv_var
-        problem.__post_init__()
-        noise_note = (f"variance = a * model + b fitted to the MAP residuals (a = {a:.4g}, "
-                      f"b = {b:.4g} in squared signal units), times noise_scale^2")
+        noise_note = (
+            f"variance = a * model + b fitted to the MAP residuals (a = {a:.4g}, "
+            f"b = {b:.4g} in squared signal units), times noise_scale^2"
+        )
+        problem.set_noise(inv_var, noise_note)
         start = find_map(LogPosterior(problem.log_likelihood, space), space, start.x)
 
-    output = run_ensemble(like, space, start, n_walkers=walkers, seed=seed,
-                          checkpoint=checkpoint, resume=resume, progress=progress,
-                          strict=strict, stop_event=stop_event, **steps)
+    output = run_ensemble(
+        like,
+        space,
+        start,
+        n_walkers=walkers,
+        seed=seed,
+        checkpoint=checkpoint,
+        resume=resume,
+        progress=progress,
+        strict=strict,
+        stop_event=stop_event,
+        **steps,
+    )
 
     post_ds = output.posterior_draws()
     theta = np.stack([post_ds[n].values for n in space.names], axis=-1)
     derived = problem.derived(theta)
     strong = derived.pop("strong_coupling")
-    derived["strong_coupling_probability"] = (np.asarray(strong[0].mean()), "1",
-                                              "posterior probability that 2g > (gamma_C + gamma_X)/2")
+    derived["strong_coupling_probability"] = (
+        np.asarray(strong[0].mean()),
+        "1",
+        "posterior probability that 2g > (gamma_C + gamma_X)/2",
+    )
     observed = xr.Dataset({"map": da.assign_attrs(dict(da.attrs))})
-    observed["inverse_variance"] = ((axis, "energy"), problem.inv_var, {"units": f"1/({da.attrs.get('units', '1')})^2"})
+    observed["inverse_variance"] = (
+        (axis, "energy"),
+        problem.inv_var,
+        {"units": f"1/({da.attrs.get('units', '1')})^2"},
+    )
     for name in ("energy", "energy_error", "fwhm", "fwhm_error", "found"):
         if name in table:
-            observed[f"peak_{name}"] = table[name].rename({"peak": "peak_index"}) if "peak" in table[name].dims else table[name]
+            observed[f"peak_{name}"] = (
+                table[name].rename({"peak": "peak_index"})
+                if "peak" in table[name].dims
+                else table[name]
+            )
     for key in ("source", "sample", "position"):
         if key in da.attrs:
             observed.attrs[key] = str(da.attrs[key])
-    prov: dict[str, Any] = {"input_sha256": sha, "input": source_name, "path": path_used,
-                            "noise_model": noise_note, "peak_profile": profile}
+    prov: dict[str, Any] = {
+        "input_sha256": sha,
+        "input": source_name,
+        "path": path_used,
+        "noise_model": noise_note,
+        "peak_profile": profile,
+    }
     result = DispersionFit.from_samples(
-        output, space, derived=derived, model=f"{model}_oscillator", kind=kind_model,
-        observed=observed, provenance=prov,
+        output,
+        space,
+        derived=derived,
+        model=f"{model}_oscillator",
+        kind=kind_model,
+        observed=observed,
+        provenance=prov,
         extra_attrs={"fit_path": path_used, "in_plane_axis": axis, "n_excitons": n_exc},
     )
     if out_dir is not None:

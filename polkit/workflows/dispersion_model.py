@@ -58,13 +58,18 @@ _LONG_NAMES = {
     "noise_scale": "noise scale factor",
 }
 
+
 def in_plane_axis(da: xr.DataArray) -> str:
     """The in-plane dimension of a canonical map or peak table: ``angle`` or ``k``."""
     for name in ("angle", "k"):
         if name in da.dims:
             return name
-    raise DataError(f"expected an 'angle' or 'k' dimension, found dims {tuple(da.dims)}.",
-                    path=da.attrs.get("source"), field="dims")
+    raise DataError(
+        f"expected an 'angle' or 'k' dimension, found dims {tuple(da.dims)}.",
+        path=da.attrs.get("source"),
+        field="dims",
+    )
+
 
 # --------------------------------------------------------------------------------------
 # noise
@@ -83,6 +88,7 @@ def _robust_sigma(values: np.ndarray) -> float:
     mad = np.median(np.abs(d2 - np.median(d2)))
     return float(1.4826 * mad / np.sqrt(6.0))
 
+
 def noise_inverse_variance(da: xr.DataArray) -> tuple[np.ndarray, str]:
     """Inverse variance per pixel and a sentence saying how it was obtained.
 
@@ -100,7 +106,8 @@ def noise_inverse_variance(da: xr.DataArray) -> tuple[np.ndarray, str]:
         sigma_hat = float(np.std(finite)) * 1e-3 if finite.size else 1.0
         sigma_hat = sigma_hat if sigma_hat > 0 else 1.0
     gain = da.attrs.get("gain")
-    if da.attrs.get("kind", "emission") == "emission" and gain is not None:
+    counts = str(da.attrs.get("units", "")).strip() == "counts"  # not after a Jacobian
+    if da.attrs.get("kind", "emission") == "emission" and gain is not None and counts:
         gain = float(gain)
         rn = da.attrs.get("read_noise")
         # the second-difference estimate is dominated by the dark, low-count pixels
@@ -112,6 +119,7 @@ def noise_inverse_variance(da: xr.DataArray) -> tuple[np.ndarray, str]:
         how = f"uniform noise estimated from second differences (sigma {sigma_hat:.3g})"
     inv = np.where(np.isfinite(y), 1.0 / var, 0.0)
     return inv, how
+
 
 # --------------------------------------------------------------------------------------
 # initial guess from a peak table
@@ -126,10 +134,12 @@ def _table_arrays(table: xr.Dataset):
     found = np.isfinite(e) & np.isfinite(de) & (de > 0)
     return axis, x, e, de, w, dw, found
 
+
 def _branch_energies_2(x, axis, ex, ec0, n, g):
     ec = disp.cavity_energy(ec0, n, **({"angle_deg": x} if axis == "angle" else {"k": x}))
     lo, up = disp.two_mode_eigenvalues(ec, ex, g)
     return np.stack([lo.real, up.real], axis=-1)
+
 
 def guess_from_peaks(table: xr.Dataset, *, n_excitons: int = 1) -> dict[str, float]:
     """Automatic starting point from a peak table, by multi-start least squares.
@@ -141,8 +151,11 @@ def guess_from_peaks(table: xr.Dataset, *, n_excitons: int = 1) -> dict[str, flo
     """
     axis, x, e, de, w, dw, found = _table_arrays(table)
     if not found.any():
-        raise DataError("no branch visible: the peak table holds no peak at any angle.",
-                        path=table.attrs.get("source"), field="peak_table")
+        raise DataError(
+            "no branch visible: the peak table holds no peak at any angle.",
+            path=table.attrs.get("source"),
+            field="peak_table",
+        )
     xs = np.repeat(x[:, None], e.shape[1], axis=1)[found]
     es, ses = e[found], np.maximum(de[found], 1e-5)
     lo_e, hi_e = float(np.nanmin(es)), float(np.nanmax(es))
@@ -151,7 +164,8 @@ def guess_from_peaks(table: xr.Dataset, *, n_excitons: int = 1) -> dict[str, flo
     two = n_found >= 2
     if two.any():
         gaps = np.nanmax(np.where(found, e, np.nan), axis=1) - np.nanmin(
-            np.where(found, e, np.nan), axis=1)
+            np.where(found, e, np.nan), axis=1
+        )
         g0 = max(float(np.nanmin(gaps[two])) / 2.0, 1e-4)
     else:
         g0 = span / 4.0
@@ -174,7 +188,9 @@ def guess_from_peaks(table: xr.Dataset, *, n_excitons: int = 1) -> dict[str, flo
             ub = [hi_e + span, hi_e + span, 6.0, 2 * span]
             p0 = np.clip(p0, np.add(lb, 1e-9), np.subtract(ub, 1e-9))
             try:
-                sol = optimize.least_squares(resid, p0, bounds=(lb, ub), x_scale=[1e-3, 1e-3, 0.1, 1e-3])
+                sol = optimize.least_squares(
+                    resid, p0, bounds=(lb, ub), x_scale=[1e-3, 1e-3, 0.1, 1e-3]
+                )
             except (ValueError, np.linalg.LinAlgError):
                 continue
             if best is None or sol.cost < best.cost:
@@ -192,18 +208,27 @@ def guess_from_peaks(table: xr.Dataset, *, n_excitons: int = 1) -> dict[str, flo
         "exciton_linewidth": float(max(wmin, 1e-5) / MEV),
     }
     if n_excitons == 2:
-        guess.update({
-            "exciton2_energy": float(ex + max(2 * abs(g), span / 3)),
-            "rabi_splitting2": float(abs(g) / MEV),
-            "exciton2_linewidth": guess["exciton_linewidth"],
-        })
+        guess.update(
+            {
+                "exciton2_energy": float(ex + max(2 * abs(g), span / 3)),
+                "rabi_splitting2": float(abs(g) / MEV),
+                "exciton2_linewidth": guess["exciton_linewidth"],
+            }
+        )
     return guess
+
 
 # --------------------------------------------------------------------------------------
 # parameter space
 # --------------------------------------------------------------------------------------
-def default_space(energy: np.ndarray, guess: Mapping[str, float], *, n_excitons: int = 1,
-                  kind: str = "emission", sample_noise: bool = True) -> ParameterSpace:
+def default_space(
+    energy: np.ndarray,
+    guess: Mapping[str, float],
+    *,
+    n_excitons: int = 1,
+    kind: str = "emission",
+    sample_noise: bool = True,
+) -> ParameterSpace:
     """Default priors derived from the data's energy window and the starting point.
 
     Levels are uniform over a window that holds the data's energy range with a margin;
@@ -222,31 +247,63 @@ def default_space(energy: np.ndarray, guess: Mapping[str, float], *, n_excitons:
     rabi_hi = max(2.0 * span_mev, 2.0 * guess["rabi_splitting"])
     width_hi = max(span_mev, 2.0 * guess["cavity_linewidth"], 2.0 * guess["exciton_linewidth"])
     params = [
-        Parameter("exciton_energy", "eV", Prior.uniform(ex_lo, ex_hi), _LONG_NAMES["exciton_energy"]),
+        Parameter(
+            "exciton_energy", "eV", Prior.uniform(ex_lo, ex_hi), _LONG_NAMES["exciton_energy"]
+        ),
         Parameter("cavity_energy", "eV", Prior.uniform(ec_lo, ec_hi), _LONG_NAMES["cavity_energy"]),
         Parameter("n_eff", "1", Prior.uniform(1.0, 5.0), _LONG_NAMES["n_eff"]),
-        Parameter("rabi_splitting", "meV", Prior.uniform(0.0, rabi_hi), _LONG_NAMES["rabi_splitting"]),
-        Parameter("cavity_linewidth", "meV", Prior.loguniform(1e-3, width_hi),
-                  _LONG_NAMES["cavity_linewidth"]),
-        Parameter("exciton_linewidth", "meV", Prior.loguniform(1e-3, width_hi),
-                  _LONG_NAMES["exciton_linewidth"]),
+        Parameter(
+            "rabi_splitting", "meV", Prior.uniform(0.0, rabi_hi), _LONG_NAMES["rabi_splitting"]
+        ),
+        Parameter(
+            "cavity_linewidth",
+            "meV",
+            Prior.loguniform(1e-3, width_hi),
+            _LONG_NAMES["cavity_linewidth"],
+        ),
+        Parameter(
+            "exciton_linewidth",
+            "meV",
+            Prior.loguniform(1e-3, width_hi),
+            _LONG_NAMES["exciton_linewidth"],
+        ),
     ]
     if n_excitons == 2:
         params += [
-            Parameter("exciton2_energy", "eV", Prior.uniform(ex_lo, ex_hi + span),
-                      _LONG_NAMES["exciton2_energy"]),
-            Parameter("rabi_splitting2", "meV", Prior.uniform(0.0, rabi_hi),
-                      _LONG_NAMES["rabi_splitting2"]),
-            Parameter("exciton2_linewidth", "meV", Prior.loguniform(1e-3, width_hi),
-                      _LONG_NAMES["exciton2_linewidth"]),
+            Parameter(
+                "exciton2_energy",
+                "eV",
+                Prior.uniform(ex_lo, ex_hi + span),
+                _LONG_NAMES["exciton2_energy"],
+            ),
+            Parameter(
+                "rabi_splitting2",
+                "meV",
+                Prior.uniform(0.0, rabi_hi),
+                _LONG_NAMES["rabi_splitting2"],
+            ),
+            Parameter(
+                "exciton2_linewidth",
+                "meV",
+                Prior.loguniform(1e-3, width_hi),
+                _LONG_NAMES["exciton2_linewidth"],
+            ),
         ]
     if kind == "reflectance":
-        params.append(Parameter("mirror_coupling", "meV", Prior.loguniform(1e-3, 2 * width_hi),
-                                _LONG_NAMES["mirror_coupling"]))
+        params.append(
+            Parameter(
+                "mirror_coupling",
+                "meV",
+                Prior.loguniform(1e-3, 2 * width_hi),
+                _LONG_NAMES["mirror_coupling"],
+            )
+        )
     if sample_noise:
-        params.append(Parameter("noise_scale", "1", Prior.loguniform(0.1, 30.0),
-                                _LONG_NAMES["noise_scale"]))
+        params.append(
+            Parameter("noise_scale", "1", Prior.loguniform(0.1, 30.0), _LONG_NAMES["noise_scale"])
+        )
     return ParameterSpace(params)
+
 
 # --------------------------------------------------------------------------------------
 # the problem: theta -> physics, likelihoods, derived quantities
@@ -274,11 +331,22 @@ class DispersionProblem:
     _n_pixels: int = field(init=False, default=0)
 
     def __post_init__(self):
-        self._n_pixels = int(np.count_nonzero(self.inv_var > 0))
+        self.set_noise(self.inv_var, self.noise_note)
         self._idx = {n: i for i, n in enumerate(self.space.names)}
         if self.table is not None:
-            (_, _, self._te, self._tde, self._tw, self._tdw, self._tfound) = _table_arrays(self.table)
+            (_, _, self._te, self._tde, self._tw, self._tdw, self._tfound) = _table_arrays(
+                self.table
+            )
             self._t_all = self._tfound.sum(axis=1) == (self.n_excitons + 1)
+
+    def set_noise(self, inv_var: np.ndarray, note: str = "") -> None:
+        """Set the inverse variance per pixel and precompute the data side of the projection."""
+        self.inv_var = np.asarray(inv_var, dtype=float)
+        self.noise_note = note
+        self._n_pixels = int(np.count_nonzero(self.inv_var > 0))
+        self._weighted = spectral.prepare_map(
+            self.y, self.inv_var, background=self.background, energy_ev=self.energy
+        )
 
     # -- mapping ------------------------------------------------------------------
     def physics(self, theta: np.ndarray) -> dict:
@@ -292,8 +360,11 @@ class DispersionProblem:
             "axis": self.axis,
         }
         if self.n_excitons == 1:
-            p.update(e_x=c["exciton_energy"], g=0.5 * c["rabi_splitting"] * MEV,
-                     gamma_x=c["exciton_linewidth"] * MEV)
+            p.update(
+                e_x=c["exciton_energy"],
+                g=0.5 * c["rabi_splitting"] * MEV,
+                gamma_x=c["exciton_linewidth"] * MEV,
+            )
         else:
             p.update(
                 e_x=[c["exciton_energy"], c["exciton2_energy"]],
@@ -322,16 +393,16 @@ class DispersionProblem:
         and backgrounds per angle, ``s`` the noise scale and ``N`` the unmasked pixels.
         """
         theta = np.atleast_2d(theta)
-        chi2 = spectral.project_linear(self.y, self.inv_var, self.basis(theta), nonneg=True,
-                                       background=self.background)
+        chi2 = spectral.project_linear(self._weighted, None, self.basis(theta), nonneg=True)
         s = self._noise_scale(theta)
         return -0.5 * chi2 / (s * s) - self._n_pixels * np.log(s)
 
     def model_map(self, theta: np.ndarray):
         """Best-fit map and its parts for one parameter vector (a LinearSolution)."""
         theta = np.atleast_2d(theta)[:1]
-        sol = spectral.project_linear(self.y, self.inv_var, self.basis(theta), nonneg=True,
-                                      background=self.background, return_parts=True)
+        sol = spectral.project_linear(
+            self._weighted, None, self.basis(theta), nonneg=True, return_parts=True
+        )
         return sol
 
     # -- peak table ---------------------------------------------------------------
@@ -345,8 +416,9 @@ class DispersionProblem:
             raise FitError("no peak table was given to this problem.")
         theta = np.atleast_2d(theta)
         p = self.physics(theta)
-        poles, res = spectral.branch_poles(self.in_plane, **{k: v for k, v in p.items() if k != "axis"},
-                                           axis=self.axis)
+        poles, res = spectral.branch_poles(
+            self.in_plane, **{k: v for k, v in p.items() if k != "axis"}, axis=self.axis
+        )
         pos = line_maximum(poles, res)[:, :, None, :]  # (W, A, 1, K)
         wid = (-2.0 * poles.imag)[:, :, None, :]
         e = np.nan_to_num(self._te)[None, :, :, None]  # (1, A, P, 1)
@@ -356,7 +428,7 @@ class DispersionProblem:
         wd = np.where(w_ok, self._tdw, 1.0)[None, :, :, None]
         r2 = r2 + np.where(w_ok[None, :, :, None], ((wr - wid) / wd) ** 2, 0.0)
         n_peaks, k = r2.shape[2], r2.shape[3]
-        best = np.min(r2, axis=3)                   # (W, A, P)
+        best = np.min(r2, axis=3)  # (W, A, P)
         if n_peaks == k:
             ordered = np.take_along_axis(r2, np.arange(k)[None, None, :, None], axis=3)[..., 0]
             best = np.where(self._t_all[None, :, None], ordered, best)
@@ -391,19 +463,37 @@ class DispersionProblem:
         out["photon_fraction_k0"] = (c2, "1", "lower-polariton photon fraction |C|^2 at k = 0")
         out["exciton_fraction_k0"] = (x2, "1", "lower-polariton exciton fraction |X|^2 at k = 0")
         out["lp_energy_k0"] = (lp.real, "eV", "lower-polariton energy at k = 0")
-        out["lp_linewidth_k0"] = (-2.0 * lp.imag / MEV, "meV", "lower-polariton linewidth at k = 0 (FWHM)")
+        out["lp_linewidth_k0"] = (
+            -2.0 * lp.imag / MEV,
+            "meV",
+            "lower-polariton linewidth at k = 0 (FWHM)",
+        )
         m_c = disp.photon_mass(ec0, n)
         with np.errstate(divide="ignore", invalid="ignore"):
             m_lp = 1.0 / (c2 / m_c + x2 / disp.DEFAULT_EXCITON_MASS_ME)
         out["lp_effective_mass"] = (m_lp, "m_e", "lower-polariton effective mass at k = 0")
         out["cavity_photon_mass"] = (m_c, "m_e", "cavity photon mass E_C0 n_eff^2 / c^2")
-        out["cavity_lifetime"] = (disp.lifetime_ps(gc), "ps", "cavity photon lifetime hbar / gamma_C")
-        out["lp_lifetime_k0"] = (disp.lifetime_ps(-2.0 * lp.imag / MEV), "ps",
-                                 "lower-polariton lifetime at k = 0")
-        out["quality_factor"] = (disp.quality_factor(ec0, gc), "1", "cavity quality factor E_C0 / gamma_C")
+        out["cavity_lifetime"] = (
+            disp.lifetime_ps(gc),
+            "ps",
+            "cavity photon lifetime hbar / gamma_C",
+        )
+        out["lp_lifetime_k0"] = (
+            disp.lifetime_ps(-2.0 * lp.imag / MEV),
+            "ps",
+            "lower-polariton lifetime at k = 0",
+        )
+        out["quality_factor"] = (
+            disp.quality_factor(ec0, gc),
+            "1",
+            "cavity quality factor E_C0 / gamma_C",
+        )
         strong = (c["rabi_splitting"] > 0.5 * (gc + gx)).astype(float)
-        out["strong_coupling"] = (strong, "1",
-                                  "indicator 2g > (gamma_C + gamma_X)/2; its mean is the probability")
+        out["strong_coupling"] = (
+            strong,
+            "1",
+            "indicator 2g > (gamma_C + gamma_X)/2; its mean is the probability",
+        )
         return {k: (np.reshape(v, shape), u, ln) for k, (v, u, ln) in out.items()}
 
     def branch_curves(self, draws: np.ndarray, grid: np.ndarray | None = None):
@@ -414,13 +504,20 @@ class DispersionProblem:
         grid = self.in_plane if grid is None else np.asarray(grid, dtype=float)
         t = np.atleast_2d(draws)
         p = self.physics(t)
-        poles, _ = spectral.branch_poles(grid, **{k: v for k, v in p.items() if k != "axis"},
-                                         axis=self.axis)
+        poles, _ = spectral.branch_poles(
+            grid, **{k: v for k, v in p.items() if k != "axis"}, axis=self.axis
+        )
         kw = {"angle_deg": grid} if self.axis == "angle" else {"k": grid}
         cav = disp.cavity_energy(p["e_c0"][:, None], p["n_eff"][:, None], **kw)
-        exs = np.stack([np.broadcast_to(e, (t.shape[0],)) for e in
-                        (p["e_x"] if isinstance(p["e_x"], list) else [p["e_x"]])], axis=-1)
+        exs = np.stack(
+            [
+                np.broadcast_to(e, (t.shape[0],))
+                for e in (p["e_x"] if isinstance(p["e_x"], list) else [p["e_x"]])
+            ],
+            axis=-1,
+        )
         return grid, poles.real, cav, exs
+
 
 def line_maximum(poles: np.ndarray, residues: np.ndarray) -> np.ndarray:
     """Energy of the maximum of a branch line ``-Im(r / (E - eps)) / pi``.
@@ -437,13 +534,3 @@ def line_maximum(poles: np.ndarray, residues: np.ndarray) -> np.ndarray:
     denom = a + np.abs(residues)
     shift = np.divide(-h * b, denom, out=np.zeros_like(h), where=denom > 0)
     return poles.real + shift
-
-
-def warn_one_branch(table: xr.Dataset) -> str | None:
-    """A sentence when at most one branch is seen at every angle (g and detuning degenerate)."""
-    _, _, _, _, _, _, found = _table_arrays(table)
-    if found.any() and found.sum(axis=1).max() < 2:
-        return ("only one branch is visible at every angle: the Rabi splitting and the detuning "
-                "are degenerate (one branch constrains mostly their combination); expect wide, "
-                "correlated intervals, or supply a prior on the exciton energy.")
-    return None
