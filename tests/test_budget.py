@@ -210,9 +210,10 @@ def test_exciton_route_matches_polariton_constant(tmp_path):
     # Source: g_LP = g_X |X|^4 / N_QW (DESIGN section 4): |X|^2 = 0.5, g_X = 8, N = 2 -> g_LP = 1
     disp = _dispersion(tmp_path / "disp", [0.1, 0.2], [1.6, 1.6], x2=0.5)
     pol = _power(tmp_path / "pol", [1.0, 1.0])
-    exc = _power(tmp_path / "exc", [8.0, 8.0], name="exciton_interaction_constant")
+    exc = _power(tmp_path / "exc", [8.0, 8.0], name="exciton_interaction_constant",
+                 provenance={"n_wells": 2})
     a = energy_budget(disp, pol, _device(), seed=3, n_draws=2)
-    b = energy_budget(disp, exc, _device(quantum_wells=2), seed=3, n_draws=2,
+    b = energy_budget(disp, exc, _device(), seed=3, n_draws=2,
                       interaction="exciton")
     np.testing.assert_allclose(b.energy_per_operation, a.energy_per_operation, rtol=1e-12)
     np.testing.assert_allclose(b.draws("interaction_constant"), 1.0, rtol=1e-12)
@@ -421,6 +422,20 @@ def test_demo_device_file_loads():
     assert (dev.n_nodes, dev.n_inputs, dev.n_outputs) == (16, 4, 4)
     assert dev.node_size_um.value == 3.0 and dev.temperature_K.value == 4.0
     assert dev.coupling_efficiency.sigma_log == 0.3
+
+
+def test_device_round_trips_through_its_file_form():
+    dev = load_device(DEMO_DEVICE)
+    again = load_device(dev.to_dict())
+    assert again == dev
+    first = dev.draw(np.random.default_rng(8), 50)
+    second = again.draw(np.random.default_rng(8), 50)
+    assert first.keys() == second.keys()
+    for name, values in first.items():
+        np.testing.assert_allclose(second[name], values, rtol=1e-12, err_msg=name)
+    # Source: truncation at the ambient temperature keeps every draw below 300 K
+    temps = dev.draw(np.random.default_rng(1), 2000)["temperature_K"]
+    assert np.all(temps < 300.0) and np.median(temps) == pytest.approx(4.0, rel=0.01)
 
 
 def test_seed_reproduces(spread):

@@ -136,7 +136,7 @@ _DEVICE_QUANTITIES: dict[str, tuple[str, str, str, float | None, bool]] = {
     "cold_fraction": ("fraction", "cold_fraction", "nonnegative", 1.0, False),
 }
 _ARRAY_KEYS = ("nodes", "inputs", "outputs")
-_PLAIN_KEYS = ("note", "array", "rate_convention", "quantum_wells")
+_PLAIN_KEYS = ("note", "array", "rate_convention")
 _ENTRY_KEYS = ("value", "error", "rel_error", "units")
 
 
@@ -177,9 +177,6 @@ class Device:
         Fraction of the delivered optical energy dissipated at the cold stage (default 1).
     rate_convention
         ``"linewidth"`` (``gamma / h``, default) or ``"lifetime"`` (``1 / tau``).
-    quantum_wells
-        Divisor for the exciton route (``g_LP = g_X |X|^4 / N``); 1 unless the power result's
-        exciton constant is per well.
     """
 
     coupling_efficiency: UncertainInput
@@ -199,7 +196,6 @@ class Device:
     cooler_fraction_of_carnot: UncertainInput = UncertainInput(1.0, 0.0, "1", 1.0)
     cold_fraction: UncertainInput = UncertainInput(1.0, 0.0, "1", 1.0)
     rate_convention: str = "linewidth"
-    quantum_wells: int = 1
     note: str = ""
     source: str | None = field(default=None, compare=False)
 
@@ -241,7 +237,6 @@ class Device:
             out["note"] = self.note
         out["array"] = {"nodes": self.n_nodes, "inputs": self.n_inputs, "outputs": self.n_outputs}
         out["rate_convention"] = self.rate_convention
-        out["quantum_wells"] = self.quantum_wells
         for key, (_, attr, _, _, _) in _DEVICE_QUANTITIES.items():
             q = getattr(self, attr)
             if q is not None:
@@ -272,7 +267,6 @@ def load_device(source: str | os.PathLike | Mapping[str, Any]) -> Device:
         cooler_fraction_of_carnot = {value = 1.0, units = "1"} # optional, default 1
         cold_fraction = {value = 1.0, units = "1"}             # optional, default 1
         rate_convention = "linewidth"                          # or "lifetime"
-        quantum_wells = 1                                      # exciton route only
 
     Refused with a :class:`~polkit.errors.ConfigError` naming the key: unknown keys,
     missing required keys, quantities without ``units`` or with units of another
@@ -337,7 +331,6 @@ def load_device(source: str | os.PathLike | Mapping[str, Any]) -> Device:
             path=path,
             key="rate_convention",
         )
-    wells = _whole(raw.get("quantum_wells", 1), "quantum_wells", path, minimum=1)
 
     fields: dict[str, UncertainInput] = {}
     for key, (dim, attr, lower, upper, _) in _DEVICE_QUANTITIES.items():
@@ -361,7 +354,6 @@ def load_device(source: str | os.PathLike | Mapping[str, Any]) -> Device:
         n_inputs=counts["inputs"],
         n_outputs=counts["outputs"],
         rate_convention=convention,
-        quantum_wells=wells,
         note=note,
         source=path,
         **fields,
@@ -817,8 +809,8 @@ def energy_budget(
         ``"polariton"`` (default): ``g_LP`` is the power result's ``interaction_constant``.
         ``"exciton"``: ``g_LP = g_X |X|^4 / N`` with the power result's
         ``exciton_interaction_constant``, the dispersion draws of ``exciton_fraction_k0``
-        and ``N`` = the device's ``quantum_wells`` (for a device at another detuning than the
-        power series).
+        and ``N`` = the ``n_wells`` recorded in the power result's provenance (1, i.e. per
+        mode, when absent), for a device at another detuning than the power series.
 
     Returns
     -------
@@ -885,9 +877,14 @@ def energy_budget(
         inputs[name] = (vals[i_disp], _CANONICAL[name], long_names[name], "dispersion")
     inputs[g_name] = (p_vals[g_name][i_pow], _CANONICAL[g_name], long_names[g_name], "power")
     if interaction == "exciton":
-        g_lp = (inputs[g_name][0] * inputs["exciton_fraction_k0"][0] ** 2 / dev.quantum_wells)
-        inputs["interaction_constant"] = (g_lp, "ueV um^2",
-                                          "polariton interaction constant g_X |X|^4 / N", "derived")
+        wells = pw.provenance.get("n_wells") or 1
+        if isinstance(wells, bool) or not isinstance(wells, (int, float)) or wells < 1:
+            raise DataError(f"expected a whole number of wells >= 1, found {wells!r}",
+                            path=power_where, field="n_wells")
+        g_lp = inputs[g_name][0] * inputs["exciton_fraction_k0"][0] ** 2 / wells
+        inputs["interaction_constant"] = (
+            g_lp, "ueV um^2", f"polariton interaction constant g_X |X|^4 / N (N = {wells:g})",
+            "derived")
     dev_meta = {
         "node_area_um2": ("node_area", "um2", "node (mode) area A"),
         "node_size_um": ("node_size", "um", "node diameter (area pi d^2 / 4)"),
