@@ -9,15 +9,24 @@ processed raise :class:`~polkit.errors.DataError`.
 Cosmic-ray test
     A cosmic ray hits one or two pixels; spectral lines and dispersion branches are
     extended along some direction of the map.  Each pixel is therefore compared with
-    the median of its neighbours at distances 1 and 2 along four directions (angle,
-    energy and the two diagonals).  Its excess over the *best-matching* direction (the
-    smallest excess) must exceed ``threshold`` noise sigmas for the pixel to be a
-    spike, so a pixel on a line is protected by the direction the line runs along.
-    The noise is a robust local scale (1.4826 times the local median, over a 7 x 7
-    window, of the median absolute directional residual), raised to the CCD model
+    the median of its neighbours at one and two steps along several directions (along
+    angle, along energy, and slopes of 1/2, 1, 2, ... ``max_slope`` energy pixels per
+    angle pixel either way).  Its excess over the *best-matching* direction (the smallest excess)
+    must exceed ``threshold`` noise sigmas, and so must its excess over the mean of
+    the brightest pixels within +-``max_slope`` energy pixels in the two neighbouring
+    angle rows, for the pixel to be a spike: a pixel on a line is protected by the
+    direction the line runs along and by the same line in the next rows.  The noise is a robust
+    local scale: for each direction, 1.4826 times the median of the absolute residuals
+    in 7 x 7 pixel blocks, and the smallest of these (the direction that follows the
+    local structure sees only noise); it is raised to the CCD model
     sqrt(signal/gain + read_noise^2) when ``gain`` is known.  A flagged pixel is
-    replaced by the best-direction prediction.  Very narrow (<= 2 pixel) bright lines
-    running between the four directions can be flagged; raise ``threshold`` for those.
+    replaced by the prediction of the direction whose four neighbours agree best
+    (the direction running along the local contour of the map).  Bright lines narrower
+    than about three pixels that disperse faster than ``max_slope`` energy pixels per
+    angle pixel can be flagged; raise ``max_slope`` (or ``threshold``) for those.  A
+    spike on the flank of a bright line is found only if it also stands ``threshold``
+    sigmas above that line's peak in the neighbouring angle rows.  A feature one pixel
+    wide in both angle and energy cannot be told from a spike.
 """
 
 from __future__ import annotations
@@ -29,7 +38,6 @@ from dataclasses import dataclass
 import numpy as np
 import xarray as xr
 from scipy.interpolate import interp1d
-from scipy.ndimage import median_filter
 from scipy.optimize import minimize_scalar
 
 from ..errors import ConfigError, DataError
@@ -50,7 +58,6 @@ __all__ = [
 
 logger = logging.getLogger(__name__)
 
-_DIRECTIONS = ((1, 0), (0, 1), (1, 1), (1, -1))
 _MAD_TO_SIGMA = 1.4826
 
 
@@ -200,38 +207,91 @@ def subtract_background(da: xr.DataArray, *, angle=None, k=None, energy=None) ->
     )
 
 
-def _neighbour_stack(x: np.ndarray, direction: tuple[int, int]) -> np.ndarray:
-    pad = np.pad(x, 2, mode="reflect")
+def _directions(max_slope: int) -> list[tuple[int, int]]:
+    """(angle step, energy step) pairs: along angle, along energy, slopes 1/2 .. max_slope."""
+    out = [(1, 0), (0, 1), (2, 1), (2, -1)]
+    for m in range(1, max_slope + 1):
+        out += [(1, m), (1, -m)]
+    return out
+
+
+def _neighbour_stack(x: np.ndarray, direction: tuple[int, int], pad: int) -> np.ndarray:
+    padded = np.pad(x, pad, mode="symmetric")
     n0, n1 = x.shape
     out = []
     for step in (-2, -1, 1, 2):
-        i, j = 2 + step * direction[0], 2 + step * direction[1]
-        out.append(pad[i : i + n0, j : j + n1])
+        i, j = pad + step * direction[0], pad + step * direction[1]
+        out.append(padded[i : i + n0, j : j + n1])
     return np.stack(out)
 
 
-def _spike_pass(x: np.ndarray, threshold: float, gain, read_noise) -> tuple[np.ndarray, np.ndarray]:
-    preds = np.stack([np.nanmedian(_neighbour_stack(x, d), axis=0) for d in _DIRECTIONS])
+def _row_envelope(x: np.ndarray, reach: int) -> np.ndarray:
+    """Mean of the two neighbouring angle rows' maxima within +-reach energy pixels."""
+    filled = np.where(np.isnan(x), -np.inf, x)
+    pad = np.pad(filled, ((1, 1), (reach, reach)), mode="reflect")
+    n0, n1 = x.shape
+    sides = []
+    for di in (0, 2):
+        rows = pad[di : di + n0]
+        sides.append(np.max([rows[:, dj : dj + n1] for dj in range(2 * reach + 1)], axis=0))
+    return 0.5 * (sides[0] + sides[1])
+
+
+_BLOCK = 7
+
+
+def _median4(stack: np.ndarray, has_nan: bool) -> tuple[np.ndarray, np.ndarray]:
+    """Median (mean of the middle two) and spread (max - min) of four values along axis 0."""
+    if has_nan:
+        return np.nanmedian(stack, axis=0), np.nanmax(stack, axis=0) - np.nanmin(stack, axis=0)
+    hi, lo = stack.max(axis=0), stack.min(axis=0)
+    return 0.5 * (stack.sum(axis=0) - hi - lo), hi - lo
+
+
+def _block_median(r: np.ndarray, size: int) -> np.ndarray:
+    """Median over size x size blocks, spread back over the pixels of each block."""
+    n0, n1 = r.shape
+    m0, m1 = -(-n0 // size) * size, -(-n1 // size) * size
+    padded = np.pad(r, ((0, m0 - n0), (0, m1 - n1)), mode="symmetric")
+    blocks = padded.reshape(m0 // size, size, m1 // size, size).transpose(0, 2, 1, 3)
+    med = np.median(blocks.reshape(m0 // size, m1 // size, size * size), axis=-1)
+    return np.repeat(np.repeat(med, size, axis=0), size, axis=1)[:n0, :n1]
+
+
+def _spike_pass(
+    x: np.ndarray, threshold: float, gain, read_noise, max_slope: int
+) -> tuple[np.ndarray, np.ndarray]:
+    has_nan = bool(np.isnan(x).any())
+    pad = 2 * max_slope + 2
+    pairs = [_median4(_neighbour_stack(x, d, pad), has_nan) for d in _directions(max_slope)]
+    preds = np.stack([p for p, _ in pairs])
+    spreads = np.stack([s for _, s in pairs])
     resid = x[None] - preds
-    best = np.nanargmin(np.where(np.isnan(resid), np.inf, resid), axis=0)
+    best = np.argmin(np.where(np.isnan(resid), np.inf, resid), axis=0)
     excess = np.take_along_axis(resid, best[None], axis=0)[0]
     pred = np.take_along_axis(preds, best[None], axis=0)[0]
-    spread = np.nanmedian(np.abs(resid), axis=0)
-    spread = np.where(np.isfinite(spread), spread, np.nanmedian(spread))
-    sigma = _MAD_TO_SIGMA * median_filter(spread, size=7, mode="reflect")
+    flattest = np.argmin(np.where(np.isnan(spreads), np.inf, spreads), axis=0)
+    replacement = np.take_along_axis(preds, flattest[None], axis=0)[0]
+    scales = []
+    for r in np.abs(resid):
+        fill = np.nanmedian(r) if np.isfinite(r).any() else 0.0
+        r = np.where(np.isfinite(r), r, fill)
+        scales.append(_MAD_TO_SIGMA * _block_median(r, _BLOCK))
+    sigma = np.min(scales, axis=0)
     if gain is not None:
         model = np.sqrt(np.clip(pred, 0, None) / gain + (read_noise or 0.0) ** 2)
         sigma = np.maximum(sigma, model)
     finite = x[np.isfinite(x)]
     floor = 1e-12 * (np.max(np.abs(finite)) if finite.size else 1.0)
     sigma = np.maximum(sigma, floor)
+    envelope = _row_envelope(x, max_slope)
     with np.errstate(invalid="ignore"):
-        flagged = np.isfinite(x) & (excess > threshold * sigma)
-    return flagged, pred
+        flagged = np.isfinite(x) & (excess > threshold * sigma) & (x - envelope > threshold * sigma)
+    return flagged, replacement
 
 
 def remove_cosmic_rays(
-    da: xr.DataArray, *, threshold: float = 8.0, passes: int = 2
+    da: xr.DataArray, *, threshold: float = 8.0, passes: int = 2, max_slope: int = 3
 ) -> xr.DataArray:
     """Replace cosmic-ray spikes by the prediction of their neighbours.
 
@@ -244,6 +304,10 @@ def remove_cosmic_rays(
         above which a pixel is a spike.
     passes
         Repeat the test this many times (catches spikes hiding next to each other).
+    max_slope
+        Steepest dispersion, in energy pixels per angle pixel, that lines may have
+        and still be told apart from spikes (a larger value protects steeper lines
+        but makes spikes next to lines harder to see).
 
     Returns
     -------
@@ -256,12 +320,16 @@ def remove_cosmic_rays(
         raise ConfigError(f"expected a positive threshold; found {threshold!r}", key="threshold")
     if int(passes) < 1:
         raise ConfigError(f"expected passes >= 1; found {passes!r}", key="passes")
+    if isinstance(max_slope, bool) or not isinstance(max_slope, (int, np.integer)) or max_slope < 1:
+        raise ConfigError(
+            f"expected an integer max_slope >= 1; found {max_slope!r}", key="max_slope"
+        )
     x = da.values.copy()
     gain = da.attrs.get("gain")
     read_noise = da.attrs.get("read_noise")
     replaced = np.zeros(x.shape, dtype=bool)
     for _ in range(int(passes)):
-        flagged, pred = _spike_pass(x, float(threshold), gain, read_noise)
+        flagged, pred = _spike_pass(x, float(threshold), gain, read_noise, int(max_slope))
         if not flagged.any():
             break
         x[flagged] = pred[flagged]
@@ -306,7 +374,7 @@ def bin_map(da: xr.DataArray, *, angle: int = 1, k: int = 1, energy: int = 1) ->
         return da.copy()
     coarse = da.coarsen(windows, boundary="trim", coord_func="mean")
     kind = da.attrs["kind"]
-    out = coarse.sum(skipna=False) if kind == "emission" else coarse.mean(skipna=False)
+    out = coarse.reduce(np.sum) if kind == "emission" else coarse.reduce(np.mean)
     attrs = dict(da.attrs)
     n = int(np.prod(list(windows.values())))
     if kind == "emission" and "read_noise" in attrs:
