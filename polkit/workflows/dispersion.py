@@ -60,33 +60,60 @@ def _array_sha256(da: xr.DataArray) -> str:
     return h.hexdigest()
 
 
-def calibrate_noise(y: np.ndarray, model: np.ndarray, *, min_b: float | None = None):
-    """Variance function ``var = a * max(model, 0) + b`` fitted to squared residuals.
+def _leverage(design: np.ndarray, inv_var: np.ndarray) -> np.ndarray:
+    """Diagonal of the weighted hat matrix per angle: ``h = w x^T (X^T W X)^-1 x``.
 
-    A quasi-likelihood estimate of the noise: for counts ``a`` is 1/gain (shot noise) and
-    ``b`` the read-noise variance; for reflectance ``a`` comes out near zero.  Robust to
-    outliers through a Huber loss.  # common practice, no published source
+    ``design`` has shape ``(A, E, K)`` (the linear columns of each angle's fit).
+    """
+    w = inv_var[..., None]
+    gram = np.einsum("aek,aej->akj", design * w, design)
+    gram_inv = np.linalg.pinv(gram)
+    return np.einsum("aek,akj,aej->ae", design, gram_inv, design) * inv_var
+
+
+def calibrate_noise(y: np.ndarray, model: np.ndarray, *, gain: float | None = None,
+                    read_noise: float | None = None, design: np.ndarray | None = None):
+    """Variance function ``var = a * max(model, 0) + b`` for the whole-map likelihood.
+
+    The variance is a function of the *model* (not of the noisy data), so the weights do
+    not correlate with the noise.  With a known CCD gain (electrons per count) and read
+    noise the detector model is used as it stands: ``a = 1/gain``, ``b = read_noise^2``.
+    Otherwise ``a`` and ``b`` are estimated from the squared residuals ``r^2`` of the MAP,
+    whose expectation is ``a m + b``: iteratively reweighted least squares with weights
+    ``1/(a m + b)^2`` (the variance of ``r^2`` for Gaussian noise is ``2 var^2``), which is
+    unbiased, unlike a robust loss on the skewed ``r^2``.  With ``design`` (the per-angle
+    linear columns, shape ``(A, E, K)``) the squared residuals are first divided by
+    ``1 - h`` (``h`` the leverage): a fitted amplitude absorbs part of the noise where its
+    column is large, so ``E[r^2] = var (1 - h)``.  # common practice (variance-function
+    estimation by IRLS with leverage correction, e.g. Carroll and Ruppert, Transformation
+    and Weighting in Regression, 1988)
     Returns ``(inverse_variance, a, b)``.
     """
-    from scipy.optimize import least_squares
-
     ok = np.isfinite(y) & np.isfinite(model)
-    m = np.clip(model[ok], 0.0, None)
-    r2 = (y[ok] - model[ok]) ** 2
-    scale = float(np.median(r2)) or 1.0
-    mmax = float(m.max()) or 1.0
-
-    def resid(p):
-        return p[0] * m / mmax + p[1] - r2 / scale
-
-    sol = least_squares(
-        resid, x0=[0.1, 1.0], bounds=([0.0, 1e-9], [np.inf, np.inf]), loss="huber", f_scale=3.0
-    )
-    a = sol.x[0] * scale / mmax
-    b = sol.x[1] * scale
-    if min_b is not None:
-        b = max(b, min_b)
-    var = a * np.clip(model, 0.0, None) + b
+    m_all = np.clip(model, 0.0, None)
+    if gain is not None and read_noise is not None:
+        a, b = 1.0 / float(gain), float(read_noise) ** 2
+    else:
+        m = m_all[ok]
+        r2_all = (y - model) ** 2
+        if design is not None:
+            lev = _leverage(design, np.where(ok, 1.0 / (m_all + np.median(r2_all[ok])), 0.0))
+            r2_all = r2_all / np.clip(1.0 - lev, 0.05, 1.0)
+        r2 = r2_all[ok]
+        design = np.stack([m, np.ones_like(m)], axis=1)
+        if gain is not None:
+            a = 1.0 / float(gain)
+            b = max(float(np.mean(r2 - a * m)), 1e-12 * float(np.mean(r2)) + 1e-300)
+        else:
+            a, b = 0.0, float(np.mean(r2)) or 1.0
+            for _ in range(6):
+                w = 1.0 / (a * m + b) ** 2
+                coef, *_ = np.linalg.lstsq(design * np.sqrt(w)[:, None], r2 * np.sqrt(w),
+                                           rcond=None)
+                a, b = max(float(coef[0]), 0.0), float(coef[1])
+                if b <= 0:
+                    b = max(float(np.mean(r2 - a * m)), 1e-3 * float(np.mean(r2)))
+    var = a * m_all + b
     inv = np.where(np.isfinite(y), 1.0 / var, 0.0)
     return inv, float(a), float(b)
 
@@ -258,10 +285,18 @@ def fit_dispersion(
         # calibrate the variance function on the MAP residuals, then refine the mode
         sol = problem.model_map(start.x)
         model_map = np.asarray(sol.model).reshape(problem.y.shape)
-        inv_var, a, b = calibrate_noise(problem.y, model_map)
+        counts = str(da.attrs.get("units", "")).strip() == "counts" and kind_model == "emission"
+        design = np.moveaxis(np.asarray(problem.basis(start.x[None, :]))[0], 1, 2)  # (A, E, K)
+        design = np.concatenate([design, np.ones(design.shape[:2] + (1,))], axis=2)
+        inv_var, a, b = calibrate_noise(
+            problem.y, model_map, design=design,
+            gain=da.attrs.get("gain") if counts else None,
+            read_noise=da.attrs.get("read_noise") if counts else None)
         noise_note = (
-            f"variance = a * model + b fitted to the MAP residuals (a = {a:.4g}, "
-            f"b = {b:.4g} in squared signal units), times noise_scale^2"
+            f"variance = a * model + b with a = {a:.4g}, b = {b:.4g} (squared signal units; "
+            + ("CCD gain and read noise from the file" if counts and da.attrs.get("gain") is not None
+               and da.attrs.get("read_noise") is not None else "fitted to the MAP residuals")
+            + "), times noise_scale^2"
         )
         problem.set_noise(inv_var, noise_note)
         start = find_map(LogPosterior(problem.log_likelihood, space), space, start.x)

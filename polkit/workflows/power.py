@@ -24,6 +24,7 @@ import json
 import logging
 import os
 import threading
+import tomllib
 from pathlib import Path
 from typing import Any
 
@@ -31,7 +32,7 @@ import numpy as np
 import xarray as xr
 
 from ..errors import ConfigError, DataError
-from ..inference import FitResult, LogPosterior, apply_priors, find_map, run_ensemble
+from ..inference import FitResult, LogPosterior, Prior, apply_priors, find_map, run_ensemble
 from ..models.calibration import DensityCalibration, load_calibration
 from .dispersion import file_sha256
 from .power_model import (
@@ -215,6 +216,40 @@ def _dispersion(dispersion) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
     return draws, info
 
 
+def _split_priors(priors, model):
+    """(sampled-parameter priors, their file, polariton_linewidth prior or None).
+
+    The coherent model does not sample the linewidth (its posterior is its prior), so a
+    ``polariton_linewidth`` entry is taken out and used as that prior.
+    """
+    if priors is None:
+        return None, None, None
+    path = None
+    if isinstance(priors, (str, os.PathLike)):
+        path = Path(priors)
+        try:
+            with open(path, "rb") as fh:
+                table = tomllib.load(fh)
+        except FileNotFoundError:
+            raise ConfigError("prior file not found; check the path", path=path) from None
+        except (OSError, tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
+            raise ConfigError(f"cannot read the prior file as TOML ({exc})", path=path) from None
+    elif isinstance(priors, dict):
+        table = dict(priors)
+    else:
+        raise ConfigError(f"expected a TOML file or a dict of priors, found "
+                          f"{type(priors).__name__}", key="priors")
+    lw = None
+    if model == "coherent" and "polariton_linewidth" in table:
+        lw = Prior.from_dict(table.pop("polariton_linewidth"), units="meV", path=path,
+                             key="polariton_linewidth")
+        if lw.bounds[0] < 0 or lw.kind == "normal":
+            raise ConfigError("a linewidth is positive: use a uniform, loguniform or "
+                              "truncnormal prior with low >= 0", path=path,
+                              key="polariton_linewidth")
+    return table, path, lw
+
+
 def _check_options(model, n_wells, exciton_binding_meV, bohr_radius_nm, reservoir_lifetime_ps):
     if model not in MODELS:
         raise ConfigError(f"expected model 'coherent' or 'reservoir', found {model!r}",
@@ -360,16 +395,20 @@ def fit_power(
     problem = PowerProblem.from_series(table, model, path=where)
     if problem.ignored:
         notes.append(f"not used by the {model} model: {', '.join(problem.ignored)}")
-    lw_prior, lw_note = linewidth_prior(dispersion_linewidth=disp_draws.get("lp_linewidth_k0"),
-                                        calibration=cal)
-    space = problem.default_space(linewidth=lw_prior)
-    if priors is not None:
-        space = apply_priors(space, priors, path=priors if not isinstance(priors, dict) else None)
+    space = problem.default_space()
+    user, prior_path, user_lw = _split_priors(priors, model)
+    if user:
+        space = apply_priors(space, user, path=prior_path)
         problem.space = space
-        if model == "coherent" and space["polariton_linewidth"].prior != lw_prior:
-            lw_note = "polariton_linewidth prior as given by the user"
+    lw_prior, lw_note = None, None
     if model == "coherent":
-        notes.append(lw_note)
+        if user_lw is not None:
+            lw_prior, lw_note = user_lw, "polariton_linewidth prior as given by the user"
+        else:
+            lw_prior, lw_note = linewidth_prior(
+                dispersion_linewidth=disp_draws.get("lp_linewidth_k0"), calibration=cal)
+        notes.append(lw_note + "; drawn from this prior per posterior draw (the likelihood "
+                     "depends only on Delta/gamma)")
 
     out_dir = Path(out) if out is not None else None
     checkpoint = (out_dir / CHECKPOINT) if out_dir is not None else None
@@ -389,6 +428,7 @@ def fit_power(
 
     guess = problem.guess()
     x0 = np.array([_clip_into(p, guess.get(p.name, np.nan)) for p in space])
+    space = problem.with_scales(dict(zip(space.names, x0, strict=True)))
     start = find_map(LogPosterior(problem.log_likelihood, space), space, x0)
     log.info("power-series mode: %s", dict(zip(space.names, np.round(start.x, 6), strict=True)))
     output = run_ensemble(problem.log_likelihood, space, start, n_walkers=walkers, seed=seed,
@@ -398,11 +438,13 @@ def fit_power(
     post = output.posterior_draws()
     theta = np.stack([post[n].values for n in space.names], axis=-1)
     flat = theta.reshape(-1, theta.shape[-1])
-    derived = problem.derived(flat)
     stream = np.random.SeedSequence(output.seed_entropy,
                                     spawn_key=(*output.seed_spawn_key, _DERIVED_STREAM))
+    rng = np.random.default_rng(stream)
+    linewidth = lw_prior.sample(rng, flat.shape[0]) if lw_prior is not None else None
+    derived = problem.derived(flat, linewidth=linewidth)
     extra, cal_notes = calibrated_quantities(
-        problem, flat, derived, calibration=cal, rng=np.random.default_rng(stream),
+        problem, flat, derived, calibration=cal, rng=rng,
         exciton_fraction=disp_draws.get("exciton_fraction_k0"), n_wells=n_wells,
         exciton_binding_meV=exciton_binding_meV, bohr_radius_nm=bohr_radius_nm,
         reservoir_lifetime=lifetime_r)
@@ -414,7 +456,8 @@ def fit_power(
                      "likelihood does not depend on them)")
 
     prov: dict[str, Any] = {"input_sha256": sha, "input": source_name, "notes": notes,
-                            "linewidth_prior": lw_note if model == "coherent" else None,
+                            "linewidth_prior": None if lw_prior is None else
+                            {**lw_prior.to_dict(), "units": "meV", "source": lw_note},
                             "segments": [list(s) for s in problem.segments],
                             "derived_stream_spawn_key": [*output.seed_spawn_key,
                                                          _DERIVED_STREAM]}
@@ -457,8 +500,11 @@ def _extraction_figure(cube: xr.Dataset, obs: xr.Dataset, target: Path) -> Path:
 
 
 def _clip_into(param, value: float) -> float:
+    """``value`` if strictly inside the prior support, else a point just inside it."""
     lo, hi = param.prior.bounds
     if not np.isfinite(value):
         value = 0.5 * (lo + hi) if np.isfinite(lo) and np.isfinite(hi) else 1.0
+    if lo < value < hi:
+        return float(value)
     eps = 1e-6 * (hi - lo) if np.isfinite(hi - lo) else 1e-6
     return float(np.clip(value, lo + eps, hi - eps))

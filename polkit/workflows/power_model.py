@@ -13,12 +13,16 @@ Coherent drive (``model="coherent"``)
     ``y[(Delta - y)^2 + gamma^2/4] = F`` (Baas et al., Phys. Rev. A 69, 023809, 2004) reads
     ``u[(d - u)^2 + 1/4] = phi``, so scaling every energy by ``lambda`` (and ``F`` by
     ``lambda^3``, the intensity per meV by ``1/lambda``) leaves intensity-against-power
-    unchanged.  The fit therefore samples the identifiable combinations and the linewidth::
+    unchanged.  The fit therefore samples only the identifiable combinations::
 
         detuning_ratio [1]              d = Delta / gamma
-        polariton_linewidth [meV]       gamma (FWHM); only its prior sets the meV scale
         reduced_drive_per_power [1/mW]  alpha kappa / gamma^3
         intensity_scale [I]             intensity per linewidth of blueshift (s gamma)
+
+    The likelihood does not depend on the linewidth ``gamma`` itself, so its posterior is
+    exactly its prior, independent of the rest: it is drawn from that prior per posterior
+    draw (:func:`linewidth_prior`: a dispersion result, the calibration's polariton
+    lifetime, a user prior, or a log-uniform default) and turns the ratios into meV.
 
     Up and down sweeps are fitted jointly: each contiguous run of one sweep label follows
     its own history through :func:`polkit.models.coherent.steady_state_sweep` (an up run
@@ -94,7 +98,6 @@ MIN_POINTS = 3
 
 _LONG = {
     "detuning_ratio": "pump detuning over polariton linewidth, Delta / gamma",
-    "polariton_linewidth": "polariton linewidth gamma (FWHM)",
     "reduced_drive_per_power": "drive per unit power in units of gamma^3, alpha kappa / gamma^3",
     "intensity_scale": "intensity per linewidth of blueshift (s gamma)",
     "threshold_power": "condensation threshold power P_th",
@@ -334,19 +337,13 @@ class PowerProblem:
         return Parameter(ch.noise_param, units, Prior.loguniform(1e-5 * spread, 10.0 * spread),
                          desc + ": standard deviation")
 
-    def default_space(self, *, linewidth: Prior | None = None) -> ParameterSpace:
+    def default_space(self) -> ParameterSpace:
         """Default priors from the data ranges.  # common practice, no published source
 
         Scale parameters are log-uniform over many decades around what the data allow
         (equal belief per decade); the detuning ratio is uniform over -5 to 20 (the
         bistability threshold sqrt(3)/2 well inside); blueshift rates and amplitudes are
         uniform from 0 (repulsive interactions) to far above what the data show.
-
-        Parameters
-        ----------
-        linewidth
-            Prior of ``polariton_linewidth`` (coherent model), e.g. from
-            :func:`linewidth_prior`; default log-uniform over 1 ueV to 100 meV.
         """
         p = self.power[self.power > 0] if np.any(self.power > 0) else np.array([1e-3])
         p_lo, p_hi = float(p.min()), float(p.max())
@@ -357,9 +354,6 @@ class PowerProblem:
             params += [
                 Parameter("detuning_ratio", "1", Prior.uniform(-5.0, 20.0),
                           _LONG["detuning_ratio"]),
-                Parameter("polariton_linewidth", "meV",
-                          linewidth if linewidth is not None else Prior.loguniform(1e-3, 100.0),
-                          _LONG["polariton_linewidth"]),
                 Parameter("reduced_drive_per_power", "1/mW",
                           Prior.loguniform(1e-5 / p_hi, 1e5 / p_lo),
                           _LONG["reduced_drive_per_power"]),
@@ -516,9 +510,7 @@ class PowerProblem:
             s = np.sum(w * u * y, axis=1) / np.maximum(np.sum(w * u * u, axis=1), 1e-300)
             chi2 = np.sum(w * (y - s[:, None] * u) ** 2, axis=1)
             k = int(np.nanargmin(np.where(s > 0, chi2, np.inf)))
-            gamma = self._prior_centre("polariton_linewidth")
-            g.update(detuning_ratio=dd[k], polariton_linewidth=gamma,
-                     reduced_drive_per_power=pp[k], intensity_scale=s[k])
+            g.update(detuning_ratio=dd[k], reduced_drive_per_power=pp[k], intensity_scale=s[k])
             g[ch.noise_param] = self._noise_guess(ch, chi2[k])
             return g
         pw = self.power
@@ -562,13 +554,27 @@ class PowerProblem:
             g[lw.noise_param] = self._noise_guess(lw, float(chi[j]))
         return g
 
-    def _prior_centre(self, name: str) -> float:
-        prior = self.space[name].prior
-        if prior.kind in ("normal", "truncnormal"):
-            return float(prior.mu)
-        if prior.kind == "loguniform":
-            return float(math.sqrt(prior.low * prior.high))
-        return 0.5 * (prior.low + prior.high)
+    def with_scales(self, guess: Mapping[str, float]) -> ParameterSpace:
+        """The space with optimiser/ball scales from a starting point (priors unchanged).
+
+        Log-uniform priors span decades, so their spread is no step size: positive
+        parameters get a tenth of their starting value, the others a hundredth of their
+        prior spread (the peak energy: its median error).
+        """
+        params = []
+        for p in self.space:
+            value = float(guess.get(p.name, np.nan))
+            lo, _ = p.prior.bounds
+            if p.name == "lp_energy":
+                e = self.channels["peak_energy"]
+                scale = max(float(np.median(e.sigma[e.used])) * MEV, 1e-7)
+            elif np.isfinite(value) and value > 0 and lo >= 0:
+                scale = 0.1 * value
+            else:
+                scale = 0.01 * p.prior.width
+            params.append(Parameter(p.name, p.units, p.prior, p.description, scale))
+        self.space = ParameterSpace(params)
+        return self.space
 
     def _noise_guess(self, ch: Channel, chi2: float) -> float:
         """The noise parameter that makes chi^2 per point one (``sigma`` is 1 without errors)."""
@@ -577,19 +583,27 @@ class PowerProblem:
         return float(np.clip(rms, lo * 1.01, hi * 0.99))
 
     # -- derived quantities ----------------------------------------------------------------
-    def derived(self, draws: np.ndarray) -> dict[str, tuple[np.ndarray, str, str]]:
+    def derived(self, draws: np.ndarray, *, linewidth: np.ndarray | None = None
+                ) -> dict[str, tuple[np.ndarray, str, str]]:
         """Quantities derived per posterior draw: ``name -> (values, units, long_name)``.
 
         ``draws`` has shape ``(D, P)``; every value has shape ``(D,)`` (NaN where a
-        quantity does not exist for that draw, e.g. a turning point of a monostable draw).
-        Identifiable without any calibration.
+        quantity does not exist for that draw, e.g. a turning point of a monostable draw),
+        except 0-d probabilities.  No calibration needed.  The coherent model needs
+        ``linewidth``: one polariton linewidth (meV) per draw, drawn from its prior.
         """
         c = self._cols(draws)
         out: dict[str, tuple[np.ndarray, str, str]] = {}
         p_max = float(np.max(self.power))
         if self.model == "coherent":
-            d, gam = c["detuning_ratio"], c["polariton_linewidth"]
-            phi, s_g = c["reduced_drive_per_power"], c["intensity_scale"]
+            if linewidth is None:
+                raise FitError("the coherent model derives meV quantities from one polariton "
+                               "linewidth per draw; pass linewidth=")
+            gam = np.asarray(linewidth, dtype=float).reshape(-1)
+            d, phi, s_g = (c[n] for n in ("detuning_ratio", "reduced_drive_per_power",
+                                          "intensity_scale"))
+            out["polariton_linewidth"] = (gam, "meV", "polariton linewidth gamma (FWHM), "
+                                          "drawn from its prior (the data fix only ratios)")
             out["pump_detuning"] = (d * gam, "meV", "pump detuning Delta = E_pump - E_LP")
             out["drive_per_power"] = (phi * gam**3, "meV^3/mW",
                                       "drive per unit power alpha kappa (F = alpha kappa P)")
@@ -769,7 +783,7 @@ def calibrated_quantities(
     pulsed = calibration.drive == "pulsed"
     g_main = None
     if problem.model == "coherent":
-        gam = c["polariton_linewidth"]
+        gam = base["polariton_linewidth"][0]
         tau = HBAR_MEV_PS / gam
         rho1 = cw_density(1.0, vals["photon_energy_eV"], vals["spot_area_um2"],
                           vals["coupling_efficiency"], tau)
