@@ -72,7 +72,74 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--wavelength-medium", choices=["vacuum", "air"], default=None)
     _add_common_fit_options(p)
 
+    p = sub.add_parser("power", help="fit a mean-field model to a pump-power series")
+    p.add_argument("series", type=Path, help="observable table (CSV, netCDF) or spectra cube")
+    p.add_argument("--model", choices=["coherent", "reservoir"], required=True)
+    p.add_argument("--calibration", type=Path, default=None, help="TOML density calibration")
+    p.add_argument("--dispersion", type=Path, default=None, help="dispersion result folder")
+    p.add_argument("--priors", type=Path, default=None, help="TOML file of priors")
+    p.add_argument("--strict", action="store_true", help="4 ensembles, nested R-hat gate")
+    _add_common_fit_options(p)
+
+    p = sub.add_parser("budget", help="energy per operation of a device built from the sample")
+    p.add_argument("--dispersion", type=Path, required=True, help="dispersion result folder")
+    p.add_argument("--power", type=Path, required=True, help="calibrated power result folder")
+    p.add_argument("--device", type=Path, required=True, help="TOML device description")
+    p.add_argument(
+        "--claim",
+        action="append",
+        default=[],
+        help='e.g. "energy_per_operation < 10 fJ" (repeatable)',
+    )
+    p.add_argument(
+        "--check-sample", action="store_true", help="refuse results recorded for different samples"
+    )
+    p.add_argument("--draws", type=int, default=4000, help="joint posterior draws")
+    p.add_argument("--seed", type=int, default=None)
+    p.add_argument("--out", type=Path, default=Path("polkit-out") / "budget")
+
     return parser
+
+
+def _cmd_power(args) -> int:
+    from .workflows.power import fit_power
+
+    out = args.out or Path("polkit-out") / args.series.stem
+    result = fit_power(
+        args.series,
+        model=args.model,
+        calibration=args.calibration,
+        dispersion=args.dispersion,
+        priors=args.priors,
+        seed=args.seed,
+        resume=args.resume,
+        strict=args.strict,
+        out=out,
+        max_steps=args.max_steps,
+        n_walkers=args.walkers,
+        progress=not args.quiet,
+    )
+    print(result.table())
+    print(f"results written to {out}")
+    return EXIT_OK if result.converged else EXIT_NOT_CONVERGED
+
+
+def _cmd_budget(args) -> int:
+    from .workflows.budget import energy_budget
+
+    result = energy_budget(
+        args.dispersion,
+        args.power,
+        args.device,
+        claims=args.claim,
+        seed=args.seed,
+        n_draws=args.draws,
+        out=args.out,
+        expect_same_sample=args.check_sample,
+    )
+    print(result.table())
+    print(f"results written to {args.out}")
+    return EXIT_OK
 
 
 def _cmd_inspect(args) -> int:
@@ -120,6 +187,8 @@ _COMMANDS = {
     "demo": _cmd_demo,
     "inspect": _cmd_inspect,
     "dispersion": _cmd_dispersion,
+    "power": _cmd_power,
+    "budget": _cmd_budget,
 }
 
 
