@@ -35,6 +35,8 @@ from ..errors import DataError, DataWarning
 from . import units as U
 from .build import make_series
 from .fourier import calibrate_pixel_axis
+from .roles import COLUMN_ALIASES as _COLUMN_ALIASES
+from .roles import ERROR_SUFFIXES as _ERROR_SUFFIXES
 from .roles import SIGNAL_NAMES, axis_role
 from .schema import (
     CARRIED_ATTRS,
@@ -59,27 +61,6 @@ _SPECTRAL_FIX = (
     + ", "
     + U.accepted(U.WAVENUMBER_UNITS)
 )
-
-# column names of a series table -> canonical name
-_COLUMN_ALIASES = {
-    "power": "power",
-    "pump_power": "power",
-    "intensity": "intensity",
-    "integrated_intensity": "intensity",
-    "counts": "intensity",
-    "signal": "intensity",
-    "peak_energy": "peak_energy",
-    "energy": "peak_energy",
-    "peak": "peak_energy",
-    "wavelength": "peak_energy",
-    "peak_wavelength": "peak_energy",
-    "linewidth": "linewidth",
-    "fwhm": "linewidth",
-    "width": "linewidth",
-    "sweep": "sweep",
-    "direction": "sweep",
-}
-_ERROR_SUFFIXES = ("_error", "_err", "_std")
 
 
 def _warn(message: str, path, field) -> None:

@@ -10,9 +10,11 @@ Example (an invented up/down sweep)::
 The first non-comment line is the header; ``#`` lines anywhere are comments (and may
 carry ``key: value`` metadata).  A UTF-8 byte-order mark and CRLF line ends are fine.
 The delimiter is a tab, comma or semicolon, decided from the header line.  The column
-``sweep`` holds text; every other cell must be a number with a decimal point (an
-empty cell is a missing value).  Decimal commas and unparsable cells are refused with
-the line and column named.
+``sweep`` holds text; every cell of a column with units, or of a column polkit uses
+(power, intensity, peak energy, linewidth, their errors), must be a number with a
+decimal point (an empty cell is a missing value).  Other columns without units may
+hold free text; they are dropped with a warning when the series is built.  Decimal
+commas and unparsable cells are refused with the line and column named.
 
 The reader returns a raw table (dim ``row``); :mod:`polkit.data.assemble` turns it
 into the canonical series.
@@ -28,6 +30,7 @@ import numpy as np
 import xarray as xr
 
 from ..errors import DataError
+from .roles import is_series_column
 from .text import (
     decode_text,
     parse_header_name,
@@ -149,13 +152,19 @@ def read(path, *, delimiter: str | None = None) -> xr.Dataset:
         if name in TEXT_COLUMNS:
             values = np.array([c.strip() for c in cells], dtype=str)
         else:
-            values = np.array(
-                [
-                    parse_number(c, path=path, line=line_number, column=name)
-                    for c, (line_number, _) in zip(cells, rows, strict=True)
-                ],
-                dtype=float,
-            )
+            try:
+                values = np.array(
+                    [
+                        parse_number(c, path=path, line=line_number, column=name)
+                        for c, (line_number, _) in zip(cells, rows, strict=True)
+                    ],
+                    dtype=float,
+                )
+            except DataError:
+                if unit or is_series_column(name):
+                    raise
+                # a free-text column (notes, file names) that polkit does not use
+                values = np.array([c.strip() for c in cells], dtype=str)
         attrs = {"units": unit} if unit else {}
         variables[name] = xr.Variable(("row",), values, attrs)
     meta = parse_metadata(comments)

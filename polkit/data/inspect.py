@@ -9,6 +9,7 @@ import numpy as np
 import xarray as xr
 
 from ..io import save_figure
+from .schema import MAP_NUMBER_ATTRS
 
 __all__ = ["inspect_file", "describe"]
 
@@ -44,7 +45,9 @@ def _attr_lines(attrs: dict, skip=("history", "units", "source")) -> list[str]:
         value = attrs[key]
         if isinstance(value, np.ndarray):
             value = np.array2string(value, precision=6)
-        lines.append(f"  {key}: {value}")
+        units = MAP_NUMBER_ATTRS.get(key, ("1",))[0]
+        suffix = "" if units == "1" else f" {units}"
+        lines.append(f"  {key}: {value}{suffix}")
     return lines
 
 

@@ -15,6 +15,9 @@ from .units import (
 )
 
 __all__ = [
+    "COLUMN_ALIASES",
+    "ERROR_SUFFIXES",
+    "is_series_column",
     "SPECTRAL_NAMES",
     "ANGLE_NAMES",
     "K_NAMES",
@@ -59,3 +62,36 @@ def axis_role(name: str, units) -> str | None:
     if key in POWER_NAMES:
         return "power"
     return None
+
+
+#: column names of a series table -> canonical variable name
+COLUMN_ALIASES = {
+    "power": "power",
+    "pump_power": "power",
+    "intensity": "intensity",
+    "integrated_intensity": "intensity",
+    "counts": "intensity",
+    "signal": "intensity",
+    "peak_energy": "peak_energy",
+    "energy": "peak_energy",
+    "peak": "peak_energy",
+    "wavelength": "peak_energy",
+    "peak_wavelength": "peak_energy",
+    "linewidth": "linewidth",
+    "fwhm": "linewidth",
+    "width": "linewidth",
+    "sweep": "sweep",
+    "direction": "sweep",
+}
+#: suffixes that mark the standard deviation of a column
+ERROR_SUFFIXES = ("_error", "_err", "_std")
+
+
+def is_series_column(name: str) -> bool:
+    """True for the names (and ``*_error`` names) of columns polkit uses in a series."""
+    key = str(name).strip().lower()
+    for suffix in ERROR_SUFFIXES:
+        if key.endswith(suffix):
+            key = key[: -len(suffix)]
+            break
+    return key in COLUMN_ALIASES
