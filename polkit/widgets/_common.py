@@ -63,14 +63,14 @@ def parameter_slider(param, value: float):
         v = float(np.clip(value, lo, hi))
         return w.FloatLogSlider(
             value=v, base=10, min=math.log10(lo), max=math.log10(hi), step=1e-3,
-            description=label, description_tooltip=tooltip, readout_format=".4g",
+            description=label, tooltip=tooltip, readout_format=".4g",
             continuous_update=True, layout=_LAYOUT, style=_STYLE,
         )
     step, fmt = _STEPS.get(param.units, ((hi - lo) / 20000.0, ".4g"))
     step = min(step, (hi - lo) / 200.0)
     return w.FloatSlider(
         value=float(np.clip(value, lo, hi)), min=lo, max=hi, step=step, description=label,
-        description_tooltip=tooltip, readout_format=fmt, continuous_update=True,
+        tooltip=tooltip, readout_format=fmt, continuous_update=True,
         layout=_LAYOUT, style=_STYLE,
     )
 

@@ -98,10 +98,16 @@ class DispersionPanel:
         Sampler progress (steps).
     status, readout, summary
         HTML widgets: last action, derived quantities at the sliders, result table.
+    readout_values
+        The numbers of the readout: ``detuning`` [meV], ``exciton_fraction_k0``,
+        ``photon_fraction_k0`` [1], ``lp_energy_k0`` [eV], ``lp_linewidth_k0`` [meV].
     map_image, residual_image, corner_image
         Image widgets (PNG).
     max_steps, out_folder
         Sampler step limit and save folder (editable).
+    show_corner
+        Draw the corner plot after sampling (a few seconds for many parameters; set
+        ``False`` while iterating quickly).
     map_result
         The last :class:`~polkit.inference.MapResult` of *Refine* (``None`` before).
     result
@@ -160,6 +166,8 @@ class DispersionPanel:
         self.job: SamplingJob | None = None
         self._hold = False
         self.timings: list[float] = []
+        self.readout_values: dict[str, float] = {}
+        self.show_corner = True
 
         # -- controls -----------------------------------------------------------------------
         self.sliders: dict[str, Any] = {}
@@ -402,8 +410,11 @@ class DispersionPanel:
         self.timings.append(time.perf_counter() - t0)
 
     def _readout_html(self, problem: DispersionProblem, theta: np.ndarray) -> str:
-        d = {k: float(np.asarray(v[0]).reshape(-1)[0]) for k, (v, _u, _l) in
+        d = {k: float(np.asarray(v).reshape(-1)[0]) for k, (v, _u, _l) in
              problem.derived(theta[None, :]).items()}
+        self.readout_values = {k: d[k] for k in ("detuning", "exciton_fraction_k0",
+                                                 "photon_fraction_k0", "lp_energy_k0",
+                                                 "lp_linewidth_k0")}
         idx = {n: i for i, n in enumerate(self.space.names)}
         mean_width = 0.5 * (theta[idx["cavity_linewidth"]] + theta[idx["exciton_linewidth"]])
         strong = theta[idx["rabi_splitting"]] > mean_width
@@ -463,13 +474,8 @@ class DispersionPanel:
             post = LogPosterior(problem.log_likelihood, space)
             candidates = [find_map(post, space, table_map.x), find_map(post, space, x0)]
             start = max(candidates, key=lambda c: c.log_post)
-            # 3. noise model calibrated on the residuals of that mode, then the mode again
-            sol = problem.model_map(start.x)
-            model_map = np.asarray(sol.model).reshape(problem.y.shape)
-            inv_var, a, b = wf.calibrate_noise(problem.y, model_map)
-            self._noise_note = (
-                f"variance = a * model + b fitted to the MAP residuals (a = {a:.4g}, "
-                f"b = {b:.4g} in squared signal units), times noise_scale^2")
+            # 3. noise model at that mode (as the workflow does), then the mode again
+            inv_var, self._noise_note = _noise_at(problem, self._problem_da, start.x)
             problem.set_noise(inv_var, self._noise_note)
             start = find_map(LogPosterior(problem.log_likelihood, space), space, start.x)
         finally:
@@ -583,7 +589,8 @@ class DispersionPanel:
         self.progress.bar_style = "success" if result.converged else "warning"
         self.summary.value = result._repr_html_()
         names = [n for n in self.space.names if n != "noise_scale"] + ["detuning"]
-        self.corner_image.value = corner_png(result, names)
+        if self.show_corner:
+            self.corner_image.value = corner_png(result, names)
         med = np.array([np.median(result.draws(n)) for n in self.space.names])
         self.residual_image.value = self._residual_png(med, "posterior median")
         self.save_button.disabled = False
@@ -623,6 +630,30 @@ class DispersionPanel:
         files = [folder / "posterior.nc", folder / "summary.json", *self.result.figures(folder)]
         self.status.value = status_html(f"saved {len(files)} files to {folder}", level="ok")
         return files
+
+
+def _noise_at(problem: DispersionProblem, da: xr.DataArray, x: np.ndarray):
+    """Inverse variance per pixel at the mode ``x`` and a sentence on how it was set.
+
+    The same steps as :func:`~polkit.workflows.dispersion.fit_dispersion`: the detector
+    model (gain and read noise) for emission counts that carry them, otherwise the
+    variance function fitted to the residuals with the leverage of the per-angle linear
+    columns (:func:`~polkit.workflows.dispersion.calibrate_noise`).
+    """
+    sol = problem.model_map(x)
+    model_map = np.asarray(sol.model).reshape(problem.y.shape)
+    counts = str(da.attrs.get("units", "")).strip() == "counts" and problem.kind == "emission"
+    design = np.moveaxis(np.asarray(problem.basis(x[None, :]))[0], 1, 2)  # (A, E, K)
+    design = np.concatenate([design, np.ones(design.shape[:2] + (1,))], axis=2)
+    gain = da.attrs.get("gain") if counts else None
+    read_noise = da.attrs.get("read_noise") if counts else None
+    inv_var, a, b = wf.calibrate_noise(problem.y, model_map, design=design, gain=gain,
+                                       read_noise=read_noise)
+    how = ("CCD gain and read noise from the file" if gain is not None and read_noise is not None
+           else "fitted to the MAP residuals")
+    note = (f"variance = a * model + b with a = {a:.4g}, b = {b:.4g} (squared signal units; "
+            f"{how}), times noise_scale^2")
+    return inv_var, note
 
 
 def _is_log(slider) -> bool:
