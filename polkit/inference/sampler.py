@@ -629,7 +629,9 @@ def run_ensemble(
             ens.start(positions(ens.index, ens.ball_rng) if steps == 0 else None, space)
             while True:
                 n = ens.steps
-                at_check = n > 0 and n >= min_steps and (n % check_every == 0 or n >= max_steps)
+                at_check = n > 0 and (
+                    n >= max_steps or (n >= min_steps and n % check_every == 0)
+                )
                 if at_check:
                     check = _gate_at(ens, n, space, autocorr_factor, tau_rtol,
                                      acceptance_range, check_every)

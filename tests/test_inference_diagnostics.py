@@ -1,0 +1,127 @@
+"""Convergence diagnostics against processes with known autocorrelation and known mixing."""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+import pytest
+import xarray as xr
+
+from polkit.inference import (
+    arviz_diagnostics,
+    autocorr_time,
+    convergence_gate,
+    nested_rhat,
+    stuck_walkers,
+    walker_acceptance,
+)
+
+
+def _ar1(rng, phi, n_steps, n_walkers):
+    """AR(1) chains x_t = phi x_{t-1} + e_t started in equilibrium."""
+    x = np.empty((n_steps, n_walkers))
+    x[0] = rng.standard_normal(n_walkers) / np.sqrt(1 - phi**2)
+    noise = rng.standard_normal((n_steps, n_walkers))
+    for t in range(1, n_steps):
+        x[t] = phi * x[t - 1] + noise[t]
+    return x
+
+
+def test_autocorr_time_of_an_ar1_process():
+    # Source: integrated autocorrelation time of AR(1), tau = (1 + phi) / (1 - phi)
+    # (Sokal, "Monte Carlo methods in statistical mechanics", 1997, sec. 2)
+    rng = np.random.default_rng(0)
+    phi = 0.8
+    chain = _ar1(rng, phi, 4000, 32)[:, :, None]
+    tau = autocorr_time(chain)
+    assert tau.shape == (1,)
+    assert tau[0] == pytest.approx((1 + phi) / (1 - phi), rel=0.1)
+
+
+def test_autocorr_time_ignores_frozen_walkers_and_flags_frozen_parameters():
+    # analytic limit: a parameter that never moves has no finite autocorrelation time
+    rng = np.random.default_rng(1)
+    chain = np.stack([_ar1(rng, 0.5, 2000, 8), np.ones((2000, 8))], axis=-1)
+    chain[:, 0, 0] = 0.3  # one frozen walker
+    tau = autocorr_time(chain)
+    assert tau[0] == pytest.approx(3.0, rel=0.15)  # Source: (1 + 0.5) / (1 - 0.5)
+    assert tau[1] == np.inf
+
+
+def test_acceptance_and_stuck_walkers_from_a_constructed_chain():
+    # common practice, no published source: acceptance = fraction of steps a walker moved
+    rng = np.random.default_rng(2)
+    n_steps, n_walkers = 1001, 10
+    moves = rng.uniform(size=(n_steps - 1, n_walkers)) < np.linspace(0.02, 0.9, n_walkers)
+    steps = np.where(moves[:, :, None], rng.normal(size=(n_steps - 1, n_walkers, 2)), 0.0)
+    chain = np.concatenate([np.zeros((1, n_walkers, 2)), np.cumsum(steps, axis=0)])
+    acc = walker_acceptance(chain)
+    np.testing.assert_allclose(acc, moves.mean(axis=0), rtol=0, atol=1e-12)
+    log_prob = rng.normal(-5.0, 1.0, size=(n_steps, n_walkers))
+    log_prob[:, 7] -= 40.0  # walker 7 lives far below the rest
+    assert stuck_walkers(acc, log_prob, 2).tolist() == [0, 7]
+
+
+def test_nested_rhat_is_one_for_well_mixed_independent_ensembles():
+    # Source: Margossian et al., arXiv:2110.13017 (2022): nRhat -> 1 when all superchains
+    # sample the same distribution; here exact iid draws
+    rng = np.random.default_rng(3)
+    draws = rng.standard_normal((4, 32, 200, 2))
+    values = nested_rhat(draws)
+    assert values.shape == (2,)
+    assert np.all(values < 1.01)
+
+
+def test_nested_rhat_flags_an_ensemble_stuck_in_another_mode():
+    # Source: Margossian et al., arXiv:2110.13017 (2022): a superchain in a different mode
+    # inflates the between-superchain variance
+    rng = np.random.default_rng(4)
+    draws = rng.standard_normal((4, 32, 200))
+    draws[3] += 3.0  # ensemble 3 sits in a mode 3 standard deviations away
+    assert nested_rhat(draws) > 1.1
+    mild = rng.standard_normal((4, 32, 200))
+    mild[3] += 0.5
+    assert nested_rhat(mild) > 1.01
+
+
+def test_nested_rhat_with_one_subchain_reduces_to_classic_rhat():
+    # Source: Gelman and Rubin, Statist. Sci. 7, 457 (1992): Rhat^2 = (N-1)/N + B/(N W);
+    # with M = 1 the nested form gives nRhat^2 = 1 + B/(N W) = Rhat^2 + 1/N.
+    # ArviZ's "identity" R-hat is the independent implementation of the classic formula.
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", FutureWarning)
+        import arviz as az
+    rng = np.random.default_rng(5)
+    k, n = 6, 50
+    draws = rng.standard_normal((k, n)) + rng.normal(0, 0.3, size=(k, 1))
+    classic = float(az.rhat(draws, method="identity"))
+    nested = nested_rhat(draws[:, None, :])
+    assert nested**2 == pytest.approx(classic**2 + 1.0 / n, rel=1e-12)
+
+
+def test_arviz_ess_of_independent_draws_is_about_the_draw_count():
+    # Source: effective sample size of independent draws equals the number of draws
+    # (Vehtari et al., Bayesian Analysis 16, 667 (2021))
+    rng = np.random.default_rng(6)
+    ds = xr.Dataset({"a": (("chain", "draw"), rng.standard_normal((8, 500)))})
+    out = arviz_diagnostics(ds)
+    assert out["min_ess_bulk"] == pytest.approx(4000, rel=0.15)
+    assert out["min_ess_tail"] == pytest.approx(4000, rel=0.25)
+    assert out["max_rhat"] < 1.01
+
+
+def test_gate_passes_a_long_stable_chain_and_names_what_fails_on_a_short_one():
+    # Source: the gate of DESIGN.md section 5 applied to AR(1) chains with tau = 3
+    # (Sokal 1997); acceptance is ~1 for continuous AR(1) moves, so the range is widened
+    rng = np.random.default_rng(7)
+    chain = _ar1(rng, 0.5, 3000, 16)[:, :, None]
+    log_prob = -0.5 * chain[..., 0] ** 2
+    prev = autocorr_time(chain[:2900][2900 // 4 :])
+    check = convergence_gate(chain, log_prob, prev, names=["x"], tau_rtol=0.05,
+                             acceptance_range=(0.15, 1.0))
+    assert check.passed, check.reasons
+    short = convergence_gate(chain[:100], log_prob[:100], None, names=["x"])
+    assert not short.passed
+    text = " ".join(short.reasons)
+    assert "shorter than 50 x" in text and "acceptance outside" in text
