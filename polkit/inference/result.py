@@ -497,6 +497,7 @@ class FitResult:
                 "FitResult.save",
                 path=path,
             ) from None
+        result = cls(tree, path=path)
         try:
             saved = json.loads((folder / SUMMARY_FILE).read_text(encoding="utf-8"))
         except (OSError, ValueError) as exc:
@@ -508,11 +509,12 @@ class FitResult:
                    if not isinstance(saved, dict) or k not in saved]
         if missing:
             raise DataError(
-                f"summary lacks {missing}; expected the layout written by FitResult.save",
+                f"summary lacks {missing}: not a polkit result summary (expected the layout "
+                "written by FitResult.save)",
                 path=folder / SUMMARY_FILE,
                 field=missing[0],
             )
-        return cls(tree, path=path)
+        return result
 
 
 def _check_tree(tree, path) -> None:
