@@ -8,12 +8,13 @@ synchronously and ``Button.click()`` runs the handlers, exactly as in JupyterLab
 from __future__ import annotations
 
 import json
+from pathlib import Path
 
 import numpy as np
 import pytest
 import xarray as xr
 
-from polkit.errors import ConvergenceWarning, DataError
+from polkit.errors import ConfigError, ConvergenceWarning, DataError
 from polkit.inference import FitResult
 
 pytest.importorskip("ipywidgets")
@@ -207,3 +208,95 @@ def test_refusals_name_the_problem(panel, emission_map):
     panel.save_button.disabled = False
     panel.save_button.click()  # a button shows the error instead of raising
     assert "no result to save yet" in panel.status.value
+
+
+# --------------------------------------------------------------------------------------
+# power-series panel
+# --------------------------------------------------------------------------------------
+DATA = Path(__file__).resolve().parents[1] / "data_examples"
+
+
+@pytest.fixture(scope="module")
+def coherent_panel():
+    from polkit.widgets import power_panel
+
+    return power_panel(DATA / "ds1_p1_power_coherent.csv", model="coherent", seed=5,
+                       max_steps=30)
+
+
+def test_coherent_curves_follow_each_sweeps_branch_of_the_steady_state(coherent_panel):
+    p = coherent_panel
+    d, phi, s = 2.0, 0.15, 1500.0
+    p.set_values({"detuning_ratio": d, "reduced_drive_per_power": phi, "intensity_scale": s})
+    curves = p.curve_data()["intensity"]
+    assert len(curves) == 2  # one curve per sweep run: up, then down
+    for (power, intensity), direction in zip(curves, ("up", "down"), strict=True):
+        u = intensity / s
+        # Source: single-mode driven-dissipative steady state in linewidth units,
+        # u[(d - u)^2 + 1/4] = phi P (Baas et al., Phys. Rev. A 69, 023809 (2004))
+        np.testing.assert_allclose(u * ((d - u) ** 2 + 0.25), phi * power, rtol=1e-7, atol=1e-9)
+        for pk, uk in zip(power, u, strict=True):
+            roots = np.roots([1.0, -2 * d, d * d + 0.25, -phi * pk])
+            real = np.sort(roots[np.abs(roots.imag) < 1e-9].real)
+            if real.size == 3:  # bistable range: up sweep on the lowest, down on the highest
+                assert uk == pytest.approx(real[0] if direction == "up" else real[-1], rel=1e-6)
+
+
+def test_coherent_readout_gives_the_turning_points(coherent_panel):
+    p = coherent_panel
+    before = bytes(p.plot_image.value)
+    p.sliders["detuning_ratio"].value = 3.0
+    assert bytes(p.plot_image.value) != before
+    d, phi = 3.0, p.values()["reduced_drive_per_power"]
+    # Source: turning points y = (2 Delta -/+ sqrt(Delta^2 - 3 gamma^2/4))/3 of
+    # y[(Delta - y)^2 + gamma^2/4] = F (Baas et al., PRA 69, 023809 (2004)); gamma = 1 here
+    y_lo = (2 * d - np.sqrt(d * d - 0.75)) / 3
+    y_hi = (2 * d + np.sqrt(d * d - 0.75)) / 3
+    f_up = y_lo * ((d - y_lo) ** 2 + 0.25)
+    f_down = y_hi * ((d - y_hi) ** 2 + 0.25)
+    r = p.readout_values
+    assert r["power_up_threshold"] == pytest.approx(f_up / phi, rel=1e-9)
+    assert r["power_down_threshold"] == pytest.approx(f_down / phi, rel=1e-9)
+    assert "bistable" in p.readout.value
+    p.sliders["detuning_ratio"].value = 0.5  # below sqrt(3)/2: no loop
+    assert "monostable" in p.readout.value
+
+
+def test_coherent_sample_and_save(coherent_panel, tmp_path):
+    p = coherent_panel
+    p.show_corner = False
+    with pytest.warns(ConvergenceWarning):
+        p.sample(background=False)
+    res = p.result
+    assert res.model == "coherent" and not res.converged
+    assert res.provenance["started_from"].startswith("interactive panel")
+    assert "detuning_ratio" in p.summary.value
+    files = p.save(tmp_path / "coherent")
+    assert {f.name for f in files} >= {"posterior.nc", "summary.json", "fit.png", "corner.png"}
+    back = FitResult.load(tmp_path / "coherent")
+    assert back.posterior["pump_detuning"].attrs["units"] == "meV"
+
+
+def test_reservoir_refine_recovers_the_simulated_threshold():
+    from polkit.widgets import power_panel
+
+    truth = json.loads((DATA / "truth.json").read_text())["ds1_p1_power_nonresonant.csv"]
+    p = power_panel(DATA / "ds1_p1_power_nonresonant.csv", model="reservoir", seed=2)
+    assert set(p.curve_data()) == {"intensity", "peak_energy", "linewidth"}
+    p.set_values({"threshold_power": 30.0, "saturation_number": 50.0})
+    p.refine_button.click()
+    got = p.values()
+    # simulated data with known truth (data_examples/make_demo.py, truth.json)
+    assert got["threshold_power"] == pytest.approx(truth["threshold_power_mw"], rel=0.05)
+    assert got["saturation_number"] == pytest.approx(truth["saturation_number"], rel=0.25)
+    assert p.readout_values["threshold_power"] == pytest.approx(got["threshold_power"])
+    assert "crosses threshold" in p.readout.value
+
+
+def test_power_panel_refusals():
+    from polkit.widgets import power_panel
+
+    with pytest.raises(ConfigError, match="expected model 'coherent' or 'reservoir'"):
+        power_panel(DATA / "ds1_p1_power_coherent.csv", model="laser")
+    with pytest.raises(DataError, match="sweep"):
+        power_panel(DATA / "ds1_p1_power_nonresonant.csv", model="coherent")

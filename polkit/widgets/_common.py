@@ -29,10 +29,15 @@ _STYLE = {"description_width": "190px"}
 
 
 def clip_into(param, value: float) -> float:
-    """``value`` moved strictly inside the prior support of ``param`` (NaN -> its centre)."""
+    """``value`` if strictly inside the prior support of ``param``, else a point just inside
+    it (NaN -> the support's centre; a log-uniform support is left by a relative margin)."""
     lo, hi = param.prior.bounds
     if not np.isfinite(value):
         value = 0.5 * (lo + hi) if np.isfinite(lo) and np.isfinite(hi) else 1.0
+    if lo < value < hi:
+        return float(value)
+    if param.prior.kind == "loguniform":
+        return float(np.clip(value, lo * (1 + 1e-6), hi * (1 - 1e-6)))
     eps = 1e-6 * (hi - lo) if np.isfinite(hi - lo) else 1e-6
     return float(np.clip(value, lo + eps, hi - eps))
 
