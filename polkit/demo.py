@@ -50,7 +50,9 @@ def run_demo(
     """
     from .data import inspect_file
     from .errors import DataError
+    from .workflows.budget import energy_budget
     from .workflows.dispersion import fit_dispersion
+    from .workflows.power import fit_power
 
     folder = Path(data) if data is not None else demo_folder()
     if not folder.is_dir():
@@ -112,6 +114,29 @@ def run_demo(
             f"detuning at {label}: {d['median']:+.3f} meV "
             f"(68 %: {d['q16']:+.3f} .. {d['q84']:+.3f})"
         )
+
+    _say("\n== 3. power series: coherent drive (up and down sweeps), calibrated ==")
+    with warnings.catch_warnings():
+        warnings.simplefilter("default", ConvergenceWarning)
+        pc = fit_power(folder / "ds1_p1_power_coherent.csv", model="coherent",
+                       calibration=folder / "ds1_calibration.toml",
+                       dispersion=out / "dispersion_p1", seed=seed + 2,
+                       out=out / "power_coherent", progress=progress, **steps)
+    _say(pc.table())
+    record("power_coherent", pc)
+
+    _say("\n== 3b. power series: nonresonant drive, condensation threshold ==")
+    pr = fit_power(folder / "ds1_p1_power_nonresonant.csv", model="reservoir", seed=seed + 3,
+                   out=out / "power_nonresonant", progress=progress, **steps)
+    _say(pr.table())
+    record("power_nonresonant", pr)
+
+    _say("\n== 4. energy budget of a device built from DS-1, with a claim check ==")
+    budget = energy_budget(out / "dispersion_p1", out / "power_coherent",
+                           folder / "ds1_device.toml",
+                           claims=["energy_per_operation < 10 fJ"], seed=seed + 4,
+                           out=out / "budget")
+    _say(budget.table())
 
     _say(f"\nresults in {out}; total {time.perf_counter() - t_start:.0f} s")
     if not_converged:
