@@ -613,6 +613,7 @@ def run_ensemble(
     ]
 
     gate: dict[int, diag.GateCheck] = {}
+    length = 0
     stopped = False
     pbar = tqdm(total=max_steps * n_ens, disable=not progress, desc="MCMC", unit="step",
                 dynamic_ncols=True)
@@ -667,8 +668,9 @@ def run_ensemble(
     finally:
         pbar.close()
 
-    return _collect(ensembles, gate, space, root, stopped, strict, n_walkers, extras_units,
-                    moves, autocorr_factor, tau_rtol, nested_rhat_max, acceptance_range)
+    return _collect(ensembles, gate, length, space, root, stopped, strict, n_walkers,
+                    extras_units, moves, autocorr_factor, tau_rtol, nested_rhat_max,
+                    acceptance_range)
 
 
 def _gate_at(ens, n, space, autocorr_factor, tau_rtol, acceptance_range, check_every):
@@ -702,8 +704,9 @@ def _to_nested(kept: np.ndarray) -> np.ndarray:
     return np.moveaxis(kept, 2, 1)
 
 
-def _collect(ensembles, gate, space, root, stopped, strict, n_walkers, extras_units, moves,
-             autocorr_factor, tau_rtol, nested_rhat_max, acceptance_range) -> SamplerOutput:
+def _collect(ensembles, gate, length, space, root, stopped, strict, n_walkers, extras_units,
+             moves, autocorr_factor, tau_rtol, nested_rhat_max, acceptance_range
+             ) -> SamplerOutput:
     reasons: list[str] = []
     available = [ens for ens in ensembles if ens.steps > 0]
     if not available:
@@ -718,15 +721,15 @@ def _collect(ensembles, gate, space, root, stopped, strict, n_walkers, extras_un
                 "every step)"
             )
     else:
-        length = max(ens.steps for ens in available)
         for ens in ensembles:
             g = gate[ens.index]
             if not g.passed:
                 prefix = f"ensemble {ens.index}: " if len(ensembles) > 1 else ""
                 reasons.extend(prefix + r for r in g.reasons)
                 reasons.append(prefix + f"stopped at max_steps = {g.steps}")
-    chains = np.stack([ens.chain(length)[0] for ens in available])
-    log_prob = np.stack([ens.chain(length)[1] for ens in available])
+    stored = [ens.chain(length) for ens in available]
+    chains = np.stack([c for c, _ in stored])
+    log_prob = np.stack([lp for _, lp in stored])
     extras = {}
     if extras_units:
         blobs = []
