@@ -256,3 +256,21 @@ def test_netcdf_reader_on_random_bytes(prefix, data):
 @given(mutated(VALID_NC))
 def test_netcdf_reader_on_damaged_files(data):
     _with_file(data, ".nc")
+
+
+@SETTINGS
+@given(st.text(alphabet="0123456789.eE+-", min_size=1, max_size=12))
+def test_fast_numeric_path_agrees_with_the_strict_parser(cell):
+    # the matrix reader parses plain ASCII rows with numpy; it must accept exactly the
+    # cells the strict parser accepts, with the same values
+    from polkit.data.text import parse_number
+
+    try:
+        fast = float(np.array([cell], dtype=float)[0])
+    except ValueError:
+        fast = None
+    try:
+        strict = parse_number(cell)
+    except DataError:
+        strict = None
+    assert fast == strict or (fast is not None and strict is not None and np.isnan(fast))

@@ -88,6 +88,39 @@ def test_jacobian_end_to_end_through_a_matrix_file(tmp_path):
     assert np.sort(raw.values[0]) == pytest.approx(np.sort(line))
 
 
+def test_noise_attributes_follow_the_jacobian(tmp_path):
+    # simulated data with known truth: Poisson electrons (gain 2 e/count) plus 4 counts
+    # read noise on a flat level, recorded on a wavelength grid; after the Jacobian the
+    # variance of each energy column must match the CCD model with the rescaled attributes
+    # Source: var(J c) = J^2 var(c) for a constant J (propagation of variance)
+    rng = np.random.default_rng(21)
+    lam = np.linspace(840.0, 850.0, 40)
+    n_angle = 4000
+    level = 400.0  # counts
+    counts = rng.poisson(level * 2.0, size=(lam.size, n_angle)) / 2.0
+    counts = counts + rng.normal(0.0, 4.0, size=counts.shape)
+    path = tmp_path / "noise.txt"
+    write_matrix(
+        path,
+        counts,
+        lam,
+        np.linspace(-30, 30, n_angle),
+        header="rows: wavelength [nm]; columns: angle [degree]; signal: counts\n"
+        "gain: 2; read_noise: 4; saturation: 60000",
+    )
+    m = load_map(path)
+    j_med = np.median(lam**2 / HC_EV_NM_CODATA)  # nm/eV, CODATA hc
+    assert m.attrs["gain"] == pytest.approx(2.0 / j_med, rel=1e-9)
+    assert m.attrs["read_noise"] == pytest.approx(4.0 * j_med, rel=1e-9)
+    assert m.attrs["saturation"] == pytest.approx(60000.0 * j_med, rel=1e-9)
+    model = m.mean("angle").values / m.attrs["gain"] + m.attrs["read_noise"] ** 2
+    measured = m.var("angle").values
+    # 4000 samples per column: the sample variance scatters by sqrt(2/4000) ~ 2.2 %;
+    # J differs from its median by at most 1.2 % over 840-850 nm
+    assert measured == pytest.approx(model, rel=0.1)
+    assert np.mean(measured / model) == pytest.approx(1.0, abs=0.01)
+
+
 def test_reflectance_is_not_jacobian_scaled(tmp_path):
     # Source: a reflectance is a ratio, not a spectral density (DESIGN section 3)
     lam = np.linspace(820.0, 880.0, 60)

@@ -17,7 +17,11 @@ Spectral densities
     ``"<units> nm/eV"`` (or ``".../eV"`` when the file said ``".../nm"``) and the
     attribute ``jacobian`` records the factor; the raw per-bin counts are
     ``signal * E**2 / hc`` (vacuum).  Reflectance and transmission are ratios and are
-    never scaled.  Linear relabellings (meV, 1/cm) change no values.
+    never scaled.  Linear relabellings (meV, 1/cm) change no values.  The CCD noise
+    attributes follow the signal: a raw count c becomes s = J c, so
+    var(s) = J s / gain + (J read_noise)^2, and ``gain``, ``read_noise`` and
+    ``saturation`` are rescaled with the median J of the axis (J changes by a few per
+    cent over a typical window; the spread is written into the ``jacobian`` attribute).
     ``wavelength_jacobian=False`` keeps the file's values (for noise models that need
     raw counts).
 """
@@ -343,7 +347,9 @@ def _convert_grid(
                         "(lambda^2/hc in vacuum) to keep its integral"
                     )
                     step += ", density scaled by |d lambda/d E|"
-            history.append(step)
+                    extra_attrs["_jacobian_values"] = jac
+            if quantity != "energy" or factor != 1.0:
+                history.append(step)
             coords["energy"] = energy
             target["energy"] = axis
         elif role == "angle" and u in U.PIXEL_UNITS:
@@ -400,6 +406,34 @@ def _apply_signal_units(raw, sig_name, signal_units, *, path) -> None:
     raw[sig_name].attrs["units"] = signal_units
 
 
+def _rescale_noise_attrs(attrs: dict, extra: dict) -> list[str]:
+    """Express gain, read noise and saturation in the units of a Jacobian-scaled signal.
+
+    A pixel's raw count c becomes s = J c, so var(s) = J s / gain + (J read_noise)^2:
+    the same CCD model with gain / J and read_noise * J.  J varies slowly over a map
+    window; its median is used, and the spread is stated.
+    """
+    jac = extra.pop("_jacobian_values", None)
+    if jac is None:
+        return []
+    present = [k for k in ("gain", "read_noise", "saturation") if k in attrs]
+    if not present:
+        return []
+    j_med = float(np.median(jac))
+    spread = float(jac.max() / jac.min() - 1.0)
+    if "gain" in attrs:
+        attrs["gain"] = attrs["gain"] / j_med
+    for key in ("read_noise", "saturation"):
+        if key in attrs:
+            attrs[key] = attrs[key] * j_med
+    note = (
+        f"{', '.join(present)} rescaled to the Jacobian-scaled signal with the median "
+        f"|d lambda/d E| = {j_med:.6g} (it varies by {100 * spread:.2g} % over the axis)"
+    )
+    attrs["jacobian"] = f"{attrs['jacobian']}; {note}"
+    return [note]
+
+
 def _mask(values: np.ndarray, mask_nonfinite: bool, *, path, field) -> tuple[np.ndarray, int]:
     bad = ~np.isfinite(values)
     n_bad = int(np.count_nonzero(bad))
@@ -453,6 +487,8 @@ def raw_to_map(
     attrs = _carried(raw.attrs, raw[sig_name].attrs, path=path)
     signal, n_bad = _mask(signal, mask_nonfinite, path=path, field=sig_name)
     attrs.update(extra)
+    history += _rescale_noise_attrs(attrs, extra)
+    attrs.pop("_jacobian_values", None)
     attrs.update({"units": sig_units, "kind": kind_, "source": str(path)})
     if n_bad and mask_nonfinite:
         attrs["masked"] = 1
@@ -729,6 +765,8 @@ def _cube_to_series(
     attrs = _carried(raw.attrs, raw[sig_name].attrs, path=path)
     signal, n_bad = _mask(signal, mask_nonfinite, path=path, field=sig_name)
     attrs.update(extra)
+    history += _rescale_noise_attrs(attrs, extra)
+    attrs.pop("_jacobian_values", None)
     attrs.update({"kind": kind_, "source": str(path)})
     attrs["masked"] = 1 if (n_bad and mask_nonfinite) else int(attrs.get("masked", 0))
     attrs = append_history(

@@ -34,6 +34,9 @@ __all__ = ["read", "looks_like_matrix"]
 logger = logging.getLogger(__name__)
 
 _DEFAULT_ROWS = ("energy", None)
+# cells made only of characters a strict number can hold (digits, sign, point, exponent,
+# nan/inf); numpy accepts more (underscores, non-ASCII digits), which this excludes
+_PLAIN_CELL = re.compile(r"^[0-9.eE+\-]+$")
 _DEFAULT_COLUMNS = ("angle", None)
 
 
@@ -148,6 +151,13 @@ def read(path, *, rows=None, columns=None) -> xr.Dataset:
     signal = np.empty((len(body), width - 1))
     for i, (number, cells) in enumerate(body):
         row_axis[i] = parse_number(cells[0], path=path, line=number, column=rname)
+        if all(_PLAIN_CELL.match(c) for c in cells[1:]):
+            # fast path: plain ASCII numbers, which numpy parses exactly as parse_number
+            try:
+                signal[i] = np.array(cells[1:], dtype=float)
+                continue
+            except ValueError:
+                pass
         for j, cell in enumerate(cells[1:]):
             signal[i, j] = parse_number(cell, path=path, line=number, column=f"{cname} #{j + 1}")
     sig_name, sig_units = "signal", None
