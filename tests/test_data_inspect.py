@@ -68,3 +68,24 @@ def test_inspect_refuses_a_bad_file(tmp_path):
     path.write_text("power [mW],intensity [counts]\n1,2\n2,x\n3,4\n")
     with pytest.raises(DataError, match=r"field 'intensity'.*'x'"):
         inspect_file(path)
+
+
+def test_inspect_spectra_cube_with_png(tmp_path):
+    path = tmp_path / "cube.npz"
+    energy = np.linspace(1.45, 1.5, 30)
+    power = np.array([0.5, 1.0, 2.0, 4.0])
+    cube = np.outer(power**2, np.ones(energy.size)) + 1.0
+    np.savez(
+        path,
+        intensity=cube,
+        power=power,
+        energy=energy,
+        units_intensity="counts",
+        units_power="mW",
+        units_energy="eV",
+    )
+    png = tmp_path / "cube.png"
+    text = inspect_file(path, png=png)
+    assert "content: power series (spectra cube)" in text
+    assert "dims: power (4) x energy (30)" in text
+    assert png.read_bytes()[:4] == b"\x89PNG"
