@@ -387,6 +387,10 @@ class FitResult:
             )
         return "NOT converged: " + "; ".join(d.get("reasons", []) or ["see diagnostics"])
 
+    def _prob_label(self, name: str) -> str:
+        """``P(flag)`` for a per-draw flag, the plain name for a stored probability."""
+        return f"P({name})" if name in self._tree["posterior"].data_vars else name
+
     def table(self) -> str:
         """A plain-text table: median, -/+ 68 % interval and 95 % interval, with units."""
         header = ("parameter", "units", "median", "-68%", "+68%", "95% interval")
@@ -406,7 +410,7 @@ class FitResult:
         if probs:
             lines.append("")
             for name, e in probs.items():
-                lines.append(f"P({name}) = {e['value']:.3f}   {e['long_name']}")
+                lines.append(f"{self._prob_label(name)} = {e['value']:.3f}   {e['long_name']}")
         return "\n".join(lines)
 
     def __str__(self) -> str:
@@ -441,7 +445,8 @@ class FitResult:
             parts.append("<ul>")
             for name, e in probs.items():
                 parts.append(
-                    f"<li>P({esc(name)}) = {e['value']:.3f} &mdash; {esc(e['long_name'])}</li>"
+                    f"<li>{esc(self._prob_label(name))} = {e['value']:.3f} &mdash; "
+                    f"{esc(e['long_name'])}</li>"
                 )
             parts.append("</ul>")
         parts.append("</div>")

@@ -372,6 +372,9 @@ class _Ensemble:
         self.sampler = emcee.EnsembleSampler(
             n_walkers, space.ndim, log_post, moves=moves, vectorize=True, backend=backend
         )
+        # emcee wraps the function in a helper that prints every exception (our FitError,
+        # a KeyboardInterrupt) to stdout before re-raising it; call ours directly instead
+        self.sampler.log_prob_fn = log_post
         ball_seq, mcmc_seq = seq.spawn(2)
         self.ball_rng = np.random.Generator(np.random.PCG64(ball_seq))
         self.rng_state = np.random.RandomState(np.random.MT19937(mcmc_seq)).get_state()
