@@ -26,7 +26,7 @@ from __future__ import annotations
 
 import xarray as xr
 
-from .assemble import raw_to_map, raw_to_series
+from .assemble import raw_to_map
 from .build import make_map, make_series
 from .fourier import find_pupil_edges, pixel_to_angle, sin_theta_from_pixel, to_k, wavevector
 from .inspect import inspect_file
@@ -42,6 +42,7 @@ from .preprocess import (
     subtract_dark,
 )
 from .registry import READERS, choose_reader, read_raw
+from .series import raw_to_series
 from .units import air_to_vacuum_nm, refractive_index_air, vacuum_to_air_nm
 from .validate import validate_map, validate_series
 
