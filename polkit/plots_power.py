@@ -119,11 +119,10 @@ def fit_figure(result, *, n_draws: int = 300):
             colour = _COLOURS.get(label, "tab:blue")
             sl = slice(start, stop)
             p = problem.power[sl]
-            order = np.argsort(p)
-            with np.errstate(invalid="ignore"):
-                lo, hi = np.nanpercentile(pred[:, sl], [2.5, 97.5], axis=0)
-            ok = np.isfinite(lo[order])
-            ax.fill_between(p[order][ok], lo[order][ok], hi[order][ok], color=colour, alpha=0.12,
+            used = problem.channels[name].used[sl]
+            order = np.argsort(p[used])
+            lo, hi = np.percentile(pred[:, sl][:, used], [2.5, 97.5], axis=0)
+            ax.fill_between(p[used][order], lo[order], hi[order], color=colour, alpha=0.12,
                             lw=0, label="95 % predictive" if start == 0 else None)
             ax.errorbar(p, y[sl], yerr=err[sl], fmt="o", ms=3, color=colour, lw=0.8,
                         label=f"data ({label})" if label != "none" else "data")
@@ -164,9 +163,7 @@ def residual_figure(result, *, n_draws: int = 300):
     for ax, name in zip(axes[:, 0], names, strict=True):
         ch = problem.channels[name]
         k = float(np.median(result.draws(ch.noise_param)))
-        with np.errstate(invalid="ignore"):
-            med = np.nanmedian(np.where(np.isfinite(model[name]), model[name], np.nan), axis=0)
-        r = ch.residuals(med, k)
+        r = ch.residuals(np.median(model[name], axis=0), k)
         for start, stop, label in problem.segments:
             sl = slice(start, stop)
             ax.plot(problem.power[sl], r[sl], "o", ms=3, color=_COLOURS.get(label, "tab:blue"),

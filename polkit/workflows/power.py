@@ -25,13 +25,14 @@ import logging
 import os
 import threading
 import tomllib
+import warnings
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 import xarray as xr
 
-from ..errors import ConfigError, DataError
+from ..errors import ConfigError, DataError, DataWarning
 from ..inference import FitResult, LogPosterior, Prior, apply_priors, find_map, run_ensemble
 from ..models.calibration import DensityCalibration, load_calibration
 from .dispersion import file_sha256
@@ -73,7 +74,9 @@ class PowerFit(FitResult):
     def problem(self) -> PowerProblem:
         """Rebuild the fitted problem (data in fit space and parameter space) from the result."""
         obs = self.tree["observed_data"].to_dataset()
-        problem = PowerProblem.from_series(obs, self.model, path=obs.attrs.get("source"))
+        with warnings.catch_warnings():  # said once when the fit ran
+            warnings.simplefilter("ignore", DataWarning)
+            problem = PowerProblem.from_series(obs, self.model, path=obs.attrs.get("source"))
         problem.space = self.space
         return problem
 
@@ -123,8 +126,10 @@ def check_series(series: xr.Dataset, model: str, *, path=None) -> None:
         if label != "none" and usable < MIN_POINTS:
             raise DataError(
                 f"expected at least {MIN_POINTS} measured intensities in the {label} sweep of "
-                f"rows {start + 1}-{stop}, found {usable}: an empty sweep. Fix: remove its "
-                "rows or fill in the measurements",
+                f"rows {start + 1}-{stop}, found {usable}"
+                + (": an empty sweep" if usable == 0 else "")
+                + ". Fix: remove its rows, or measure (fill in) at least "
+                f"{MIN_POINTS} powers in it",
                 path=path,
                 field="sweep",
             )
@@ -337,7 +342,8 @@ def fit_power(
     stop_event
         A :class:`threading.Event` that ends sampling early (result marked not converged).
     figures
-        Write figures to ``out`` (and the extraction figure for a cube).
+        Write the result figures to ``out``.  For a cube the extraction figure
+        (``extraction.png``) is written whenever ``out`` is given.
     energy_window, angle_window
         For a spectra cube: the extraction window in eV, and the angle (or k) window
         replacing the default k = 0 columns.
@@ -479,9 +485,9 @@ def fit_power(
         log.info("%s", note)
     if out_dir is not None:
         result.save(out_dir)
+        if extraction is not None:  # the check of the input: written whenever out is given
+            _extraction_figure(raw, extraction, out_dir / EXTRACTION_FIGURE)
         if figures:
-            if extraction is not None:
-                _extraction_figure(raw, extraction, out_dir / EXTRACTION_FIGURE)
             result.figures(out_dir)
     return result
 

@@ -201,6 +201,14 @@ def _channel(series, name, *, log_space, power, path, scale=1.0, offset=0.0) -> 
     has_errors = err is not None
     ok = np.isfinite(y)
     if has_errors:
+        no_error = int((ok & ~(np.isfinite(err) & (err > 0))).sum())
+        if no_error:
+            warnings.warn(
+                f"{path or 'series'}: {no_error} point(s) of {name} without a usable error "
+                "(NaN or 0) are left out; give every point a positive standard deviation",
+                DataWarning,
+                stacklevel=4,
+            )
         ok &= np.isfinite(err) & (err > 0)
     if log_space:
         bad = ok & ((y <= 0) | (power <= 0))
@@ -212,9 +220,6 @@ def _channel(series, name, *, log_space, power, path, scale=1.0, offset=0.0) -> 
                 stacklevel=4,
             )
         ok &= ~bad
-    dropped = int(np.isfinite(y).sum() - ok.sum())
-    if dropped and not log_space:
-        log.info("%s: %d point(s) of %s without a usable error left out", path, dropped, name)
     yv = np.where(ok, y, 1.0)
     if log_space:
         values = np.log(yv)
