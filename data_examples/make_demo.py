@@ -194,7 +194,7 @@ def make_series(seeds) -> dict:
     intensity = scale * n_c * rng.lognormal(0.0, 0.05, power.size)
     blue_c, blue_r = 0.0004, 0.35  # meV per condensate occupation, meV at threshold reservoir
     shift = blue_c * n_c + blue_r * frac
-    e_lp = 1.53880
+    e_lp = 1.53668  # lower polariton at k = 0 at P1 (dispersion truth)
     peak = e_lp + shift * MEV + rng.normal(0, 0.02 * MEV, power.size)
     lw = 0.30 * np.where(power < p_th, 1.0, 0.4) + rng.normal(0, 0.01, power.size)
     rows = [
@@ -212,9 +212,10 @@ def make_series(seeds) -> dict:
         threshold_power_mw=p_th, saturation_number=n_s, intensity_scale=scale, e_lp_ev=e_lp
     )
 
-    # 6. coherent drive at 0.6 meV above the lower polariton: up and down sweeps
+    # 6. coherent drive 0.94 meV above the lower polariton at P1 (whose linewidth at k = 0 is
+    # 0.47 meV in the dispersion truth above): up and down sweeps
     rng = np.random.default_rng(seeds[5])
-    delta, gamma, f_per_mw = 0.60, 0.30, 0.004  # meV, meV (FWHM), meV^3 per mW
+    delta, gamma, f_per_mw = 0.94, 0.47, 0.0154  # meV, meV (FWHM), meV^3 per mW
     p_up = np.linspace(0.5, 40.0, 40)
     p_down = p_up[::-1]
     y_up = coherent.steady_state_sweep(delta, gamma, f_per_mw * p_up, "up")
@@ -222,7 +223,7 @@ def make_series(seeds) -> dict:
     counts_per_mev = 5000.0
     rows = [
         "# invented demo sample DS-1, position P1: coherent drive, up then down sweep (simulated)",
-        "# pump 0.60 meV above the lower polariton at k = 0",
+        "# pump 0.94 meV above the lower polariton at k = 0",
         "power [mW],intensity [counts],intensity_error [counts],sweep",
     ]
     for p, y, d in [

@@ -19,13 +19,14 @@ from __future__ import annotations
 import hashlib
 import logging
 import os
+import warnings
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 import xarray as xr
 
-from ..errors import DataError
+from ..errors import ConvergenceWarning, DataError
 from ..inference import FitResult, LogPosterior, apply_priors, find_map, run_ensemble
 from .dispersion_model import (
     MODELS,
@@ -61,18 +62,27 @@ def _array_sha256(da: xr.DataArray) -> str:
 
 
 def _leverage(design: np.ndarray, inv_var: np.ndarray) -> np.ndarray:
-    """Diagonal of the weighted hat matrix per angle: ``h = w x^T (X^T W X)^-1 x``.
+    """Diagonal of the weighted hat matrix per angle, ``h = w x^T (X^T W X)^-1 x``.
 
-    ``design`` has shape ``(A, E, K)`` (the linear columns of each angle's fit).
+    Computed stably from a thin QR factorisation of ``sqrt(W) X`` (``h`` is the row sum of
+    ``Q^2``); nearly collinear columns (a reflectance column close to the constant
+    background) then give leverages in [0, 1] instead of round-off.  ``design`` has shape
+    ``(A, E, K)``.
     """
-    w = inv_var[..., None]
-    gram = np.einsum("aek,aej->akj", design * w, design)
-    gram_inv = np.linalg.pinv(gram)
-    return np.einsum("aek,akj,aej->ae", design, gram_inv, design) * inv_var
+    q, r = np.linalg.qr(design * np.sqrt(inv_var)[..., None])
+    diag = np.abs(np.diagonal(r, axis1=-2, axis2=-1))
+    keep = diag > 1e-10 * np.max(diag, axis=-1, keepdims=True)  # drop dependent columns
+    return np.einsum("aek,ak->ae", q * q, keep.astype(float))
 
 
-def calibrate_noise(y: np.ndarray, model: np.ndarray, *, gain: float | None = None,
-                    read_noise: float | None = None, design: np.ndarray | None = None):
+def calibrate_noise(
+    y: np.ndarray,
+    model: np.ndarray,
+    *,
+    gain: float | None = None,
+    read_noise: float | None = None,
+    design: np.ndarray | None = None,
+):
     """Variance function ``var = a * max(model, 0) + b`` for the whole-map likelihood.
 
     The variance is a function of the *model* (not of the noisy data), so the weights do
@@ -98,7 +108,7 @@ def calibrate_noise(y: np.ndarray, model: np.ndarray, *, gain: float | None = No
         r2_all = (y - model) ** 2
         if design is not None:
             lev = _leverage(design, np.where(ok, 1.0 / (m_all + np.median(r2_all[ok])), 0.0))
-            r2_all = r2_all / np.clip(1.0 - lev, 0.05, 1.0)
+            r2_all = r2_all / np.clip(1.0 - lev, 0.05, 1.0)  # h <= 0.95
         r2 = r2_all[ok]
         design = np.stack([m, np.ones_like(m)], axis=1)
         if gain is not None:
@@ -108,9 +118,12 @@ def calibrate_noise(y: np.ndarray, model: np.ndarray, *, gain: float | None = No
             a, b = 0.0, float(np.mean(r2)) or 1.0
             for _ in range(6):
                 w = 1.0 / (a * m + b) ** 2
-                coef, *_ = np.linalg.lstsq(design * np.sqrt(w)[:, None], r2 * np.sqrt(w),
-                                           rcond=None)
-                a, b = max(float(coef[0]), 0.0), float(coef[1])
+                coef, *_ = np.linalg.lstsq(
+                    design * np.sqrt(w)[:, None], r2 * np.sqrt(w), rcond=None
+                )
+                a, b = float(coef[0]), float(coef[1])
+                if a < 0.0:  # no shot-noise term: the variance is a constant, its mean
+                    a, b = 0.0, float(np.mean(r2))
                 if b <= 0:
                     b = max(float(np.mean(r2 - a * m)), 1e-3 * float(np.mean(r2)))
     var = a * m_all + b
@@ -280,8 +293,7 @@ def fit_dispersion(
         noise_note = "peak-table errors from the per-angle line fits, times noise_scale"
     else:
         path_used, like = "whole_map", problem.log_likelihood
-        post = LogPosterior(problem.log_likelihood, space)
-        start = find_map(post, space, table_map.x)
+        start = _staged_map(problem.log_likelihood, space, table_map.x)
         # calibrate the variance function on the MAP residuals, then refine the mode
         sol = problem.model_map(start.x)
         model_map = np.asarray(sol.model).reshape(problem.y.shape)
@@ -289,18 +301,30 @@ def fit_dispersion(
         design = np.moveaxis(np.asarray(problem.basis(start.x[None, :]))[0], 1, 2)  # (A, E, K)
         design = np.concatenate([design, np.ones(design.shape[:2] + (1,))], axis=2)
         inv_var, a, b = calibrate_noise(
-            problem.y, model_map, design=design,
+            problem.y,
+            model_map,
+            design=design,
             gain=da.attrs.get("gain") if counts else None,
-            read_noise=da.attrs.get("read_noise") if counts else None)
+            read_noise=da.attrs.get("read_noise") if counts else None,
+        )
         noise_note = (
             f"variance = a * model + b with a = {a:.4g}, b = {b:.4g} (squared signal units; "
-            + ("CCD gain and read noise from the file" if counts and da.attrs.get("gain") is not None
-               and da.attrs.get("read_noise") is not None else "fitted to the MAP residuals")
+            + (
+                "CCD gain and read noise from the file"
+                if counts
+                and da.attrs.get("gain") is not None
+                and da.attrs.get("read_noise") is not None
+                else "fitted to the MAP residuals"
+            )
             + "), times noise_scale^2"
         )
         problem.set_noise(inv_var, noise_note)
         start = find_map(LogPosterior(problem.log_likelihood, space), space, start.x)
 
+    if not (resume and checkpoint is not None and checkpoint.exists()):
+        if seed is None:  # one recorded root for the pre-burn and the run
+            seed = np.random.SeedSequence()
+        start = _preburn(like, space, start, walkers, seed, steps["max_steps"])
     output = run_ensemble(
         like,
         space,
@@ -364,6 +388,94 @@ def fit_dispersion(
     return result
 
 
+#: parameters the peak table leaves loosely determined; refined first with the rest fixed
+_SHAPE_PARAMETERS = (
+    "cavity_linewidth",
+    "exciton_linewidth",
+    "exciton2_linewidth",
+    "mirror_fraction",
+    "noise_scale",
+)
+
+
+def _staged_map(like, space, x_table: np.ndarray):
+    """Whole-map mode in two stages, starting from the peak-table mode.
+
+    The peak table fixes the branch positions well but says little about line shapes and
+    nothing about the top-mirror coupling; a direct optimisation of every parameter from
+    there can fall into a poor local mode (shallow dips traded for wrong positions).  Stage
+    1 optimises the line-shape parameters with the positions held at the peak-table mode
+    (several starts of the mirror share for reflectance); stage 2 frees everything.
+    # common practice, no published source
+    """
+    from ..inference import ParameterSpace
+
+    free = [i for i, n in enumerate(space.names) if n in _SHAPE_PARAMETERS]
+    x = np.array(x_table, dtype=float)
+    if free:
+        sub = ParameterSpace([space[space.names[i]] for i in free])
+
+        def sub_like(t):
+            full = np.repeat(x[None, :], t.shape[0], axis=0)
+            full[:, free] = t
+            return like(full)
+
+        sub_post = LogPosterior(sub_like, sub)
+        starts = [x[free]]
+        if "mirror_fraction" in sub.names:
+            j = sub.names.index("mirror_fraction")
+            for f in (0.25, 0.75, 0.95):
+                s0 = x[free].copy()
+                s0[j] = f
+                starts.append(s0)
+        best = max((find_map(sub_post, sub, s0) for s0 in starts), key=lambda m: m.log_post)
+        x[free] = best.x
+    return find_map(LogPosterior(like, space), space, x)
+
+
+def _preburn(like, space, start, n_walkers: int, seed, max_steps: int) -> np.ndarray:
+    """A short burn-in from the MAP ball, then stragglers replaced: the starting ensemble.
+
+    A walker that starts in a poor local mode can stay there for the whole run (the moves
+    of an affine-invariant ensemble rarely carry it across).  After ``n`` steps, walkers
+    whose log posterior lies more than ``10 max(MAD, 1)`` below the median are moved onto
+    copies of good walkers with a small jitter (1e-3 of the ensemble spread), as is common
+    practice for ensemble samplers.  Deterministic for a given seed (its own spawned seed).
+    # common practice, no published source
+    """
+    n = int(min(300, max(50, max_steps // 5)))
+    root = seed if isinstance(seed, np.random.SeedSequence) else np.random.SeedSequence(seed)
+    pre_seed = np.random.SeedSequence(root.entropy, spawn_key=(*root.spawn_key, 0xB0))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", ConvergenceWarning)  # short on purpose
+        out = run_ensemble(
+            like,
+            space,
+            start,
+            n_walkers=n_walkers,
+            seed=pre_seed,
+            max_steps=n,
+            min_steps=n,
+            check_every=n,
+            progress=False,
+        )
+    pos = out.chains[0, -1].copy()
+    lp = out.log_prob[0, -1]
+    med = np.median(lp)
+    mad = 1.4826 * np.median(np.abs(lp - med))
+    bad = ~(lp >= med - 10.0 * max(mad, 1.0))
+    if bad.any():
+        rng = np.random.default_rng(pre_seed.spawn(1)[0])
+        good = np.flatnonzero(~bad)
+        spread = np.std(pos[good], axis=0) + 1e-12
+        donors = rng.choice(good, size=int(bad.sum()))
+        pos[bad] = pos[donors] + 1e-3 * spread * rng.standard_normal((int(bad.sum()), pos.shape[1]))
+        lo, hi = space.bounds.T
+        pos[bad] = np.clip(pos[bad], lo + 1e-12 * (hi - lo), hi - 1e-12 * (hi - lo))
+        log.info("pre-burn: %d straggling walker(s) moved onto good ones", int(bad.sum()))
+    return pos
+
+
 def _clip_into(param, value: float) -> float:
     lo, hi = param.prior.bounds
     if not np.isfinite(value):
@@ -375,6 +487,6 @@ def _clip_into(param, value: float) -> float:
 def _default_start(name: str, guess: dict) -> float:
     if name == "noise_scale":
         return 1.0
-    if name == "mirror_coupling":
-        return 0.5 * guess["cavity_linewidth"]
+    if name == "mirror_fraction":
+        return 0.5
     return float("nan")

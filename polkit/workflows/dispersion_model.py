@@ -11,7 +11,10 @@ Sampled parameters (units in brackets)::
     rabi_splitting [meV] (2g, the full splitting at resonance)
     cavity_linewidth [meV]   exciton_linewidth [meV]   (FWHM)
     three oscillators: exciton2_energy [eV], rabi_splitting2 [meV], exciton2_linewidth [meV]
-    reflectance: mirror_coupling [meV] (kappa in r = r_bg (1 - i kappa G_CC))
+    reflectance: mirror_fraction [1] (kappa / gamma_C, kappa the top-mirror coupling in
+                 r = r_bg (1 - i kappa G_CC); 0 < kappa <= gamma_C, since the top-mirror loss is
+                 part of the cavity loss: kappa = gamma_C is a lossless one-sided cavity, kappa =
+                 gamma_C / 2 critical coupling, and kappa > gamma_C would make |r| > 1)
     noise_scale [1]  (multiplies the noise standard deviation of the data)
 
 Amplitudes (branch occupations per angle, reflectance scale) and backgrounds are not
@@ -54,7 +57,7 @@ _LONG_NAMES = {
     "exciton2_energy": "second exciton energy",
     "rabi_splitting2": "Rabi splitting of the second exciton (2g2)",
     "exciton2_linewidth": "second exciton linewidth (FWHM)",
-    "mirror_coupling": "top-mirror coupling kappa",
+    "mirror_fraction": "top-mirror share of the cavity loss kappa / gamma_C",
     "noise_scale": "noise scale factor",
 }
 
@@ -292,10 +295,7 @@ def default_space(
     if kind == "reflectance":
         params.append(
             Parameter(
-                "mirror_coupling",
-                "meV",
-                Prior.loguniform(1e-3, 2 * width_hi),
-                _LONG_NAMES["mirror_coupling"],
+                "mirror_fraction", "1", Prior.uniform(0.0, 1.0), _LONG_NAMES["mirror_fraction"]
             )
         )
     if sample_noise:
@@ -382,7 +382,8 @@ class DispersionProblem:
     def basis(self, theta: np.ndarray):
         p = self.physics(theta)
         if self.kind == "reflectance":
-            kappa = np.atleast_2d(theta)[:, self._idx["mirror_coupling"]] * MEV
+            t = np.atleast_2d(theta)
+            kappa = t[:, self._idx["mirror_fraction"]] * t[:, self._idx["cavity_linewidth"]] * MEV
             return spectral.reflectance_basis(self.in_plane, self.energy, kappa=kappa, **p)
         return spectral.emission_basis(self.in_plane, self.energy, **p)
 
@@ -489,6 +490,12 @@ class DispersionProblem:
             "cavity quality factor E_C0 / gamma_C",
         )
         strong = (c["rabi_splitting"] > 0.5 * (gc + gx)).astype(float)
+        if "mirror_fraction" in c:
+            out["mirror_coupling"] = (
+                c["mirror_fraction"] * gc,
+                "meV",
+                "top-mirror coupling kappa (FWHM convention)",
+            )
         out["strong_coupling"] = (
             strong,
             "1",
