@@ -51,6 +51,19 @@ def _marker_size(n: int) -> float:
     return float(np.clip(2400.0 / max(n, 1), 12.0, 160.0))
 
 
+def _limits(ds) -> tuple[float, float, float, float]:
+    """Axis limits: the positions plus a margin so that edge markers are not clipped."""
+    x = np.asarray(ds["x"].values, dtype=float)
+    y = np.asarray(ds["y"].values, dtype=float)
+    ok = np.isfinite(x) & np.isfinite(y)
+    if not ok.any():
+        return -1.0, 1.0, -1.0, 1.0
+    x, y = x[ok], y[ok]
+    pad = 0.08 * max(float(np.ptp(x)), float(np.ptp(y)), 1.0)
+    # more room below: the values are printed under the markers
+    return x.min() - pad, x.max() + pad, y.min() - 2.0 * pad, y.max() + pad
+
+
 def _norm(name: str, values: np.ndarray):
     from matplotlib.colors import Normalize, TwoSlopeNorm
 
@@ -118,6 +131,11 @@ def wafer_map(ds, name: str, *, ax=None, statistic: str = "median", surface=None
     bad = ~shown & np.isfinite(x) & np.isfinite(y)
     if bad.any():
         ax.scatter(x[bad], y[bad], marker="x", s=0.6 * size, c="0.5", zorder=3, label="failed")
+    if np.count_nonzero(shown) <= 30:  # few positions: print the values under the markers
+        for xi, yi, vi in zip(x[shown], y[shown], values[shown], strict=True):
+            ax.annotate(f"{vi:.3g}", (xi, yi), xytext=(0, -0.9 * np.sqrt(size) - 2),
+                        textcoords="offset points", ha="center", va="top", fontsize=6.5,
+                        zorder=5)
     if surface is not None:
         _zero_line(ax, surface, band=False)
     if colorbar:
@@ -128,7 +146,10 @@ def wafer_map(ds, name: str, *, ax=None, statistic: str = "median", surface=None
     ax.set_title(title or MAP_QUANTITIES.get(name, name))
     ax.set_xlabel("x [mm]")
     ax.set_ylabel("y [mm]")
-    ax.set_aspect("equal", adjustable="datalim")
+    x0, x1, y0, y1 = _limits(ds)
+    ax.set_xlim(x0, x1)
+    ax.set_ylim(y0, y1)
+    ax.set_aspect("equal", adjustable="box")
     return ax
 
 
@@ -159,10 +180,13 @@ def detuning_figure(ds, surface):
     values = ds["detuning"].sel(statistic="median").values
     norm, cmap = _norm("detuning", np.asarray(values, dtype=float))
     if surface is not None:
-        xx, yy, mean, _ = surface.grid(161)
+        x0, x1, y0, y1 = _limits(ds)
+        xx, yy = np.meshgrid(np.linspace(x0, x1, 201), np.linspace(y0, y1, 201))
+        mean, _ = surface.evaluate(xx, yy)
         both = np.concatenate([np.asarray(values, float)[np.isfinite(values)], mean.ravel()])
         norm, cmap = _norm("detuning", both)
-        ax.contourf(xx, yy, mean, levels=24, norm=norm, cmap=cmap, alpha=0.45, zorder=1)
+        ax.imshow(mean, extent=(x0, x1, y0, y1), origin="lower", norm=norm, cmap=cmap,
+                  alpha=0.45, zorder=1, interpolation="bilinear", aspect="auto")
         _zero_line(ax, surface, band=True)
     wafer_map(ds, "detuning", ax=ax, norm=norm, cmap=cmap, title="detuning across the wafer")
     if surface is not None:
@@ -175,8 +199,8 @@ def detuning_figure(ds, surface):
             f"  d/dy = {g['y']['value']:.3g} +/- {g['y']['sigma']:.2g} {g['units']}\n"
             f"black line: zero detuning; shaded: {pct} % band"
         )
-        ax.text(0.02, 0.02, text, transform=ax.transAxes, fontsize=7.5, va="bottom",
-                family="monospace", bbox={"facecolor": "white", "alpha": 0.8, "lw": 0})
+        ax.text(0.0, -0.14, text, transform=ax.transAxes, fontsize=7.5, va="top",
+                family="monospace")
     handles, labels = ax.get_legend_handles_labels()
     if handles:
         ax.legend(loc="upper right", fontsize=7)

@@ -603,7 +603,7 @@ def fit_position(task: dict[str, Any]) -> dict[str, Any]:
         "seed_spawn_key": [int(k) for k in seed.spawn_key],
     }
     t0 = time.perf_counter()
-    with warnings.catch_warnings(record=True) as caught:
+    with warnings.catch_warnings(record=True) as caught, _serial_dask():
         warnings.simplefilter("always")
         try:
             options = dict(
@@ -653,6 +653,20 @@ def fit_position(task: dict[str, Any]) -> dict[str, Any]:
     with contextlib.suppress(OSError):
         checkpoint.unlink(missing_ok=True)
     return record
+
+
+@contextlib.contextmanager
+def _serial_dask():
+    """Inside a task, let libraries that consult dask (xarray's netCDF writer picks its
+    file locks from the active scheduler) work serially, as in a plain process: a task is
+    one whole fit, and the worker's cluster-wide locks are not meant for its files."""
+    try:
+        import dask
+    except ImportError:  # pragma: no cover - dask is a dependency
+        yield
+        return
+    with dask.config.set(scheduler="synchronous"):
+        yield
 
 
 def _read_json(path: Path) -> dict | None:
@@ -1222,8 +1236,9 @@ class SurveyResult:
         ]
         if c.get("pending"):
             lines.append(f"  {'pending':<16}{c['pending']:>5}")
-        lines.append(f"  (fitted now: {len(self.fitted)}, reused from an earlier run: "
-                     f"{len(self.reused)})")
+        if self.fitted or self.reused:
+            lines.append(f"  (fitted now: {len(self.fitted)}, reused from an earlier run: "
+                         f"{len(self.reused)})")
         if self.surface is not None:
             g = self.surface.gradient_summary()
             lines.append(
