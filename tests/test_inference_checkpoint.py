@@ -163,3 +163,34 @@ def test_checkpoint_of_another_run_is_refused(tmp_path):
         fh["x"] = 1
     with pytest.raises(ConfigError, match="not a polkit checkpoint"):
         run_ensemble(loglike, SPACE, START, checkpoint=stranger, resume=True, **SETTINGS)
+
+
+def test_resume_with_a_larger_step_limit_extends_an_unconverged_run(tmp_path):
+    # common practice, no published source: "run longer" on a run that stopped at its step
+    # limit must give the chain an uninterrupted run with the larger limit would have given.
+    import warnings as _w
+
+    import numpy as _np
+
+    from polkit.errors import ConvergenceWarning as _CW
+    from polkit.inference import Parameter as _P
+    from polkit.inference import ParameterSpace as _S
+    from polkit.inference import Prior as _Pr
+    from polkit.inference import run_ensemble as _run
+
+    space = _S([_P("a", "1", _Pr.uniform(-10, 10)), _P("b", "1", _Pr.uniform(-10, 10))])
+
+    def like(t):
+        return -0.5 * _np.sum((t - 1.0) ** 2 / 0.3**2, axis=1)
+
+    kw = dict(n_walkers=8, seed=3, min_steps=100, check_every=100, progress=False)
+    with _w.catch_warnings():
+        _w.simplefilter("ignore", _CW)
+        _run(like, space, _np.array([1.0, 1.0]), max_steps=200, checkpoint=tmp_path / "a.h5", **kw)
+        ext = _run(like, space, _np.array([1.0, 1.0]), max_steps=400,
+                   checkpoint=tmp_path / "a.h5", resume=True, **kw)
+        straight = _run(like, space, _np.array([1.0, 1.0]), max_steps=400,
+                        checkpoint=tmp_path / "b.h5", **kw)
+    assert ext.chains.shape == straight.chains.shape
+    assert ext.chains.shape[1] > 200
+    _np.testing.assert_array_equal(ext.chains, straight.chains)

@@ -536,7 +536,9 @@ def run_ensemble(
     resume
         Continue the run stored in ``checkpoint`` (start one if the file does not
         exist).  The parameter names, walker count and seed must match; the other
-        settings should too.  The continued chain equals an uninterrupted run's.
+        settings should too.  The continued chain equals an uninterrupted run's.  A run
+        that stopped unconverged at its ``max_steps`` is continued when resumed with a
+        larger ``max_steps`` (as if it had been started with that limit).
     progress
         Show a ``tqdm.auto`` progress bar.
     strict
@@ -627,9 +629,14 @@ def run_ensemble(
             steps = ens.steps
             pbar.update(min(steps, max_steps))
             if done is not None:
-                gate[ens.index] = _gate_at(ens, int(done), space, autocorr_factor, tau_rtol,
-                                           acceptance_range, check_every)
-                continue
+                check = _gate_at(ens, int(done), space, autocorr_factor, tau_rtol,
+                                 acceptance_range, check_every)
+                if check.passed or int(done) >= max_steps:
+                    gate[ens.index] = check
+                    continue
+                # stopped at an earlier, smaller step limit without converging: a resume
+                # with a larger max_steps continues it exactly as an uninterrupted run would
+                log.info("%s: continuing a run stopped unconverged at %d steps", ens.name, done)
             ens.start(positions(ens.index, ens.ball_rng) if steps == 0 else None, space)
             while True:
                 n = ens.steps
