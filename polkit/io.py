@@ -26,7 +26,8 @@ from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import Any
 
-__all__ = ["atomic_path", "write_bytes", "write_text", "write_json", "write_netcdf", "save_figure"]
+__all__ = [
+    "json_safe","atomic_path", "write_bytes", "write_text", "write_json", "write_netcdf", "save_figure"]
 
 _NO_SPACE = {_errno.ENOSPC, _errno.EFBIG, getattr(_errno, "EDQUOT", _errno.ENOSPC)}
 _NO_PERMISSION = {_errno.EACCES, _errno.EPERM, _errno.EROFS}
@@ -150,20 +151,20 @@ def write_text(target: str | os.PathLike, text: str) -> Path:
 
 def write_json(target: str | os.PathLike, obj: Any) -> Path:
     """Write ``obj`` as indented JSON (NaN and infinities written as null) atomically."""
-    return write_text(target, json.dumps(_json_safe(obj), indent=2, allow_nan=False) + "\n")
+    return write_text(target, json.dumps(json_safe(obj), indent=2, allow_nan=False) + "\n")
 
 
-def _json_safe(obj):
+def json_safe(obj):
     import math
 
     import numpy as np
 
     if isinstance(obj, dict):
-        return {str(k): _json_safe(v) for k, v in obj.items()}
+        return {str(k): json_safe(v) for k, v in obj.items()}
     if isinstance(obj, (list, tuple)):
-        return [_json_safe(v) for v in obj]
+        return [json_safe(v) for v in obj]
     if isinstance(obj, np.ndarray):
-        return [_json_safe(v) for v in obj.tolist()]
+        return [json_safe(v) for v in obj.tolist()]
     if isinstance(obj, (np.bool_,)):
         return bool(obj)
     if isinstance(obj, np.integer):

@@ -46,7 +46,7 @@ import numpy as np
 import xarray as xr
 
 from ..errors import ConfigError, DataError
-from ..io import _json_safe, write_json, write_netcdf
+from ..io import json_safe, write_json, write_netcdf
 from .priors import ParameterSpace
 from .sampler import SamplerOutput
 
@@ -62,7 +62,7 @@ _LIBRARIES = ("numpy", "scipy", "xarray", "emcee", "arviz", "h5netcdf", "h5py")
 
 
 def _json_text(obj: Any) -> str:
-    return json.dumps(_json_safe(obj), allow_nan=False)
+    return json.dumps(json_safe(obj), allow_nan=False)
 
 
 def _attr_value(key: str, value: Any):

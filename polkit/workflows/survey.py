@@ -1627,9 +1627,9 @@ def run_survey(
 
 
 def _json_ready(obj):
-    from ..io import _json_safe
+    from ..io import json_safe
 
-    return _json_safe(obj)
+    return json_safe(obj)
 
 
 def _polkit_version() -> str:
