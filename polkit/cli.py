@@ -98,7 +98,85 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--seed", type=int, default=None)
     p.add_argument("--out", type=Path, default=Path("polkit-out") / "budget")
 
+    p = sub.add_parser("survey", help="fit every position of a wafer and map the results")
+    p.add_argument("manifest", type=Path, help="CSV manifest (file, x [mm], y [mm]) or a folder")
+    p.add_argument(
+        "--mode",
+        choices=["quick", "full"],
+        default="quick",
+        help="quick: peak-table fits; full: whole-map MCMC with its convergence gate",
+    )
+    p.add_argument("--workers", type=int, default=None, help="local worker processes")
+    p.add_argument("--scheduler", default=None, help="address of an existing dask scheduler")
+    p.add_argument("--out", type=Path, default=Path("polkit-out") / "survey")
+    p.add_argument("--seed", type=int, default=None)
+    p.add_argument("--max-steps", type=int, default=None)
+    p.add_argument("--retry-failed", action="store_true", help="refit positions that failed")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
+
+    p = sub.add_parser("report", help="execute a notebook into a self-contained HTML report")
+    p.add_argument("notebook", type=Path)
+    p.add_argument(
+        "--param",
+        action="append",
+        default=[],
+        metavar="NAME=VALUE",
+        help="override a name of the notebook's parameters cell (Python literal)",
+    )
+    p.add_argument("--out", type=Path, default=None, help="report folder")
+
     return parser
+
+
+def _cmd_survey(args) -> int:
+    from .workflows.survey import run_survey
+
+    result = run_survey(
+        args.manifest,
+        mode=args.mode,
+        workers=args.workers,
+        scheduler=args.scheduler,
+        out=args.out,
+        seed=args.seed,
+        progress=not args.quiet,
+        max_steps=args.max_steps,
+        retry_failed=args.retry_failed,
+    )
+    print(result.table())
+    print(f"results written to {args.out}")
+    counts = result.counts
+    if counts.get("failed", 0):
+        return EXIT_INPUT
+    if counts.get("not_converged", 0):
+        return EXIT_NOT_CONVERGED
+    return EXIT_OK
+
+
+def _parse_params(items: list[str]) -> dict:
+    import ast
+
+    from .errors import ConfigError
+
+    params = {}
+    for item in items:
+        name, sep, text = item.partition("=")
+        if not sep or not name.strip().isidentifier():
+            raise ConfigError(f"expected NAME=VALUE, found {item!r}", key="--param")
+        try:
+            params[name.strip()] = ast.literal_eval(text.strip())
+        except (ValueError, SyntaxError):
+            params[name.strip()] = text.strip()  # a bare word is taken as text
+    return params
+
+
+def _cmd_report(args) -> int:
+    from .report import make_report
+
+    out = args.out or Path("polkit-out") / "reports" / args.notebook.stem
+    paths = make_report(args.notebook, params=_parse_params(args.param), out=out)
+    print(f"report: {paths.html}")
+    print(f"executed notebook: {paths.notebook}")
+    return EXIT_OK
 
 
 def _cmd_power(args) -> int:
@@ -189,6 +267,8 @@ _COMMANDS = {
     "dispersion": _cmd_dispersion,
     "power": _cmd_power,
     "budget": _cmd_budget,
+    "survey": _cmd_survey,
+    "report": _cmd_report,
 }
 
 

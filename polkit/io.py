@@ -27,7 +27,14 @@ from pathlib import Path
 from typing import Any
 
 __all__ = [
-    "json_safe","atomic_path", "write_bytes", "write_text", "write_json", "write_netcdf", "save_figure"]
+    "json_safe",
+    "atomic_path",
+    "write_bytes",
+    "write_text",
+    "write_json",
+    "write_netcdf",
+    "save_figure",
+]
 
 _NO_SPACE = {_errno.ENOSPC, _errno.EFBIG, getattr(_errno, "EDQUOT", _errno.ENOSPC)}
 _NO_PERMISSION = {_errno.EACCES, _errno.EPERM, _errno.EROFS}
@@ -49,8 +56,10 @@ def _umask() -> int:
 
 def _hint(code: int | None) -> str:
     if code in _NO_SPACE:
-        return "; the disk is full or a file-size limit was reached: free some space or " \
+        return (
+            "; the disk is full or a file-size limit was reached: free some space or "
             "write the results to another folder"
+        )
     if code in _NO_PERMISSION:
         return "; the folder is read-only for this user: choose another output folder"
     return ""
