@@ -1,0 +1,255 @@
+"""Hot path against the floor: one whole-map log-likelihood call versus one numpy Lorentzian pass.
+
+    python tests/benchmarks/bench_hot_path.py [--quick]
+
+The hot path of a whole-map dispersion fit is
+:meth:`polkit.workflows.dispersion_model.DispersionProblem.log_likelihood` called on the
+whole ensemble at once (``theta`` of shape ``(W, P)``): the branch bases of every walker
+and angle, the weighted Gram blocks, the background eliminated per angle and the
+non-negative amplitudes solved in closed form.  The floor is the time numpy needs for one
+pass of a single Lorentzian ``h / ((E - x)^2 + h^2)`` over the same ``W x A x E`` grid
+(the least work any evaluation of a line-shape model on that grid must do).  Both are timed
+in the same process, repetitions interleaved, medians taken; the floor is timed in two
+spellings (the plain expression, and in place with one temporary) and the faster counts.
+A cProfile summary shows where the time goes.  The script prints numbers and never
+asserts on them.
+
+The map is invented: a GaAs-like two-oscillator emission map simulated with polkit's own
+model (seeded), in counts with Gaussian noise of the CCD variance ``counts / gain +
+read_noise^2``.  This module also provides that map to the other benchmarks.
+"""
+
+from __future__ import annotations
+
+import argparse
+import cProfile
+import gc
+import json
+import pstats
+import time
+from pathlib import Path
+
+import numpy as np
+import xarray as xr
+
+#: the invented sample's parameters, in the units polkit samples (eV, meV, 1)
+TRUTH = {
+    "exciton_energy": 1.545,
+    "cavity_energy": 1.541,
+    "n_eff": 3.4,
+    "rabi_splitting": 12.0,
+    "cavity_linewidth": 0.3,
+    "exciton_linewidth": 0.8,
+}
+#: branch occupations (lower, upper) in counts x eV, background in counts
+OCCUPATION = (3.0, 0.36)
+BACKGROUND = 60.0
+GAIN = 1.0  # electrons per count
+READ_NOISE = 4.0  # counts
+ENERGY_WINDOW = (1.528, 1.562)  # eV
+ANGLE_SPAN = 24.0  # degree, symmetric about normal incidence
+SEED = 20261208
+
+
+def simulated_map(
+    n_angles: int,
+    n_energies: int,
+    *,
+    seed: int | np.random.SeedSequence = SEED,
+    truth: dict | None = None,
+    energy_window: tuple[float, float] = ENERGY_WINDOW,
+) -> tuple[xr.DataArray, np.ndarray, np.ndarray]:
+    """An invented emission map with known truth and Gaussian CCD noise.
+
+    Returns
+    -------
+    (map, inverse_variance, noiseless)
+        The canonical map (counts, with ``gain`` and ``read_noise`` attrs), the true
+        inverse variance per pixel (1/counts^2) and the noiseless signal.
+    """
+    from polkit.models.spectral import simulate_map
+
+    t = dict(TRUTH if truth is None else truth)
+    angles = np.linspace(-ANGLE_SPAN, ANGLE_SPAN, n_angles)
+    energy = np.linspace(*energy_window, n_energies)
+    sim = simulate_map(
+        angles, energy, kind="emission",
+        e_c0=t["cavity_energy"], n_eff=t["n_eff"], e_x=t["exciton_energy"],
+        g=0.5e-3 * t["rabi_splitting"], gamma_c=1e-3 * t["cavity_linewidth"],
+        gamma_x=1e-3 * t["exciton_linewidth"],
+        amplitudes=np.broadcast_to(np.asarray(OCCUPATION), (n_angles, 2)),
+        background=BACKGROUND,
+    )
+    clean = np.asarray(sim.signal, dtype=float)
+    variance = np.clip(clean, 0.0, None) / GAIN + READ_NOISE**2
+    rng = np.random.default_rng(seed)
+    counts = clean + np.sqrt(variance) * rng.standard_normal(clean.shape)
+    da = xr.DataArray(
+        counts, dims=("angle", "energy"),
+        coords={"angle": ("angle", angles, {"units": "degree", "long_name": "emission angle"}),
+                "energy": ("energy", energy, {"units": "eV", "long_name": "photon energy"})},
+        attrs={"units": "counts", "kind": "emission", "gain": GAIN, "read_noise": READ_NOISE,
+               "sample": "invented benchmark map (simulated)", "masked": 0},
+    )
+    return da, 1.0 / variance, clean
+
+
+def problem_for(da: xr.DataArray, inv_var: np.ndarray, *, space=None, table=None,
+                sample_noise: bool = True):
+    """The :class:`DispersionProblem` of a simulated map (default priors around the truth)."""
+    from polkit.workflows.dispersion_model import DispersionProblem, default_space
+
+    energy = da["energy"].values.astype(float)
+    if space is None:
+        space = default_space(energy, TRUTH, sample_noise=sample_noise)
+    return DispersionProblem(
+        axis="angle", in_plane=da["angle"].values.astype(float), energy=energy,
+        y=np.asarray(da.values, dtype=float), inv_var=inv_var, space=space, table=table,
+    )
+
+
+def truth_vector(space) -> np.ndarray:
+    """The truth in the order of ``space`` (noise scale 1, mirror share 0.5)."""
+    extra = {"noise_scale": 1.0, "mirror_fraction": 0.5}
+    return np.array([TRUTH.get(n, extra.get(n, np.nan)) for n in space.names])
+
+
+def walker_ball(space, n_walkers: int, rng: np.random.Generator, rel: float = 2e-4) -> np.ndarray:
+    """``n_walkers`` points in a small ball around the truth (a posterior-sized spread)."""
+    x = truth_vector(space)
+    scale = np.maximum(np.abs(x), 1e-3) * rel
+    return x + scale * rng.standard_normal((n_walkers, x.size))
+
+
+# --------------------------------------------------------------------------------------
+# the floor
+# --------------------------------------------------------------------------------------
+def floor_plain(energy: np.ndarray, centre: np.ndarray, half: np.ndarray) -> np.ndarray:
+    """One Lorentzian ``h / ((E - x)^2 + h^2)`` as the plain numpy expression."""
+    return half / ((energy - centre) ** 2 + half * half)
+
+
+def floor_in_place(energy: np.ndarray, centre: np.ndarray, half: np.ndarray) -> np.ndarray:
+    """The same Lorentzian with one full-size temporary, every step in place."""
+    u = np.subtract(energy, centre)
+    np.multiply(u, u, out=u)
+    u += half * half
+    np.divide(half, u, out=u)
+    return u
+
+
+def _profile_summary(func, n_calls: int, top: int = 8) -> list[dict]:
+    prof = cProfile.Profile()
+    prof.enable()
+    for _ in range(n_calls):
+        func()
+    prof.disable()
+    stats = pstats.Stats(prof)
+    total = sum(v[2] for v in stats.stats.values())  # total own time
+    rows = []
+    for (filename, line, name), (_, ncalls, tottime, cumtime, _) in stats.stats.items():
+        path = Path(filename)
+        short = "/".join(path.parts[-2:]) if path.suffix == ".py" else filename
+        rows.append({
+            "function": f"{short}:{line}({name})",
+            "calls_per_eval": ncalls / n_calls,
+            "own_ms_per_eval": 1e3 * tottime / n_calls,
+            "cum_ms_per_eval": 1e3 * cumtime / n_calls,
+            "own_share": tottime / total if total > 0 else float("nan"),
+        })
+    rows.sort(key=lambda r: r["own_ms_per_eval"], reverse=True)
+    return rows[:top]
+
+
+def run(
+    quick: bool = False,
+    *,
+    n_angles: int = 80,
+    n_energies: int = 600,
+    n_walkers: int = 32,
+    repeats: int | None = None,
+) -> dict:
+    """Time the whole-map log-likelihood and the Lorentzian floor; returns the figures.
+
+    Parameters
+    ----------
+    quick
+        Fewer repetitions (7 instead of 21).
+    n_angles, n_energies, n_walkers
+        Grid of the benchmark (80 x 600 map, 32 walkers by default).
+    repeats
+        Interleaved repetitions (overrides ``quick``).
+    """
+    reps = repeats if repeats is not None else (7 if quick else 21)
+    rng = np.random.default_rng(SEED)
+    da, inv_var, _ = simulated_map(n_angles, n_energies, seed=rng.integers(2**32))
+    problem = problem_for(da, inv_var)
+    theta = walker_ball(problem.space, n_walkers, rng)
+    energy = problem.energy
+    centre = rng.uniform(energy[0], energy[-1], size=(n_walkers, n_angles, 1))
+    half = np.full((n_walkers, n_angles, 1), 0.5e-3 * TRUTH["cavity_linewidth"])
+
+    first = problem.log_likelihood(theta)  # warm-up (and a check that it is finite)
+    floor_plain(energy, centre, half)
+    floor_in_place(energy, centre, half)
+    hot, plain, in_place = [], [], []
+    for _ in range(reps):
+        gc.collect()
+        t0 = time.perf_counter()
+        problem.log_likelihood(theta)
+        t1 = time.perf_counter()
+        floor_plain(energy, centre, half)
+        t2 = time.perf_counter()
+        floor_in_place(energy, centre, half)
+        t3 = time.perf_counter()
+        hot.append(t1 - t0)
+        plain.append(t2 - t1)
+        in_place.append(t3 - t2)
+    t_hot, t_plain, t_in = (float(np.median(v)) for v in (hot, plain, in_place))
+    t_floor = min(t_plain, t_in)
+    profile = _profile_summary(lambda: problem.log_likelihood(theta), max(2, reps // 3))
+    n_elem = n_walkers * n_angles * n_energies
+    return {
+        "grid": {"walkers": n_walkers, "angles": n_angles, "energies": n_energies},
+        "repeats": reps,
+        "parameters": problem.space.names,
+        "log_likelihood_finite": bool(np.all(np.isfinite(first))),
+        "hot_path_ms": 1e3 * t_hot,
+        "floor_plain_ms": 1e3 * t_plain,
+        "floor_in_place_ms": 1e3 * t_in,
+        "floor_ms": 1e3 * t_floor,
+        "hot_path_ratio": t_hot / t_floor,
+        "hot_path_ratio_plain_floor": t_hot / t_plain,
+        "hot_path_ns_per_walker_pixel": 1e9 * t_hot / n_elem,
+        "hot_path_ms_iqr": [1e3 * float(np.percentile(hot, q)) for q in (25, 75)],
+        "floor_ms_iqr": [1e3 * float(np.percentile(in_place if t_in <= t_plain else plain, q))
+                         for q in (25, 75)],
+        "target_ratio": 3.0,
+        "profile_top": profile,
+    }
+
+
+def print_report(r: dict) -> None:
+    """Readable summary of :func:`run`'s figures."""
+    g = r["grid"]
+    print(f"hot path: one log-likelihood call, {g['walkers']} walkers x {g['angles']} x "
+          f"{g['energies']} map ({r['repeats']} interleaved repetitions, medians)")
+    print(f"  log-likelihood   {r['hot_path_ms']:9.2f} ms "
+          f"({r['hot_path_ns_per_walker_pixel']:.2f} ns per walker-pixel)")
+    print(f"  floor, plain     {r['floor_plain_ms']:9.2f} ms")
+    print(f"  floor, in place  {r['floor_in_place_ms']:9.2f} ms")
+    print(f"  ratio to the faster floor {r['hot_path_ratio']:.2f} "
+          f"(target <= {r['target_ratio']:g}); to the plain floor "
+          f"{r['hot_path_ratio_plain_floor']:.2f}")
+    print("  where the time goes (cProfile, own time per call):")
+    for row in r["profile_top"]:
+        print(f"    {row['own_ms_per_eval']:8.2f} ms {100 * row['own_share']:5.1f} %  "
+              f"x{row['calls_per_eval']:<6g} {row['function']}")
+
+
+if __name__ == "__main__":
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--quick", action="store_true", help="fewer repetitions")
+    result = run(parser.parse_args().quick)
+    print_report(result)
+    print(json.dumps(result, indent=2))
