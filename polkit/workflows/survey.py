@@ -1463,8 +1463,9 @@ def _client(scheduler, workers: int | None):
         if isinstance(scheduler, Client):
             yield scheduler
             return
+        address = getattr(scheduler, "scheduler_address", scheduler)  # a cluster object
         try:
-            client = Client(str(scheduler), timeout="30s")
+            client = Client(str(address), timeout="30s")
         except (OSError, TimeoutError) as exc:
             raise ConfigError(
                 f"cannot reach the dask scheduler at {scheduler!r} ({exc}). Fix: check the "
@@ -1518,9 +1519,10 @@ def run_survey(
         Worker processes of the embedded cluster (one thread each); default: the cores
         available to this process.  Not allowed together with ``scheduler``.
     scheduler
-        Address of an existing dask scheduler (``"tcp://host:8786"``) or a
-        :class:`dask.distributed.Client`; the workers must import the same polkit and see
-        the map files and ``out`` at the same paths.  Default: an embedded
+        Address of an existing dask scheduler (``"tcp://host:8786"``), a cluster object
+        with a ``scheduler_address`` (e.g. dask-jobqueue's ``SLURMCluster``) or a
+        :class:`dask.distributed.Client`; the workers must import the same polkit, run one
+        thread each, and see the map files and ``out`` at the same paths.  Default: an embedded
         ``LocalCluster(processes=True, threads_per_worker=1)``, closed at the end.
     out
         Output folder (see the module docstring).  A rerun into the same folder skips
