@@ -44,7 +44,8 @@ from typing import Any
 from . import io
 from .errors import ConfigError, DataError
 
-__all__ = ["make_report", "ReportPaths", "PARAMETERS_TAG", "INJECTED_TAG", "PROVENANCE_TAG"]
+__all__ = ["make_report", "parse_params", "ReportPaths", "PARAMETERS_TAG", "INJECTED_TAG",
+           "PROVENANCE_TAG"]
 
 log = logging.getLogger(__name__)
 
@@ -134,6 +135,34 @@ def _literal(name: str, value: Any, path: Path) -> str:
                           f"None, lists, dicts); got {type(value).__name__} {text[:60]}",
                           path=path, key=name)
     return text
+
+
+def parse_params(items: list[str] | tuple[str, ...]) -> dict[str, Any]:
+    """``["name=value", ...]`` from a command line into ``{name: value}``.
+
+    The value is read as a Python literal when it is one (``seed=3`` gives the int 3,
+    ``claims=['E < 1 fJ']`` a list, ``x=None`` None) and kept as text otherwise
+    (``map_file=data/map.nc``).
+
+    Raises
+    ------
+    ConfigError
+        An item without ``=``, a name that is not an identifier, or a name given twice.
+    """
+    out: dict[str, Any] = {}
+    for item in items:
+        name, sep, text = item.partition("=")
+        name = name.strip()
+        if not sep or not name.isidentifier():
+            raise ConfigError(f"expected name=value with a Python name, found {item!r}",
+                              key="param")
+        if name in out:
+            raise ConfigError(f"parameter {name!r} given twice", key=name)
+        try:
+            out[name] = ast.literal_eval(text.strip())
+        except (ValueError, SyntaxError):
+            out[name] = text.strip()
+    return out
 
 
 def _resolve_paths(params: dict[str, Any]) -> dict[str, Any]:

@@ -19,7 +19,7 @@ pytest.importorskip("nbclient")
 pytest.importorskip("nbconvert")
 
 from polkit.errors import ConfigError, DataError  # noqa: E402
-from polkit.report import make_report  # noqa: E402
+from polkit.report import make_report, parse_params  # noqa: E402
 
 CELLS = [
     ("markdown", "# A small report\nAn invented map, fitted on the peak table.", None),
@@ -133,3 +133,14 @@ def test_refusals_name_the_problem(notebook, tmp_path):
         make_report(notebook, params={"map_file": "no_such_map.nc"}, out=tmp_path / "bad")
     assert (tmp_path / "bad" / "small_report.failed.ipynb").is_file()
     assert not (tmp_path / "bad" / "small_report.html").exists()
+
+
+def test_command_line_parameters_are_literals_or_text():
+    got = parse_params(["seed=3", "map_file=data/map.nc", "claims=['E < 1 fJ']", "x=None",
+                        "scale=1.5e-3"])
+    assert got == {"seed": 3, "map_file": "data/map.nc", "claims": ["E < 1 fJ"], "x": None,
+                   "scale": 1.5e-3}
+    with pytest.raises(ConfigError, match="expected name=value"):
+        parse_params(["seed"])
+    with pytest.raises(ConfigError, match="given twice"):
+        parse_params(["seed=1", "seed=2"])

@@ -186,13 +186,13 @@ class DispersionPanel:
         self.axis_window = w.FloatRangeSlider(
             value=[float(win_x[0]), float(win_x[1])], min=float(x_all.min()),
             max=float(x_all.max()), step=dx, description=f"{self.axis} window [{unit}]",
-            readout_format=".2f", continuous_update=False, layout={"width": "440px"},
+            readout_format=".2f", continuous_update=False, layout={"width": "500px"},
             style={"description_width": "190px"})
         self.energy_window = w.FloatRangeSlider(
             value=[float(win_e[0]), float(win_e[1])], min=float(e_all.min()),
             max=float(e_all.max()), step=float(np.min(np.diff(e_all))),
             description="energy window [eV]", readout_format=".4f", continuous_update=False,
-            layout={"width": "440px"}, style={"description_width": "190px"})
+            layout={"width": "500px"}, style={"description_width": "190px"})
         self.axis_window.observe(self._on_window, names="value")
         self.energy_window.observe(self._on_window, names="value")
 
