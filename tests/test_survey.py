@@ -205,7 +205,7 @@ def test_rerun_refits_only_interrupted_positions_identically_on_one_worker(surve
     failed = [p for p, s in zip(ids, first.dataset["status"].values, strict=True)
               if s == "failed"]
     with LocalCluster(n_workers=1, threads_per_worker=1, processes=True,
-                      dashboard_address=None) as cluster:
+                      dashboard_address=":0") as cluster:
         third = run_survey(manifest, out=out2, scheduler=cluster.scheduler_address,
                            progress=False, figures=False, retry_failed=True)
         assert sorted(third.fitted) == sorted(failed)

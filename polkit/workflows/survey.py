@@ -26,8 +26,8 @@ Steps
 Output folder::
 
     survey_state.json          mode, model and root seed of this survey (written first)
-    positions/<id>/            posterior.nc, summary.json, done.json (chains.h5 while a
-                               full-mode fit runs)
+    positions/<id>/            posterior.nc, summary.json, done.json (written last);
+                               started.json and, while a full-mode fit runs, chains.h5
     survey.nc, survey.csv      the combined table (netCDF with units; CSV, bracketed units)
     surface.json               the detuning surface, its gradient and the zero-detuning line
     wafer_maps.png, wafer_detuning.png
@@ -1479,7 +1479,7 @@ def _client(scheduler, workers: int | None):
         return
     n = workers or _default_workers()
     cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
-                           dashboard_address=None, silence_logs=logging.WARNING)
+                           dashboard_address=":0", silence_logs=logging.WARNING)
     try:
         client = Client(cluster)
         try:
