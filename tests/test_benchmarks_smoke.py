@@ -75,13 +75,19 @@ def test_floor_lorentzian_matches_closed_form(bench):
     np.testing.assert_allclose(plain[1, 0, 130], 1.0 / 0.2, rtol=1e-12)  # E = 0.3
     np.testing.assert_allclose(plain[1, 0, 150], 1.0 / 0.4, rtol=1e-12)  # E = 0.5
     np.testing.assert_allclose(in_place, plain, rtol=1e-14)
+    out = np.empty_like(plain)
+    assert hp.floor_in_place(energy, centre, half, out=out) is out
+    np.testing.assert_allclose(out, plain, rtol=1e-14)
 
 
 def test_hot_path_benchmark_runs(tiny_results):
     r = tiny_results["hot_path"]
     assert r["log_likelihood_finite"]
-    for key in ("hot_path_ms", "floor_ms", "hot_path_ratio"):
+    for key in ("hot_path_ms", "hot_path_ratio"):
         assert math.isfinite(r[key]) and r[key] > 0, key
+    assert set(r["floor_ms"]) == {"plain", "in_place", "preallocated", "preallocated_float32"}
+    assert r["floor_used"] in r["hot_path_ratio_by_floor"]
+    assert r["hot_path_ratio"] == max(r["hot_path_ratio_by_floor"].values())
     assert r["grid"] == {"walkers": 4, "angles": 6, "energies": 40}
     assert any("spectral.py" in row["function"] for row in r["profile_top"])
 

@@ -96,8 +96,12 @@ def figures(results: dict) -> dict:
     r = results.get("hot_path")
     if r and "error" not in r:
         out.update(hot_path_ratio=round(r["hot_path_ratio"], 3),
-                   hot_path_ratio_plain_floor=round(r["hot_path_ratio_plain_floor"], 3),
-                   hot_path_ms=round(r["hot_path_ms"], 3), floor_ms=round(r["floor_ms"], 3),
+                   hot_path_ratio_of_minima=round(r["hot_path_ratio_of_minima"], 3),
+                   hot_path_floor_used=r["floor_used"],
+                   hot_path_ratio_by_floor={k: round(v, 3)
+                                            for k, v in r["hot_path_ratio_by_floor"].items()},
+                   hot_path_ms=round(r["hot_path_ms"], 3),
+                   floor_ms={k: round(v, 3) for k, v in r["floor_ms"].items()},
                    hot_path_grid=r["grid"])
     r = results.get("peer")
     if r and "error" not in r:
