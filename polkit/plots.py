@@ -10,24 +10,13 @@ from pathlib import Path
 
 import numpy as np
 
-from . import io
+from ._mpl import corner_data, posterior_matrix, trace_figure, write_figures
+from ._mpl import pyplot as _plt
 
-__all__ = ["dispersion_figures", "fit_figure", "corner_figure", "trace_figure", "residual_figure"]
+__all__ = ["dispersion_figures", "fit_figure", "corner_figure", "trace_figure", "residual_figure",
+           "normalised_residuals"]
 
 _BAND = (16.0, 84.0)
-
-
-def _plt():
-    import matplotlib
-
-    if matplotlib.get_backend().lower() not in ("agg", "module://matplotlib_inline.backend_inline"):
-        try:
-            matplotlib.use("Agg", force=False)
-        except Exception:  # noqa: BLE001 - a GUI backend already in use is fine
-            pass
-    import matplotlib.pyplot as plt
-
-    return plt
 
 
 def problem_from_result(result):
@@ -50,20 +39,11 @@ def problem_from_result(result):
     ), da
 
 
-def _theta(result, max_draws: int | None = None, seed: int = 0) -> np.ndarray:
-    names = result.space.names
-    theta = np.stack([result.draws(n) for n in names], axis=-1)
-    if max_draws is not None and theta.shape[0] > max_draws:
-        idx = np.random.default_rng(seed).choice(theta.shape[0], max_draws, replace=False)
-        theta = theta[np.sort(idx)]
-    return theta
-
-
 def fit_figure(result, *, ax=None, log_scale: bool = True, n_draws: int = 300):
     """The map with the fitted branches (median and 68 % band) and the bare modes."""
     plt = _plt()
     problem, da = problem_from_result(result)
-    theta = _theta(result, n_draws)
+    theta = posterior_matrix(result, n_draws)
     grid = np.linspace(problem.in_plane.min(), problem.in_plane.max(), 200)
     _, branches, cav, exs = problem.branch_curves(theta, grid)
     if ax is None:
@@ -107,19 +87,25 @@ def fit_figure(result, *, ax=None, log_scale: bool = True, n_draws: int = 300):
     return fig
 
 
+def normalised_residuals(problem, theta: np.ndarray) -> np.ndarray:
+    """``(data - model) / (noise_scale sigma)`` per pixel of a dispersion problem at ``theta``.
+
+    ``theta`` is one parameter vector; the model is the best linear fit of the map at it
+    (amplitudes and backgrounds per angle), ``sigma`` from the problem's noise model.
+    Masked pixels (inverse variance 0) give 0.
+    """
+    sol = problem.model_map(theta)
+    model = np.asarray(sol.model).reshape(problem.y.shape)
+    names = problem.space.names
+    s = theta[names.index("noise_scale")] if "noise_scale" in names else 1.0
+    return (problem.y - model) * np.sqrt(problem.inv_var) / s
+
+
 def residual_figure(result):
     """Normalised residuals (data - model) / sigma of the posterior-median parameters."""
     plt = _plt()
     problem, da = problem_from_result(result)
-    med = np.median(_theta(result), axis=0)
-    sol = problem.model_map(med)
-    model = np.asarray(sol.model).reshape(problem.y.shape)
-    s = (
-        med[problem.space.names.index("noise_scale")]
-        if "noise_scale" in problem.space.names
-        else 1.0
-    )
-    resid = (problem.y - model) * np.sqrt(problem.inv_var) / s
+    resid = normalised_residuals(problem, np.median(posterior_matrix(result), axis=0))
     fig, ax = plt.subplots(figsize=(6.4, 4.8))
     mesh = ax.pcolormesh(
         problem.in_plane, problem.energy, resid.T, shading="nearest", cmap="RdBu_r", vmin=-4, vmax=4
@@ -139,9 +125,7 @@ def corner_figure(result, names: list[str] | None = None):
     names = names or [n for n in result.space.names if n != "noise_scale"] + (
         ["detuning"] if "detuning" in result.posterior else []
     )
-    data = np.stack([result.draws(n) for n in names], axis=-1)
-    units = [result.posterior[n].attrs.get("units", "") for n in names]
-    labels = [f"{n}\n[{u}]" if u and u != "1" else n for n, u in zip(names, units, strict=True)]
+    data, labels = corner_data(result, names)
     fig = corner.corner(
         data,
         labels=labels,
@@ -152,34 +136,9 @@ def corner_figure(result, names: list[str] | None = None):
     return fig
 
 
-def trace_figure(result):
-    """Traces of the stored draws per walker (thinned, after burn-in)."""
-    plt = _plt()
-    names = result.space.names
-    fig, axes = plt.subplots(len(names), 1, figsize=(7, 1.3 * len(names)), sharex=True)
-    axes = np.atleast_1d(axes)
-    for ax, n in zip(axes, names, strict=True):
-        v = result.posterior[n].values
-        ax.plot(v.T, lw=0.4, alpha=0.5)
-        ax.set_ylabel(n, fontsize=7)
-    axes[-1].set_xlabel("stored draw (after burn-in and thinning)")
-    return fig
-
-
 def dispersion_figures(result, folder: str | os.PathLike) -> list[Path]:
     """Write fit.png, residuals.png, corner.png and traces.png into ``folder``."""
-    plt = _plt()
-    folder = Path(folder)
-    written = []
-    for name, make in (
-        ("fit.png", fit_figure),
-        ("residuals.png", residual_figure),
-        ("corner.png", corner_figure),
-        ("traces.png", trace_figure),
-    ):
-        fig = make(result)
-        try:
-            written.append(io.save_figure(folder / name, fig))
-        finally:
-            plt.close(fig)
-    return written
+    return write_figures(result, folder, (("fit.png", fit_figure),
+                                          ("residuals.png", residual_figure),
+                                          ("corner.png", corner_figure),
+                                          ("traces.png", trace_figure)))

@@ -15,34 +15,14 @@ from pathlib import Path
 
 import numpy as np
 
-from . import io
+from ._mpl import corner_data, posterior_matrix, trace_figure, write_figures
+from ._mpl import pyplot as _plt
 
 __all__ = ["power_figures", "fit_figure", "residual_figure", "corner_figure", "trace_figure",
-           "predictive_draws"]
+           "predictive_draws", "SWEEP_COLOURS", "power_grid", "residual_points"]
 
-_COLOURS = {"up": "tab:blue", "down": "tab:red", "none": "tab:blue"}
-
-
-def _plt():
-    import matplotlib
-
-    if matplotlib.get_backend().lower() not in ("agg", "module://matplotlib_inline.backend_inline"):
-        try:
-            matplotlib.use("Agg", force=False)
-        except Exception:  # noqa: BLE001 - a GUI backend already in use is fine
-            pass
-    import matplotlib.pyplot as plt
-
-    return plt
-
-
-def _theta(result, max_draws: int = 300, seed: int = 0) -> np.ndarray:
-    names = result.space.names
-    theta = np.stack([result.draws(n) for n in names], axis=-1)
-    if theta.shape[0] > max_draws:
-        idx = np.random.default_rng(seed).choice(theta.shape[0], max_draws, replace=False)
-        theta = theta[np.sort(idx)]
-    return theta
+#: colour of each sweep direction (``none``: a series without sweep labels)
+SWEEP_COLOURS = {"up": "tab:blue", "down": "tab:red", "none": "tab:blue"}
 
 
 def predictive_draws(problem, theta: np.ndarray, rng: np.random.Generator) -> dict:
@@ -68,8 +48,13 @@ def _to_display(problem, name: str, values: np.ndarray) -> np.ndarray:
     return np.exp(values) if ch.log_space else values
 
 
-def _grid(problem, n: int = 160):
-    """Fine power grid following each sweep run, and its runs."""
+def power_grid(problem, n: int = 160) -> tuple[np.ndarray, list[tuple[int, int, str]]]:
+    """Fine power grid following each sweep run, and its runs ``(start, stop, label)``.
+
+    Reservoir model: ``n`` log-spaced powers over the positive measured range, one run.
+    Coherent model: ``n`` powers per sweep run from its first to its last power, so the
+    curve of each run follows that run's history.
+    """
     if problem.model == "reservoir":
         p = problem.power[problem.power > 0]
         grid = np.geomspace(p.min(), p.max(), n)
@@ -106,8 +91,8 @@ def fit_figure(result, *, n_draws: int = 300):
     """Data with the median curve, 68 % credible band and 95 % posterior-predictive band."""
     plt = _plt()
     problem = result.problem()
-    theta = _theta(result, n_draws)
-    grid, segs = _grid(problem)
+    theta = posterior_matrix(result, n_draws)
+    grid, segs = power_grid(problem)
     curves = _curves(problem, theta, grid, segs)
     rep = predictive_draws(problem, theta, np.random.default_rng(1))
     names = list(problem.channels)
@@ -116,7 +101,7 @@ def fit_figure(result, *, n_draws: int = 300):
         y, err = _observed(problem, name)
         pred = _to_display(problem, name, rep[name])
         for start, stop, label in problem.segments:
-            colour = _COLOURS.get(label, "tab:blue")
+            colour = SWEEP_COLOURS.get(label, "tab:blue")
             sl = slice(start, stop)
             p = problem.power[sl]
             used = problem.channels[name].used[sl]
@@ -127,7 +112,7 @@ def fit_figure(result, *, n_draws: int = 300):
             ax.errorbar(p, y[sl], yerr=err[sl], fmt="o", ms=3, color=colour, lw=0.8,
                         label=f"data ({label})" if label != "none" else "data")
         for start, stop, label in segs:
-            colour = _COLOURS.get(label, "tab:blue")
+            colour = SWEEP_COLOURS.get(label, "tab:blue")
             sl = slice(start, stop)
             lo, med, hi = np.percentile(curves[name][:, sl], [16, 50, 84], axis=0)
             ax.fill_between(grid[sl], lo, hi, color=colour, alpha=0.3, lw=0)
@@ -147,6 +132,22 @@ def fit_figure(result, *, n_draws: int = 300):
     return fig
 
 
+def residual_points(ax, problem, r: np.ndarray, *, labelled: bool = False) -> float:
+    """Draw normalised residuals ``r`` against power, one colour per sweep run.
+
+    Adds the zero line and the +-2 sigma lines; ``labelled`` names the sweep runs for a
+    legend.  Returns the rms of the finite residuals (NaN if none).
+    """
+    for start, stop, label in problem.segments:
+        sl = slice(start, stop)
+        ax.plot(problem.power[sl], r[sl], "o", ms=3, color=SWEEP_COLOURS.get(label, "tab:blue"),
+                label=label if labelled and label != "none" else None)
+    ax.axhline(0, color="0.3", lw=0.8)
+    for s in (-2, 2):
+        ax.axhline(s, color="0.6", lw=0.6, ls="--")
+    return float(np.sqrt(np.nanmean(r**2))) if np.isfinite(r).any() else float("nan")
+
+
 def residual_figure(result, *, n_draws: int = 300):
     """Normalised residuals ``(data - model) / (noise x error)`` of every fitted observable.
 
@@ -155,7 +156,7 @@ def residual_figure(result, *, n_draws: int = 300):
     """
     plt = _plt()
     problem = result.problem()
-    theta = _theta(result, n_draws)
+    theta = posterior_matrix(result, n_draws)
     model = problem.fit_space_model(theta)
     names = list(problem.channels)
     fig, axes = plt.subplots(len(names), 1, figsize=(6.4, 2.4 * len(names)), squeeze=False,
@@ -164,14 +165,7 @@ def residual_figure(result, *, n_draws: int = 300):
         ch = problem.channels[name]
         k = float(np.median(result.draws(ch.noise_param)))
         r = ch.residuals(np.median(model[name], axis=0), k)
-        for start, stop, label in problem.segments:
-            sl = slice(start, stop)
-            ax.plot(problem.power[sl], r[sl], "o", ms=3, color=_COLOURS.get(label, "tab:blue"),
-                    label=label if label != "none" else None)
-        ax.axhline(0, color="0.3", lw=0.8)
-        for s in (-2, 2):
-            ax.axhline(s, color="0.6", lw=0.6, ls="--")
-        rms = float(np.sqrt(np.nanmean(r**2))) if np.isfinite(r).any() else float("nan")
+        rms = residual_points(ax, problem, r, labelled=True)
         ax.set_ylabel(f"{name}\n[sigma]", fontsize=8)
         ax.set_title(f"{name}: rms {rms:.2f} sigma (noise factor {k:.3g})", fontsize=8)
         if problem.model == "reservoir":
@@ -190,36 +184,14 @@ def corner_figure(result):
     _plt()
     noise = {c.noise_param for c in result.problem().channels.values()}
     names = [n for n in result.space.names if n not in noise]
-    data = np.stack([result.draws(n) for n in names], axis=-1)
-    units = [result.posterior[n].attrs.get("units", "") for n in names]
-    labels = [f"{n}\n[{u}]" if u and u != "1" else n for n, u in zip(names, units, strict=True)]
+    data, labels = corner_data(result, names)
     return corner.corner(data, labels=labels, quantiles=[0.16, 0.5, 0.84], show_titles=False,
                          label_kwargs={"fontsize": 8})
 
 
-def trace_figure(result):
-    """Traces of the stored draws per walker (after burn-in and thinning)."""
-    plt = _plt()
-    names = result.space.names
-    fig, axes = plt.subplots(len(names), 1, figsize=(7, 1.3 * len(names)), sharex=True,
-                             squeeze=False)
-    for ax, n in zip(axes[:, 0], names, strict=True):
-        ax.plot(result.posterior[n].values.T, lw=0.4, alpha=0.5)
-        ax.set_ylabel(n, fontsize=7)
-    axes[-1, 0].set_xlabel("stored draw (after burn-in and thinning)")
-    return fig
-
-
 def power_figures(result, folder: str | os.PathLike) -> list[Path]:
     """Write ``fit.png``, ``residuals.png``, ``corner.png`` and ``traces.png`` into ``folder``."""
-    plt = _plt()
-    folder = Path(folder)
-    written = []
-    for name, make in (("fit.png", fit_figure), ("residuals.png", residual_figure),
-                       ("corner.png", corner_figure), ("traces.png", trace_figure)):
-        fig = make(result)
-        try:
-            written.append(io.save_figure(folder / name, fig))
-        finally:
-            plt.close(fig)
-    return written
+    return write_figures(result, folder, (("fit.png", fit_figure),
+                                          ("residuals.png", residual_figure),
+                                          ("corner.png", corner_figure),
+                                          ("traces.png", trace_figure)))

@@ -17,6 +17,7 @@ from typing import Any
 import numpy as np
 
 from ..errors import PolkitError
+from ..workflows import _steps
 
 log = logging.getLogger(__name__)
 
@@ -31,15 +32,7 @@ _STYLE = {"description_width": "190px"}
 def clip_into(param, value: float) -> float:
     """``value`` if strictly inside the prior support of ``param``, else a point just inside
     it (NaN -> the support's centre; a log-uniform support is left by a relative margin)."""
-    lo, hi = param.prior.bounds
-    if not np.isfinite(value):
-        value = 0.5 * (lo + hi) if np.isfinite(lo) and np.isfinite(hi) else 1.0
-    if lo < value < hi:
-        return float(value)
-    if param.prior.kind == "loguniform":
-        return float(np.clip(value, lo * (1 + 1e-6), hi * (1 - 1e-6)))
-    eps = 1e-6 * (hi - lo) if np.isfinite(hi - lo) else 1e-6
-    return float(np.clip(value, lo + eps, hi - eps))
+    return _steps.clip_into(param, value, keep_inside=True, log_margin=True)
 
 
 def _slider_range(param) -> tuple[float, float]:
@@ -208,11 +201,10 @@ def corner_png(result, names: list[str], *, dpi: int = 70) -> bytes:
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
 
+    from .._mpl import corner_data
     from ._canvas import figure_png
 
-    data = np.stack([result.draws(n) for n in names], axis=-1)
-    units = [result.posterior[n].attrs.get("units", "") for n in names]
-    labels = [f"{n}\n[{u}]" if u and u != "1" else n for n, u in zip(names, units, strict=True)]
+    data, labels = corner_data(result, names)
     k = len(names)
     fig = Figure(figsize=(1.6 * k + 1.0, 1.6 * k + 1.0), dpi=dpi)
     FigureCanvasAgg(fig)

@@ -34,25 +34,19 @@ import html
 import logging
 import os
 import time
-from pathlib import Path
 from typing import Any
 
 import numpy as np
 import xarray as xr
 
 from ..errors import DataError
-from ..inference import LogPosterior, apply_priors, find_map, run_ensemble
+from ..plots import normalised_residuals
 from ..workflows import dispersion as wf
-from ..workflows.dispersion_model import (
-    MODELS,
-    DispersionProblem,
-    default_space,
-    guess_from_peaks,
-    in_plane_axis,
-    noise_inverse_variance,
-)
+from ..workflows import dispersion_stages as st
+from ..workflows.dispersion_model import DispersionProblem
 from ._canvas import LiveFigure
-from ._common import SamplingJob, clip_into, corner_png, parameter_slider, status_html
+from ._common import clip_into, parameter_slider, status_html
+from ._panel import FitPanel, offscreen_figure
 
 __all__ = ["dispersion_panel", "DispersionPanel"]
 
@@ -79,7 +73,7 @@ def _map_display(z: np.ndarray, log_scale: bool):
     return z, Normalize(vmin=float(lo), vmax=float(hi)), "signal"
 
 
-class DispersionPanel:
+class DispersionPanel(FitPanel):
     """The widgets and state of one interactive dispersion fit (built by :func:`dispersion_panel`).
 
     Attributes
@@ -116,58 +110,43 @@ class DispersionPanel:
         The last :class:`~polkit.widgets._common.SamplingJob`.
     """
 
+    default_steps = wf.DEFAULT_STEPS
+    _log_post_digits = 1
+    _status_warnings = True
+
     def __init__(self, da: xr.DataArray, *, sha: str, source_name: str, model: str,
                  kind_model: str, priors, seed, max_steps: int, min_steps: int | None,
                  n_walkers: int | None, out, profile: str, log_scale: bool,
                  angle_window, energy_window):
         import ipywidgets as w
 
-        from .. import data
-        from ..extract import peak_table
-
+        self.source = st.MapInput(da, sha, source_name, model, kind_model)
         self.data = da
-        self.axis = in_plane_axis(da)
+        self.axis = self.source.axis
         self.sha = sha
         self.source_name = source_name
         self.model = model
-        self.n_excitons = MODELS[model]
+        self.n_excitons = self.source.n_excitons
         self.kind = kind_model
-        self.seed = seed
-        self.min_steps = min_steps
-        self.n_walkers = n_walkers
         self.profile = profile
         self.priors = priors
+        self._init_state(seed=seed, min_steps=min_steps, n_walkers=n_walkers)
 
         x_all = da[self.axis].values.astype(float)
         e_all = da["energy"].values.astype(float)
         win_x = tuple(angle_window) if angle_window is not None else (x_all.min(), x_all.max())
         win_e = tuple(energy_window) if energy_window is not None else (e_all.min(), e_all.max())
-        first = data.crop(da, **{self.axis: win_x, "energy": win_e}).transpose(self.axis, "energy")
+        first = self.source.cropped(win_x, win_e)
         # the peak table warns (DataWarning) when only one branch is visible
-        self.table = peak_table(first, n_peaks=self.n_excitons + 1, profile=profile)
+        self.table, self.guess, space = st.peak_start(
+            first.data, n_excitons=self.n_excitons, kind=kind_model, priors=priors,
+            profile=profile)
         self._tables = {(tuple(map(float, win_x)), tuple(map(float, win_e))): self.table}
-        self.guess = guess_from_peaks(self.table, n_excitons=self.n_excitons)
-        space = default_space(first["energy"].values, self.guess, n_excitons=self.n_excitons,
-                              kind=kind_model)
-        if priors is not None:
-            space = apply_priors(space, priors,
-                                 path=priors if not isinstance(priors, dict) else None)
         self.space = space
-        self._theta = np.array([
-            clip_into(p, self.guess.get(p.name, wf._default_start(p.name, self.guess)))
-            for p in space
-        ])
+        self._theta = st.start_vector(space, self.guess, keep_inside=True, log_margin=True)
         self._problem: DispersionProblem | None = None
         self._problem_window: tuple | None = None
-        self._noise_note = ""
-        self.map_result = None
-        self._refined_theta: np.ndarray | None = None
-        self.result = None
-        self.job: SamplingJob | None = None
-        self._hold = False
-        self.timings: list[float] = []
-        self.readout_values: dict[str, float] = {}
-        self.show_corner = True
+        self._problem_source: st.MapInput | None = None
 
         # -- controls -----------------------------------------------------------------------
         self.sliders: dict[str, Any] = {}
@@ -196,31 +175,11 @@ class DispersionPanel:
         self.axis_window.observe(self._on_window, names="value")
         self.energy_window.observe(self._on_window, names="value")
 
-        self.refine_button = w.Button(description="Refine (MAP)", icon="crosshairs",
-                                      tooltip="maximum a posteriori from the slider values")
-        self.sample_button = w.Button(description="Sample (MCMC)", icon="play",
-                                      button_style="primary",
-                                      tooltip="emcee from the refined point, in the background")
-        self.stop_button = w.Button(description="Stop", icon="stop", button_style="warning",
-                                    disabled=True, tooltip="end sampling after the current step")
-        self.save_button = w.Button(description="Save", icon="save", disabled=True,
-                                    tooltip="posterior.nc, summary.json and figures")
-        self.refine_button.on_click(lambda _b: self._guarded(self.refine))
-        self.sample_button.on_click(lambda _b: self._guarded(self.sample))
-        self.stop_button.on_click(lambda _b: self.stop())
-        self.save_button.on_click(lambda _b: self._guarded(self.save))
-        self.max_steps = w.BoundedIntText(value=int(max_steps), min=10, max=10_000_000,
-                                          description="max steps", layout={"width": "180px"})
-        self.out_folder = w.Text(value=str(out) if out is not None else "polkit-out/dispersion",
-                                 description="save to", layout={"width": "340px"})
-        self.progress = w.IntProgress(value=0, min=0, max=int(max_steps), description="MCMC",
-                                      bar_style="info", layout={"width": "320px"})
-        self.status = w.HTML(status_html("ready: move the sliders until the branches follow "
-                                         "the map, then Refine"))
-        self.readout = w.HTML()
-        self.summary = w.HTML()
-        self.residual_image = w.Image(format="png")
-        self.corner_image = w.Image(format="png")
+        self._init_actions(
+            max_steps=max_steps,
+            out_folder=str(out) if out is not None else "polkit-out/dispersion",
+            ready="ready: move the sliders until the branches follow the map, then Refine",
+            tooltips=True)
 
         # -- figure -------------------------------------------------------------------------
         self.live = LiveFigure(figsize=(6.2, 4.6))
@@ -254,55 +213,11 @@ class DispersionPanel:
         self.widget = w.VBox([title, w.HBox([self.map_image, controls]), buttons, self.status,
                               saving, results])
 
-    # -- display ----------------------------------------------------------------------------
-    def _repr_mimebundle_(self, **kwargs):
-        return self.widget._repr_mimebundle_(**kwargs)
-
-    def snapshot(self):
-        """A static copy of the map with the current overlay (``IPython.display.Image``).
-
-        Exported HTML cannot run widgets offline: show this beside the panel.
-        """
-        from IPython.display import Image
-
-        return Image(data=self.live.png(), format="png")
-
     # -- values -----------------------------------------------------------------------------
     @property
     def names(self) -> list[str]:
         """Names of the sampled parameters, in order."""
         return self.space.names
-
-    def theta(self) -> np.ndarray:
-        """The parameter vector at the sliders (noise scale from the last refinement)."""
-        t = self._theta.copy()
-        for i, name in enumerate(self.space.names):
-            if name in self.sliders:
-                t[i] = float(self.sliders[name].value)
-        return t
-
-    def values(self) -> dict[str, float]:
-        """``{name: value}`` at the sliders, in the parameters' units."""
-        return dict(zip(self.space.names, self.theta().tolist(), strict=True))
-
-    def set_values(self, values: dict[str, float]) -> None:
-        """Move several sliders at once, with a single redraw."""
-        unknown = sorted(set(values) - set(self.space.names))
-        if unknown:
-            raise DataError(f"unknown parameters {unknown}; expected some of {self.space.names}",
-                            field="values")
-        self._hold = True
-        try:
-            for name, v in values.items():
-                i = self.space.names.index(name)
-                self._theta[i] = float(v)
-                if name in self.sliders:
-                    s = self.sliders[name]
-                    s.value = float(np.clip(v, 10**s.min if _is_log(s) else s.min,
-                                            10**s.max if _is_log(s) else s.max))
-        finally:
-            self._hold = False
-        self._update_overlay()
 
     # -- problem for the current window -----------------------------------------------------
     def window(self) -> tuple[tuple[float, float], tuple[float, float]]:
@@ -311,11 +226,7 @@ class DispersionPanel:
 
     def cropped(self) -> xr.DataArray:
         """The map inside the current window."""
-        from .. import data
-
-        wx, we = self.window()
-        return data.crop(self.data, **{self.axis: wx, "energy": we}).transpose(self.axis,
-                                                                                "energy")
+        return self.source.cropped(*self.window()).data
 
     def peak_table(self) -> xr.Dataset:
         """The per-angle peak table of the current window (computed once per window)."""
@@ -331,15 +242,9 @@ class DispersionPanel:
         """The :class:`DispersionProblem` of the current window (rebuilt when it changes)."""
         win = self.window()
         if self._problem is None or self._problem_window != win:
-            da = self.cropped()
-            inv_var, note = noise_inverse_variance(da)
-            self._problem = DispersionProblem(
-                axis=self.axis, in_plane=da[self.axis].values.astype(float),
-                energy=da["energy"].values.astype(float), y=np.asarray(da.values, dtype=float),
-                inv_var=inv_var, space=self.space, n_excitons=self.n_excitons, kind=self.kind,
-                table=None, noise_note=note)
+            self._problem_source = self.source.cropped(*win)
+            self._problem = st.map_problem(self._problem_source, self.space)
             self._problem_window = win
-            self._problem_da = da
         return self._problem
 
     # -- drawing ----------------------------------------------------------------------------
@@ -376,10 +281,6 @@ class DispersionPanel:
             "excitons": np.array([float(ln.get_ydata()[0]) for ln in self._exciton_lines]),
         }
 
-    def _on_slider(self, _change) -> None:
-        if not self._hold:
-            self._update_overlay()
-
     def _on_window(self, _change) -> None:
         (x0, x1), (e0, e1) = self.window()
         ax = self.live.axes[0, 0]
@@ -387,6 +288,9 @@ class DispersionPanel:
         ax.set_ylim(e0, e1)
         self.map_result = None  # a new window is a new problem: refine again
         self.live.redraw()
+        self._update_overlay()
+
+    def _redraw(self) -> None:
         self._update_overlay()
 
     def _update_overlay(self) -> None:
@@ -435,75 +339,29 @@ class DispersionPanel:
         return (f"<table class='polkit-readout'>{body}</table><i>{verdict}</i>")
 
     # -- actions ----------------------------------------------------------------------------
-    def _guarded(self, action) -> None:
-        """Run a button's action; show a polkit error in the status line instead of raising."""
-        from ..errors import PolkitError
-
-        try:
-            action()
-        except PolkitError as exc:
-            self.status.value = status_html(f"error: {exc}", level="error")
-            log.warning("%s", exc)
-
-    def refine(self):
-        """Maximum a posteriori point from the slider values; sliders moved there.
-
-        Steps as in :func:`~polkit.workflows.dispersion.fit_dispersion`: the peak-table
-        mode (started at the sliders), the whole-window mode started there (and, kept if
-        better, started at the sliders themselves), the noise model (variance = a model + b)
-        calibrated on its residuals, and the mode again under that noise model.
-
-        Returns
-        -------
-        MapResult
-        """
-        self.status.value = status_html("refining: maximum a posteriori...", level="busy")
-        self.refine_button.disabled = True
-        try:
-            problem = self.problem()
-            space = self.space
-            x0 = np.array([clip_into(p, v) for p, v in zip(space, self.theta(), strict=True)])
-            # 1. the peak-table posterior is smooth: its mode from the sliders is a safe start
-            table_problem = DispersionProblem(
-                axis=self.axis, in_plane=problem.in_plane, energy=problem.energy, y=problem.y,
-                inv_var=problem.inv_var, space=space, n_excitons=self.n_excitons,
-                kind=self.kind, table=self.peak_table())
-            table_map = find_map(LogPosterior(table_problem.table_log_likelihood, space), space,
-                                 x0)
-            # 2. whole-map mode from the table mode and from the sliders; keep the better
-            post = LogPosterior(problem.log_likelihood, space)
-            candidates = [find_map(post, space, table_map.x), find_map(post, space, x0)]
-            start = max(candidates, key=lambda c: c.log_post)
-            # 3. noise model at that mode (as the workflow does), then the mode again
-            inv_var, self._noise_note = _noise_at(problem, self._problem_da, start.x)
-            problem.set_noise(inv_var, self._noise_note)
-            start = find_map(LogPosterior(problem.log_likelihood, space), space, start.x)
-        finally:
-            self.refine_button.disabled = False
-        self.map_result = start
-        self.set_values(dict(zip(self.space.names, start.x.tolist(), strict=True)))
-        self._refined_theta = self.theta()
-        self.residual_image.value = self._residual_png(start.x, "MAP")
-        self.status.value = status_html(
-            f"refined: log posterior {start.log_post:.1f}; "
-            f"{'optimiser converged' if start.success else 'optimiser: ' + start.message}",
-            level="ok" if start.success else "warn")
-        return start
+    def _find_mode(self):
+        """The mode from the slider values, in the steps of
+        :func:`~polkit.workflows.dispersion.fit_dispersion`: the peak-table mode (started at
+        the sliders), the whole-window mode started there (and, kept if better, started at
+        the sliders themselves), the noise model (variance = a model + b) calibrated on its
+        residuals, and the mode again under that noise model."""
+        problem = self.problem()
+        x0 = np.array([clip_into(p, v) for p, v in zip(self.space, self.theta(), strict=True)])
+        # 1. the peak-table posterior is smooth: its mode from the sliders is a safe start
+        table_map = st.table_mode(problem, x0, table=self.peak_table())
+        # 2. whole-map mode from the table mode and from the sliders; keep the better
+        candidates = [st.refine_mode(problem, table_map.x), st.refine_mode(problem, x0)]
+        start = max(candidates, key=lambda c: c.log_post)
+        # 3. noise model at that mode (as the workflow does), then the mode again
+        st.calibrate_problem_noise(problem, start.x, self._problem_source.data.attrs)
+        return st.refine_mode(problem, start.x)
 
     def _residual_png(self, theta: np.ndarray, label: str) -> bytes:
-        from matplotlib.backends.backend_agg import FigureCanvasAgg
-        from matplotlib.figure import Figure
-
         from ._canvas import figure_png
 
         problem = self.problem()
-        sol = problem.model_map(theta)
-        model = np.asarray(sol.model).reshape(problem.y.shape)
-        names = self.space.names
-        s = theta[names.index("noise_scale")] if "noise_scale" in names else 1.0
-        resid = (problem.y - model) * np.sqrt(problem.inv_var) / s
-        fig = Figure(figsize=(5.0, 3.4), dpi=80, layout="constrained")
-        FigureCanvasAgg(fig)
+        resid = normalised_residuals(problem, theta)
+        fig = offscreen_figure((5.0, 3.4))
         ax = fig.subplots()
         mesh = ax.pcolormesh(problem.in_plane, problem.energy, resid.T, shading="nearest",
                              cmap="RdBu_r", vmin=-4, vmax=4, rasterized=True)
@@ -515,179 +373,31 @@ class DispersionPanel:
         ax.set_ylabel("energy [eV]")
         return figure_png(fig)
 
-    def _needs_refine(self) -> bool:
-        return (self.map_result is None or self._refined_theta is None
-                or not np.allclose(self._refined_theta, self.theta(), rtol=0, atol=0))
+    def _current_problem(self) -> DispersionProblem:
+        return self.problem()
 
-    def sample(self, *, background: bool = True) -> SamplingJob:
-        """Run the MCMC from the refined point (refining first if the sliders moved).
-
-        Parameters
-        ----------
-        background
-            Run in a background thread (the panel stays responsive; *Stop* ends it).
-            ``False`` runs in the calling thread and returns when done (notebooks executed
-            top to bottom, tests).
-
-        Returns
-        -------
-        SamplingJob
-            ``job.wait()`` returns the result (also kept in :attr:`result`).
-        """
-        if self.job is not None and self.job.running:
-            self.status.value = status_html("already sampling; Stop first", level="warn")
-            return self.job
-        if self._needs_refine():
-            self.refine()
-        problem = self.problem()
-        start = self.map_result
-        steps = dict(wf.DEFAULT_STEPS)
-        steps["max_steps"] = int(self.max_steps.value)
-        steps["min_steps"] = min(steps["min_steps"], steps["max_steps"])
-        if self.min_steps is not None:
-            steps["min_steps"] = int(self.min_steps)
-        steps["check_every"] = min(steps["check_every"], steps["max_steps"])
-        walkers = self.n_walkers or max(32, 4 * len(self.space))
-        da = self._problem_da
-        noise_note = self._noise_note
-        space = self.space
+    def _sampling_run(self, problem, start, walkers, steps):
+        source, noise_note = self._problem_source, problem.noise_note
+        provenance = {
+            "started_from": "interactive panel: MAP refined from the slider values",
+            "window": {self.axis: [float(problem.in_plane.min()), float(problem.in_plane.max())],
+                       "energy": [float(problem.energy.min()), float(problem.energy.max())]}}
 
         def run(log_likelihood, stop_event):
-            output = run_ensemble(log_likelihood, space, start, n_walkers=walkers,
-                                  seed=self.seed, progress=False, stop_event=stop_event,
-                                  **steps)
-            return _build_result(problem, output, da, model=self.model, sha=self.sha,
-                                 source_name=self.source_name, noise_note=noise_note,
-                                 profile=self.profile)
+            output = wf.sample_problem(problem, start, steps=steps, log_likelihood=log_likelihood,
+                                       n_walkers=walkers, seed=self.seed, progress=False,
+                                       stop_event=stop_event)
+            return wf.build_dispersion_result(problem, output, source, noise_note=noise_note,
+                                              profile=self.profile, provenance=provenance)
 
-        self.progress.max = steps["max_steps"]
-        self.progress.value = 0
-        self.progress.bar_style = "info"
-        self.sample_button.disabled = True
-        self.refine_button.disabled = True
-        self.stop_button.disabled = not background
-        self.status.value = status_html(
-            f"sampling: {walkers} walkers, up to {steps['max_steps']} steps...", level="busy")
-        self.job = SamplingJob(run, problem.log_likelihood, max_steps=steps["max_steps"],
-                               on_progress=self._on_progress, on_done=self._on_done)
-        return self.job.start(background=background)
+        return run
 
-    def _on_progress(self, steps: int) -> None:
-        self.progress.value = steps
+    def _corner_names(self, result) -> list[str]:
+        return [n for n in self.space.names if n != "noise_scale"] + ["detuning"]
 
-    def _on_done(self, job: SamplingJob) -> None:
-        self.sample_button.disabled = False
-        self.refine_button.disabled = False
-        self.stop_button.disabled = True
-        if job.error is not None:
-            self.progress.bar_style = "danger"
-            self.status.value = status_html(f"sampling failed: {job.error}", level="error")
-            return
-        result = job.result
-        self.result = result
-        self.progress.value = self.progress.max if result.converged else self.progress.value
-        self.progress.bar_style = "success" if result.converged else "warning"
-        self.summary.value = result._repr_html_()
-        names = [n for n in self.space.names if n != "noise_scale"] + ["detuning"]
-        if self.show_corner:
-            self.corner_image.value = corner_png(result, names)
+    def _posterior_residual_png(self, result) -> bytes:
         med = np.array([np.median(result.draws(n)) for n in self.space.names])
-        self.residual_image.value = self._residual_png(med, "posterior median")
-        self.save_button.disabled = False
-        warned = "; ".join(str(wm.message) for wm in job.warnings)
-        if result.converged:
-            self.status.value = status_html("sampling done: converged", level="ok")
-        else:
-            self.status.value = status_html(
-                "sampling done: NOT converged (" + "; ".join(result.diagnostics.get("reasons", []))
-                + ")" + (f" [{warned}]" if warned else ""), level="warn")
-
-    def stop(self) -> None:
-        """End a running sampler after its current step (the result is kept, not converged)."""
-        if self.job is not None and self.job.running:
-            self.job.stop()
-            self.status.value = status_html("stopping after the current step...", level="busy")
-
-    def wait(self, timeout: float | None = None):
-        """Wait for the sampler and return the result (raises its error, if any)."""
-        if self.job is None:
-            raise DataError("nothing is sampling: press Sample first", field="job")
-        return self.job.wait(timeout)
-
-    def save(self, folder: str | os.PathLike | None = None) -> list[Path]:
-        """Write the result as the command line does: ``posterior.nc``, ``summary.json``,
-        ``fit.png``, ``residuals.png``, ``corner.png``, ``traces.png``.
-
-        Returns
-        -------
-        list of Path
-            The files written.
-        """
-        if self.result is None:
-            raise DataError("no result to save yet: press Sample first", field="result")
-        folder = Path(folder if folder is not None else self.out_folder.value)
-        self.result.save(folder)
-        files = [folder / "posterior.nc", folder / "summary.json", *self.result.figures(folder)]
-        self.status.value = status_html(f"saved {len(files)} files to {folder}", level="ok")
-        return files
-
-
-def _noise_at(problem: DispersionProblem, da: xr.DataArray, x: np.ndarray):
-    """Inverse variance per pixel at the mode ``x`` and a sentence on how it was set.
-
-    The same steps as :func:`~polkit.workflows.dispersion.fit_dispersion`: the detector
-    model (gain and read noise) for emission counts that carry them, otherwise the
-    variance function fitted to the residuals with the leverage of the per-angle linear
-    columns (:func:`~polkit.workflows.dispersion.calibrate_noise`).
-    """
-    sol = problem.model_map(x)
-    model_map = np.asarray(sol.model).reshape(problem.y.shape)
-    counts = str(da.attrs.get("units", "")).strip() == "counts" and problem.kind == "emission"
-    design = np.moveaxis(np.asarray(problem.basis(x[None, :]))[0], 1, 2)  # (A, E, K)
-    design = np.concatenate([design, np.ones(design.shape[:2] + (1,))], axis=2)
-    gain = da.attrs.get("gain") if counts else None
-    read_noise = da.attrs.get("read_noise") if counts else None
-    inv_var, a, b = wf.calibrate_noise(problem.y, model_map, design=design, gain=gain,
-                                       read_noise=read_noise)
-    how = ("CCD gain and read noise from the file" if gain is not None and read_noise is not None
-           else "fitted to the MAP residuals")
-    note = (f"variance = a * model + b with a = {a:.4g}, b = {b:.4g} (squared signal units; "
-            f"{how}), times noise_scale^2")
-    return inv_var, note
-
-
-def _is_log(slider) -> bool:
-    return type(slider).__name__ == "FloatLogSlider"
-
-
-def _build_result(problem: DispersionProblem, output, da: xr.DataArray, *, model: str, sha: str,
-                  source_name: str, noise_note: str, profile: str):
-    """A :class:`DispersionFit` from a sampler run, laid out as the workflow lays it out."""
-    space = problem.space
-    post_ds = output.posterior_draws()
-    theta = np.stack([post_ds[n].values for n in space.names], axis=-1)
-    derived = problem.derived(theta)
-    strong = derived.pop("strong_coupling")
-    derived["strong_coupling_probability"] = (
-        np.asarray(strong[0].mean()), "1",
-        "posterior probability that 2g > (gamma_C + gamma_X)/2")
-    axis = problem.axis
-    observed = xr.Dataset({"map": da.assign_attrs(dict(da.attrs))})
-    observed["inverse_variance"] = ((axis, "energy"), problem.inv_var,
-                                    {"units": f"1/({da.attrs.get('units', '1')})^2"})
-    for key in ("source", "sample", "position"):
-        if key in da.attrs:
-            observed.attrs[key] = str(da.attrs[key])
-    prov = {"input_sha256": sha, "input": source_name, "path": "whole_map",
-            "noise_model": noise_note, "peak_profile": profile,
-            "started_from": "interactive panel: MAP refined from the slider values",
-            "window": {axis: [float(problem.in_plane.min()), float(problem.in_plane.max())],
-                       "energy": [float(problem.energy.min()), float(problem.energy.max())]}}
-    return wf.DispersionFit.from_samples(
-        output, space, derived=derived, model=f"{model}_oscillator", kind=problem.kind,
-        observed=observed, provenance=prov,
-        extra_attrs={"fit_path": "whole_map", "in_plane_axis": axis,
-                     "n_excitons": problem.n_excitons})
+        return self._residual_png(med, "posterior median")
 
 
 def dispersion_panel(
@@ -745,23 +455,12 @@ def dispersion_panel(
     DataError
         Bad map file or contents, unknown model or kind (naming the file and the field).
     """
-    if model not in MODELS:
-        raise DataError(f"expected model 'two' or 'three', found {model!r}.", field="model")
-    da, sha, source_name = wf._load(source, kind, wavelength_medium, load_options)
-    kind = kind or da.attrs.get("kind", "emission")
-    if kind == "transmission":
-        kind_model = "emission"
-    elif kind in ("emission", "reflectance"):
-        kind_model = kind
-    else:
-        raise DataError(
-            f"expected kind 'emission', 'reflectance' or 'transmission', found {kind!r}.",
-            path=source_name, field="kind")
-    axis = in_plane_axis(da)
-    da = da.transpose(axis, "energy")
+    src = st.open_map(source, model=model, kind=kind, wavelength_medium=wavelength_medium,
+                      load_options=load_options)
     steps = int(max_steps) if max_steps is not None else wf.DEFAULT_STEPS["max_steps"]
     return DispersionPanel(
-        da, sha=sha, source_name=source_name, model=model, kind_model=kind_model, priors=priors,
-        seed=seed, max_steps=steps, min_steps=min_steps, n_walkers=n_walkers, out=out,
-        profile=profile, log_scale=(kind_model == "emission") if log_scale is None else log_scale,
+        src.data, sha=src.sha256, source_name=src.source_name, model=model, kind_model=src.kind,
+        priors=priors, seed=seed, max_steps=steps, min_steps=min_steps, n_walkers=n_walkers,
+        out=out, profile=profile,
+        log_scale=(src.kind == "emission") if log_scale is None else log_scale,
         angle_window=angle_window, energy_window=energy_window)

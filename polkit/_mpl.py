@@ -1,0 +1,97 @@
+"""matplotlib for polkit's figures: a headless-safe pyplot and pieces every figure shares.
+
+* :func:`pyplot`: ``matplotlib.pyplot`` with a non-interactive backend unless the session
+  already has one (a notebook's inline backend, or a GUI backend in use);
+* :func:`posterior_matrix`: the draws of a result as a ``(draws, parameters)`` array,
+  optionally a seeded subset;
+* :func:`corner_data`: draws and unit-carrying labels for a corner plot;
+* :func:`trace_figure`: the stored draws per walker;
+* :func:`write_figures`: render a set of figures of a result and write them atomically.
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Callable, Sequence
+from pathlib import Path
+
+import numpy as np
+
+from . import io
+
+__all__ = ["pyplot", "posterior_matrix", "corner_data", "trace_figure", "write_figures"]
+
+
+def pyplot():
+    """``matplotlib.pyplot``, switched to Agg unless Agg or the inline backend is active.
+
+    A GUI backend already in use is left alone.
+    """
+    import matplotlib
+
+    if matplotlib.get_backend().lower() not in ("agg", "module://matplotlib_inline.backend_inline"):
+        try:
+            matplotlib.use("Agg", force=False)
+        except Exception:  # noqa: BLE001 - a GUI backend already in use is fine
+            pass
+    import matplotlib.pyplot as plt
+
+    return plt
+
+
+def posterior_matrix(result, max_draws: int | None = None, seed: int = 0) -> np.ndarray:
+    """The posterior draws of every sampled parameter, shape ``(draws, parameters)``.
+
+    With ``max_draws``, a subset of that many draws chosen without replacement by a
+    generator seeded with ``seed`` (kept in draw order), so a figure is reproducible.
+    """
+    names = result.space.names
+    theta = np.stack([result.draws(n) for n in names], axis=-1)
+    if max_draws is not None and theta.shape[0] > max_draws:
+        idx = np.random.default_rng(seed).choice(theta.shape[0], max_draws, replace=False)
+        theta = theta[np.sort(idx)]
+    return theta
+
+
+def corner_data(result, names: Sequence[str]) -> tuple[np.ndarray, list[str]]:
+    """Draws of ``names`` (shape ``(draws, len(names))``) and labels with their units."""
+    data = np.stack([result.draws(n) for n in names], axis=-1)
+    units = [result.posterior[n].attrs.get("units", "") for n in names]
+    labels = [f"{n}\n[{u}]" if u and u != "1" else n for n, u in zip(names, units, strict=True)]
+    return data, labels
+
+
+def trace_figure(result):
+    """Traces of the stored draws per walker (after burn-in and thinning)."""
+    plt = pyplot()
+    names = result.space.names
+    fig, axes = plt.subplots(len(names), 1, figsize=(7, 1.3 * len(names)), sharex=True,
+                             squeeze=False)
+    for ax, n in zip(axes[:, 0], names, strict=True):
+        ax.plot(result.posterior[n].values.T, lw=0.4, alpha=0.5)
+        ax.set_ylabel(n, fontsize=7)
+    axes[-1, 0].set_xlabel("stored draw (after burn-in and thinning)")
+    return fig
+
+
+def write_figures(result, folder: str | os.PathLike,
+                  makers: Sequence[tuple[str, Callable]]) -> list[Path]:
+    """Render ``(file name, figure function)`` pairs of ``result`` and write each atomically.
+
+    Each figure is closed after it is written, whatever happens.
+
+    Returns
+    -------
+    list of Path
+        The files written, in the order of ``makers``.
+    """
+    plt = pyplot()
+    folder = Path(folder)
+    written = []
+    for name, make in makers:
+        fig = make(result)
+        try:
+            written.append(io.save_figure(folder / name, fig))
+        finally:
+            plt.close(fig)
+    return written
