@@ -28,7 +28,6 @@ from __future__ import annotations
 import logging
 import math
 import os
-import tomllib
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from typing import Any, Literal
@@ -38,6 +37,7 @@ from numpy.typing import ArrayLike, NDArray
 from scipy import constants as _c
 from scipy import stats
 
+from ..config_entries import quantity, read_table, refuse_unknown, require_quantity
 from ..errors import ConfigError, DataError
 
 logger = logging.getLogger(__name__)
@@ -74,7 +74,6 @@ _QUANTITIES: dict[str, tuple[str, str, float | None]] = {
     "pulse_duration": ("time", "pulse_duration_ps", None),
     "repetition_rate": ("frequency", "repetition_rate_MHz", None),
 }
-_ENTRY_KEYS = ("value", "error", "rel_error", "units")
 _J_PER_EV = _c.e  # CODATA (exact since 2019)
 
 
@@ -300,28 +299,8 @@ def load_calibration(source: str | os.PathLike | Mapping[str, Any]) -> DensityCa
     DensityCalibration
         Values converted to polkit's units (um, um2, eV, ps, MHz).
     """
-    if isinstance(source, Mapping):
-        raw, path = dict(source), None
-    else:
-        path = os.fspath(source)
-        try:
-            with open(path, "rb") as fh:
-                raw = tomllib.load(fh)
-        except FileNotFoundError as exc:
-            raise ConfigError(
-                "calibration file not found; check the path", path=path
-            ) from exc
-        except tomllib.TOMLDecodeError as exc:
-            raise ConfigError(f"not valid TOML: {exc}", path=path) from exc
-        except OSError as exc:
-            raise ConfigError(f"cannot read the calibration file: {exc}", path=path) from exc
-
-    allowed = ("drive", "note", *_QUANTITIES)
-    for key in raw:
-        if key not in allowed:
-            raise ConfigError(
-                f"unknown key; expected one of {', '.join(allowed)}", path=path, key=key
-            )
+    raw, path = read_table(source, what="calibration")
+    refuse_unknown(raw, ("drive", "note", *_QUANTITIES), path)
     if "drive" not in raw:
         raise ConfigError(
             "missing; expected drive = \"cw\" or drive = \"pulsed\"", path=path, key="drive"
@@ -333,92 +312,16 @@ def load_calibration(source: str | os.PathLike | Mapping[str, Any]) -> DensityCa
     if not isinstance(note, str):
         raise ConfigError(f"expected text, found {type(note).__name__}", path=path, key="note")
     for key in ("photon_energy", "coupling_efficiency"):
-        if key not in raw:
-            raise ConfigError(
-                f"missing; expected {key} = {{value = ..., units = "
-                f"\"{next(iter(_UNITS[_QUANTITIES[key][0]]))}\"}}",
-                path=path,
-                key=key,
-            )
+        require_quantity(raw, key, _UNITS[_QUANTITIES[key][0]], path)
     fields: dict[str, UncertainInput] = {}
     for key, (dim, attr, upper) in _QUANTITIES.items():
         if key in raw:
-            fields[attr] = _parse_entry(raw[key], key, dim, upper, path)
+            value, sigma, units = quantity(raw[key], key, dim=dim, units=_UNITS[dim],
+                                           upper=upper, path=path)
+            fields[attr] = UncertainInput(value=value, sigma_log=sigma, units=units, upper=upper)
     cal = DensityCalibration(drive=drive, note=note, source=path, **fields)
     logger.debug("loaded density calibration %s", cal.to_dict())
     return cal
-
-
-def _number(entry: Mapping, name: str, key: str, path) -> float:
-    v = entry[name]
-    if isinstance(v, bool) or not isinstance(v, (int, float)):
-        raise ConfigError(
-            f"expected a number, found {type(v).__name__} {v!r}", path=path, key=f"{key}.{name}"
-        )
-    v = float(v)
-    if not math.isfinite(v):
-        raise ConfigError(f"expected a finite number, found {v}", path=path, key=f"{key}.{name}")
-    return v
-
-
-def _parse_entry(entry: Any, key: str, dim: str, upper: float | None, path) -> UncertainInput:
-    units_table = _UNITS[dim]
-    canonical = next(iter(units_table))
-    if not isinstance(entry, Mapping):
-        raise ConfigError(
-            f"expected a table with value and units, e.g. {key} = {{value = {entry!r}, "
-            f'units = "{canonical}"}}, found a bare {type(entry).__name__}',
-            path=path,
-            key=key,
-        )
-    for sub in entry:
-        if sub not in _ENTRY_KEYS:
-            raise ConfigError(
-                f"unknown key; expected {', '.join(_ENTRY_KEYS)}", path=path, key=f"{key}.{sub}"
-            )
-    if "value" not in entry:
-        raise ConfigError("missing value", path=path, key=f"{key}.value")
-    if "units" not in entry:
-        raise ConfigError(
-            f'missing units; expected one of {", ".join(repr(u) for u in units_table)}, '
-            f'e.g. units = "{canonical}"',
-            path=path,
-            key=f"{key}.units",
-        )
-    units = entry["units"]
-    if units not in units_table:
-        raise ConfigError(
-            f"expected units of {dim}, one of {', '.join(repr(u) for u in units_table)}, "
-            f"found {units!r}",
-            path=path,
-            key=f"{key}.units",
-        )
-    factor = units_table[units]
-    value = _number(entry, "value", key, path)
-    if value <= 0:
-        raise ConfigError(f"expected a value > 0, found {value:g}", path=path, key=f"{key}.value")
-    if upper is not None and value > upper:
-        raise ConfigError(
-            f"an efficiency lies in (0, 1], found {value:g}; give a fraction, not a percentage",
-            path=path,
-            key=f"{key}.value",
-        )
-    if "error" in entry and "rel_error" in entry:
-        raise ConfigError(
-            "found both error and rel_error; give one (absolute or relative)",
-            path=path,
-            key=f"{key}.error",
-        )
-    sigma = 0.0
-    for name in ("error", "rel_error"):
-        if name in entry:
-            err = _number(entry, name, key, path)
-            if err < 0:
-                raise ConfigError(
-                    f"expected an uncertainty >= 0, found {err:g}", path=path, key=f"{key}.{name}"
-                )
-            sigma = err / value if name == "error" else err
-    return UncertainInput(value=value * factor, sigma_log=sigma, units=canonical, upper=upper)
 
 
 def _checked(name: str, value: ArrayLike, *, nonneg: bool = False) -> NDArray:

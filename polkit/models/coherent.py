@@ -27,12 +27,14 @@ walker parameters a shape ``(W, 1)`` and the drive axis a shape ``(N,)``.
 
 from __future__ import annotations
 
+import functools
 import logging
 from typing import Literal, NamedTuple
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
+from .._checks import real_array
 from ..errors import DataError
 
 logger = logging.getLogger(__name__)
@@ -73,32 +75,13 @@ class TurningPoints(NamedTuple):
     drive_down: NDArray
 
 
-def _checked(name: str, value: ArrayLike, *, positive: bool = False, nonneg: bool = False):
-    try:
-        arr = np.asarray(value, dtype=float)
-    except (TypeError, ValueError) as exc:
-        raise DataError(
-            f"expected an array of real numbers, found {type(value).__name__} ({exc})", field=name
-        ) from exc
-    bad = ~np.isfinite(arr)
-    if np.any(bad):
-        raise DataError(
-            f"expected finite numbers, found {int(bad.sum())} non-finite value(s); "
-            "remove or mask them before calling the model",
-            field=name,
-        )
-    if positive and np.any(arr <= 0):
-        raise DataError(
-            f"expected values > 0, found minimum {arr.min():g}; a linewidth is a positive FWHM",
-            field=name,
-        )
-    if nonneg and np.any(arr < 0):
-        raise DataError(
-            f"expected values >= 0, found minimum {arr.min():g}; the drive alpha*kappa*P "
-            "is a non-negative power times non-negative constants",
-            field=name,
-        )
-    return arr
+_checked = functools.partial(
+    real_array,
+    finite_hint="; remove or mask them before calling the model",
+    positive_text="expected values > 0, found minimum {minimum:g}; a linewidth is a positive FWHM",
+    nonneg_text="expected values >= 0, found minimum {minimum:g}; the drive alpha*kappa*P is a "
+    "non-negative power times non-negative constants",
+)
 
 
 def _broadcast(**arrays: NDArray) -> list[NDArray]:

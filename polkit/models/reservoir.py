@@ -20,6 +20,7 @@ interaction constants in ueV um^2, areas in um^2, blueshifts in meV.
 
 from __future__ import annotations
 
+import functools
 import logging
 from collections.abc import Callable
 from typing import NamedTuple
@@ -28,6 +29,7 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 from scipy.integrate import solve_ivp
 
+from .._checks import real_array
 from ..constants import HBAR_MEV_PS
 from ..errors import DataError, FitError
 
@@ -63,28 +65,11 @@ class ReservoirTrajectory(NamedTuple):
     n_C: NDArray
 
 
-def _checked(name: str, value: ArrayLike, *, positive: bool = False, nonneg: bool = False):
-    try:
-        arr = np.asarray(value, dtype=float)
-    except (TypeError, ValueError) as exc:
-        raise DataError(
-            f"expected an array of real numbers, found {type(value).__name__} ({exc})", field=name
-        ) from exc
-    bad = ~np.isfinite(arr)
-    if np.any(bad):
-        raise DataError(
-            f"expected finite numbers, found {int(bad.sum())} non-finite value(s)", field=name
-        )
-    if positive and np.any(arr <= 0):
-        raise DataError(
-            f"expected values > 0 (a rate or a scale), found minimum {arr.min():g}", field=name
-        )
-    if nonneg and np.any(arr < 0):
-        raise DataError(
-            f"expected values >= 0 (a pump rate or a population), found minimum {arr.min():g}",
-            field=name,
-        )
-    return arr
+_checked = functools.partial(
+    real_array,
+    positive_text="expected values > 0 (a rate or a scale), found minimum {minimum:g}",
+    nonneg_text="expected values >= 0 (a pump rate or a population), found minimum {minimum:g}",
+)
 
 
 def decay_rate(linewidth_meV: ArrayLike) -> NDArray:

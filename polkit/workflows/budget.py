@@ -54,7 +54,6 @@ import logging
 import math
 import os
 import re
-import tomllib
 import warnings
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
@@ -68,6 +67,7 @@ import xarray as xr
 from scipy import constants as _c
 from scipy import stats
 
+from ..config_entries import quantity, read_table, refuse_unknown, require_quantity
 from ..errors import ConfigError, ConvergenceWarning, DataError, DataWarning
 from ..inference import FitResult
 from ..io import write_json, write_netcdf
@@ -137,7 +137,6 @@ _DEVICE_QUANTITIES: dict[str, tuple[str, str, str, float | None, bool]] = {
 }
 _ARRAY_KEYS = ("nodes", "inputs", "outputs")
 _PLAIN_KEYS = ("note", "array", "rate_convention")
-_ENTRY_KEYS = ("value", "error", "rel_error", "units")
 
 
 @dataclass(frozen=True)
@@ -285,34 +284,11 @@ def load_device(source: str | os.PathLike | Mapping[str, Any]) -> Device:
     Device
         Values converted to polkit's units (um, um2, rad, K, fJ, mW, ps).
     """
-    if isinstance(source, Mapping):
-        raw, path = dict(source), None
-    else:
-        path = os.fspath(source)
-        try:
-            with open(path, "rb") as fh:
-                raw = tomllib.load(fh)
-        except FileNotFoundError as exc:
-            raise ConfigError("device file not found; check the path", path=path) from exc
-        except tomllib.TOMLDecodeError as exc:
-            raise ConfigError(f"not valid TOML: {exc}", path=path) from exc
-        except OSError as exc:
-            raise ConfigError(f"cannot read the device file: {exc}", path=path) from exc
-
-    allowed = (*_PLAIN_KEYS, *_DEVICE_QUANTITIES)
-    for key in raw:
-        if key not in allowed:
-            raise ConfigError(
-                f"unknown key; expected one of {', '.join(allowed)}", path=path, key=key
-            )
+    raw, path = read_table(source, what="device")
+    refuse_unknown(raw, (*_PLAIN_KEYS, *_DEVICE_QUANTITIES), path)
     for key, (dim, _, _, _, required) in _DEVICE_QUANTITIES.items():
-        if required and key not in raw:
-            raise ConfigError(
-                f"missing; expected {key} = {{value = ..., units = "
-                f"\"{next(iter(_DEVICE_UNITS[dim]))}\"}}",
-                path=path,
-                key=key,
-            )
+        if required:
+            require_quantity(raw, key, _DEVICE_UNITS[dim], path)
     if ("node_area" in raw) == ("node_size" in raw):
         raise ConfigError(
             "expected exactly one of node_area (um2) or node_size (diameter, um), found "
@@ -335,7 +311,10 @@ def load_device(source: str | os.PathLike | Mapping[str, Any]) -> Device:
     fields: dict[str, UncertainInput] = {}
     for key, (dim, attr, lower, upper, _) in _DEVICE_QUANTITIES.items():
         if key in raw:
-            fields[attr] = _parse_entry(raw[key], key, dim, lower, upper, path)
+            value, sigma, units = quantity(
+                raw[key], key, dim=dim, units=_DEVICE_UNITS[dim], lower=lower, upper=upper,
+                bounded="an efficiency or fraction", path=path)
+            fields[attr] = UncertainInput(value=value, sigma_log=sigma, units=units, upper=upper)
     amb = fields.get("ambient_temperature_K")
     if amb is not None and amb.sigma_log > 0:
         raise ConfigError(
@@ -400,93 +379,6 @@ def _parse_array(entry: Any, path) -> dict[str, int]:
             raise ConfigError("missing (a whole number)", path=path, key=f"array.{sub}")
         out[sub] = _whole(entry[sub], f"array.{sub}", path, minimum=1 if sub == "nodes" else 0)
     return out
-
-
-def _number(entry: Mapping, name: str, key: str, path) -> float:
-    v = entry[name]
-    if isinstance(v, bool) or not isinstance(v, (int, float)):
-        raise ConfigError(
-            f"expected a number, found {type(v).__name__} {v!r}", path=path, key=f"{key}.{name}"
-        )
-    v = float(v)
-    if not math.isfinite(v):
-        raise ConfigError(f"expected a finite number, found {v}", path=path, key=f"{key}.{name}")
-    return v
-
-
-def _parse_entry(
-    entry: Any, key: str, dim: str, lower: str, upper: float | None, path
-) -> UncertainInput:
-    table = _DEVICE_UNITS[dim]
-    canonical = next(iter(table))
-    if not isinstance(entry, Mapping):
-        raise ConfigError(
-            f"expected a table with value and units, e.g. {key} = {{value = {entry!r}, "
-            f'units = "{canonical}"}}, found a bare {type(entry).__name__}',
-            path=path,
-            key=key,
-        )
-    for sub in entry:
-        if sub not in _ENTRY_KEYS:
-            raise ConfigError(
-                f"unknown key; expected {', '.join(_ENTRY_KEYS)}", path=path, key=f"{key}.{sub}"
-            )
-    if "value" not in entry:
-        raise ConfigError("missing value", path=path, key=f"{key}.value")
-    if "units" not in entry:
-        raise ConfigError(
-            f"missing units; expected one of {', '.join(repr(u) for u in table)}, "
-            f'e.g. units = "{canonical}"',
-            path=path,
-            key=f"{key}.units",
-        )
-    units = entry["units"]
-    if units not in table:
-        raise ConfigError(
-            f"expected units of {dim}, one of {', '.join(repr(u) for u in table)}, "
-            f"found {units!r}",
-            path=path,
-            key=f"{key}.units",
-        )
-    value = _number(entry, "value", key, path)
-    if lower == "positive" and value <= 0:
-        raise ConfigError(f"expected a value > 0, found {value:g}", path=path, key=f"{key}.value")
-    if lower == "nonnegative" and value < 0:
-        raise ConfigError(
-            f"expected a value >= 0 (0 = not counted), found {value:g}",
-            path=path,
-            key=f"{key}.value",
-        )
-    if upper is not None and value > upper:
-        raise ConfigError(
-            f"an efficiency or fraction lies in (0, 1], found {value:g}; give a fraction, "
-            "not a percentage",
-            path=path,
-            key=f"{key}.value",
-        )
-    if "error" in entry and "rel_error" in entry:
-        raise ConfigError(
-            "found both error and rel_error; give one (absolute or relative)",
-            path=path,
-            key=f"{key}.error",
-        )
-    sigma = 0.0
-    for name in ("error", "rel_error"):
-        if name in entry:
-            err = _number(entry, name, key, path)
-            if err < 0:
-                raise ConfigError(
-                    f"expected an uncertainty >= 0, found {err:g}", path=path, key=f"{key}.{name}"
-                )
-            if err > 0 and value == 0:
-                raise ConfigError(
-                    "a zero value cannot carry a log-normal uncertainty; give a positive median "
-                    "or drop the error",
-                    path=path,
-                    key=f"{key}.{name}",
-                )
-            sigma = (err / value if name == "error" else err) if value > 0 else 0.0
-    return UncertainInput(value=value * table[units], sigma_log=sigma, units=canonical, upper=upper)
 
 
 # --------------------------------------------------------------------------------------
