@@ -44,6 +44,7 @@ logger = logging.getLogger(__name__)
 
 __all__ = [
     "UncertainInput",
+    "draw_inputs",
     "DensityCalibration",
     "load_calibration",
     "gaussian_spot_area",
@@ -112,6 +113,24 @@ class UncertainInput:
     def to_dict(self) -> dict[str, Any]:
         """The file form: ``{"value": ..., "rel_error": ..., "units": ...}``."""
         return {"value": self.value, "rel_error": self.sigma_log, "units": self.units}
+
+
+def draw_inputs(inputs: Mapping[str, UncertainInput], rng: np.random.Generator,
+                n: int) -> dict[str, NDArray]:
+    """``n`` independent draws of every input, in the order of ``inputs``, using ``rng`` only.
+
+    Raises
+    ------
+    ConfigError
+        When ``rng`` is not a :class:`numpy.random.Generator`.
+    """
+    if not isinstance(rng, np.random.Generator):
+        raise ConfigError(
+            f"expected a numpy.random.Generator, found {type(rng).__name__}; "
+            "use numpy.random.default_rng(seed)",
+            key="rng",
+        )
+    return {name: q.draw(rng, int(n)) for name, q in inputs.items()}
 
 
 @dataclass(frozen=True)
@@ -203,13 +222,7 @@ class DensityCalibration:
             always including ``spot_area_um2`` (computed per draw from ``spot_fwhm_um`` with
             :func:`gaussian_spot_area` when the FWHM was given).
         """
-        if not isinstance(rng, np.random.Generator):
-            raise ConfigError(
-                f"expected a numpy.random.Generator, found {type(rng).__name__}; "
-                "use numpy.random.default_rng(seed)",
-                key="rng",
-            )
-        out = {name: q.draw(rng, int(n)) for name, q in self._inputs().items()}
+        out = draw_inputs(self._inputs(), rng, n)
         if "spot_area_um2" not in out:
             out["spot_area_um2"] = gaussian_spot_area(out["spot_fwhm_um"])
         return out

@@ -71,7 +71,7 @@ from ..config_entries import quantity, read_table, refuse_unknown, require_quant
 from ..errors import ConfigError, ConvergenceWarning, DataError, DataWarning
 from ..inference import FitResult
 from ..io import write_json, write_netcdf
-from ..models.calibration import UncertainInput
+from ..models.calibration import UncertainInput, draw_inputs
 from ..models.energy import (
     ELECTRONIC_REFERENCE,
     array_energy_per_activation,
@@ -218,13 +218,7 @@ class Device:
         given).  The draw order is fixed by the key order, so two devices that differ only
         in values get the same underlying normal deviates for the same seed.
         """
-        if not isinstance(rng, np.random.Generator):
-            raise ConfigError(
-                f"expected a numpy.random.Generator, found {type(rng).__name__}; "
-                "use numpy.random.default_rng(seed)",
-                key="rng",
-            )
-        out = {name: q.draw(rng, int(n)) for name, q in self._quantities().items()}
+        out = draw_inputs(self._quantities(), rng, n)
         if "node_area_um2" not in out:
             out["node_area_um2"] = 0.25 * np.pi * out["node_size_um"] ** 2
         return out
