@@ -62,11 +62,10 @@ def _array_sha256(da: xr.DataArray) -> str:
     return h.hexdigest()
 
 
-
 # --------------------------------------------------------------------------------------
 # the map
 # --------------------------------------------------------------------------------------
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class MapInput:
     """A map ready for fitting, and where it came from (built by :func:`open_map`).
 
@@ -185,7 +184,7 @@ def open_map(
 # --------------------------------------------------------------------------------------
 # the problem and where it starts
 # --------------------------------------------------------------------------------------
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class DispersionStart:
     """Where a dispersion fit starts (built by :func:`prepare_dispersion`).
 

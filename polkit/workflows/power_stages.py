@@ -248,7 +248,7 @@ def _check_options(model, n_wells, exciton_binding_meV, bohr_radius_nm, reservoi
 # --------------------------------------------------------------------------------------
 # the stages
 # --------------------------------------------------------------------------------------
-@dataclass
+@dataclass(eq=False)
 class PowerSetup:
     """Everything a power-series fit needs besides its problem (built by :func:`prepare_power`).
 
