@@ -3,8 +3,17 @@
 Modules: :mod:`~polkit.models.dispersion` (cavity photon, coupled oscillators, Hopfield
 fractions), :mod:`~polkit.models.spectral` (whole-map spectral model, variable projection),
 :mod:`~polkit.models.lineshapes`, :mod:`~polkit.models.coherent` (driven-dissipative
-steady states), :mod:`~polkit.models.reservoir` (nonresonant drive), :mod:`~polkit.models.calibration`
-(pump power to density), :mod:`~polkit.models.energy` (energy per operation).
+steady states), :mod:`~polkit.models.reservoir` (nonresonant drive),
+:mod:`~polkit.models.calibration` (pump power to density),
+:mod:`~polkit.models.energy` (energy per operation).
 """
 
-from . import calibration, coherent, dispersion, energy, lineshapes, reservoir, spectral  # noqa: F401
+from . import (  # noqa: F401
+    calibration,
+    coherent,
+    dispersion,
+    energy,
+    lineshapes,
+    reservoir,
+    spectral,
+)
