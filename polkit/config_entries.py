@@ -58,6 +58,9 @@ def read_table(source: str | os.PathLike | Mapping[str, Any], *,
         raise ConfigError(f"{what} file not found; check the path", path=path) from exc
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(f"not valid TOML: {exc}", path=path) from exc
+    except UnicodeDecodeError as exc:
+        raise ConfigError(f"the {what} file is not UTF-8 text ({exc.reason} at byte "
+                          f"{exc.start}); save it as UTF-8", path=path) from exc
     except OSError as exc:
         raise ConfigError(f"cannot read the {what} file: {exc}", path=path) from exc
 

@@ -409,10 +409,6 @@ def test_cli_refuses_bad_input_in_one_line(name, tmp_path, small_map, capsys):
     assert not (tmp_path / "out" / "summary.json").exists(), "nothing written for bad input"
 
 
-@pytest.mark.xfail(strict=True, raises=UnicodeDecodeError, reason=(
-    "bug in polkit.models.calibration.load_calibration and polkit.workflows.budget."
-    "load_device: a TOML file that is not UTF-8 escapes as UnicodeDecodeError (a traceback "
-    "on the command line) instead of a ConfigError naming the file"))
 @pytest.mark.parametrize("command", ["power", "budget"])
 def test_cli_refuses_a_calibration_or_device_file_that_is_not_utf8(command, tmp_path,
                                                                    capsys):
@@ -464,7 +460,7 @@ PRIOR_FILES = {  # TOML text -> key the refusal must name
     'high = 1.6\nunits = "eV"\n': "exciton_energy.low",
     "rabi_splitting = 12.0\n": "rabi_splitting",
 }
-PRIOR_BUGS = {  # impossible values accepted today (see the xfail reason)
+PRIOR_INFINITE = {  # infinite numbers and overflowing widths: not a proper density
     '[exciton_energy]\nprior = "normal"\nmu = inf\nsigma = 0.01\nunits = "eV"\n':
         "exciton_energy.mu",
     '[exciton_energy]\nprior = "normal"\nmu = 1.55\nsigma = inf\nunits = "eV"\n':
@@ -485,18 +481,14 @@ def test_prior_files_are_refused_with_the_key_named(text, tmp_path):
     assert str(info.value).startswith(f"{path}: key '{PRIOR_FILES[text]}'")
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "bug in polkit.inference.priors: Prior accepts infinite mu and sigma (only NaN is "
-    "refused) and a uniform support whose width overflows to inf; the log density is then "
-    "-inf or NaN everywhere instead of a ConfigError naming the key"))
-@pytest.mark.parametrize("text", sorted(PRIOR_BUGS))
+@pytest.mark.parametrize("text", sorted(PRIOR_INFINITE))
 def test_infinite_prior_numbers_are_refused_with_the_key_named(text, tmp_path):
     # common practice, no published source: a prior must be a proper, finite density
     path = tmp_path / "priors.toml"
     path.write_text(text)
     with pytest.raises(ConfigError) as info:
         apply_priors(SPACE, path)
-    assert info.value.key == PRIOR_BUGS[text]
+    assert info.value.key == PRIOR_INFINITE[text]
 
 
 CAL = {"drive": "cw", "photon_energy": {"value": 1.54, "units": "eV"},

@@ -92,6 +92,9 @@ class Prior:
                     f"a {self.kind} prior takes only {list(needed)}; got '{name}' = {value!r}",
                     key=name,
                 )
+        for name in ("mu", "sigma"):
+            if name in needed and not math.isfinite(getattr(self, name)):
+                raise ConfigError(f"{name} must be finite, got {getattr(self, name)!r}", key=name)
         if "sigma" in needed and not self.sigma > 0.0:
             raise ConfigError(f"sigma must be > 0, got {self.sigma!r}", key="sigma")
         if "low" in needed:
@@ -100,9 +103,11 @@ class Prior:
                     f"low must be < high, got low = {self.low!r} and high = {self.high!r}",
                     key="low",
                 )
-            if not (math.isfinite(self.low) and math.isfinite(self.high)):
+            if not (math.isfinite(self.low) and math.isfinite(self.high)
+                    and math.isfinite(self.high - self.low)):
                 raise ConfigError(
-                    f"low and high must be finite, got [{self.low!r}, {self.high!r}]", key="low"
+                    f"low and high must be finite with a finite width, got "
+                    f"[{self.low!r}, {self.high!r}]", key="low"
                 )
         if self.kind == "loguniform" and not self.low > 0.0:
             raise ConfigError(
