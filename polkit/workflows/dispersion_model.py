@@ -344,6 +344,14 @@ class DispersionProblem:
         self.inv_var = np.asarray(inv_var, dtype=float)
         self.noise_note = note
         self._n_pixels = int(np.count_nonzero(self.inv_var > 0))
+        # degrees of freedom left after the linear columns solved per angle (branch
+        # amplitudes or reflectance scale, plus the background): integrating those linear
+        # parameters out under flat priors turns -N log(s) into -(N - K) log(s)
+        # (Gelman et al., Bayesian Data Analysis, 3rd ed., section 14.2)
+        n_columns = (1 if self.kind == "reflectance" else self.n_excitons + 1) + (
+            {"constant": 1, "linear": 2}.get(self.background, 0))
+        active = int(np.count_nonzero((self.inv_var > 0).any(axis=1)))
+        self._n_dof = max(self._n_pixels - active * n_columns, 1)
         self._weighted = spectral.prepare_map(
             self.y, self.inv_var, background=self.background, energy_ev=self.energy
         )
@@ -390,13 +398,14 @@ class DispersionProblem:
     def log_likelihood(self, theta: np.ndarray) -> np.ndarray:
         """Whole-map Gaussian log-likelihood (up to a constant), shape ``(W,)``.
 
-        ``-chi2 / (2 s^2) - N log s`` with ``chi2`` minimised over the linear amplitudes
-        and backgrounds per angle, ``s`` the noise scale and ``N`` the unmasked pixels.
+        ``-chi2 / (2 s^2) - (N - K) log s`` with ``chi2`` minimised over the linear
+        amplitudes and backgrounds per angle, ``s`` the noise scale, ``N`` the unmasked
+        pixels and ``K`` the linear coefficients solved (their flat-prior marginal).
         """
         theta = np.atleast_2d(theta)
         chi2 = spectral.project_linear(self._weighted, None, self.basis(theta), nonneg=True)
         s = self._noise_scale(theta)
-        return -0.5 * chi2 / (s * s) - self._n_pixels * np.log(s)
+        return -0.5 * chi2 / (s * s) - self._n_dof * np.log(s)
 
     def model_map(self, theta: np.ndarray):
         """Best-fit map and its parts for one parameter vector (a LinearSolution)."""
