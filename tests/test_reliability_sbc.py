@@ -106,11 +106,6 @@ def test_full_calibration(name):
 
 
 @pytest.mark.slow
-@pytest.mark.xfail(strict=True, reason=(
-    "bug in polkit.workflows.dispersion_model.DispersionProblem.log_likelihood: the linear "
-    "amplitudes and backgrounds are profiled out, but the noise term stays -N log(s) with N "
-    "all pixels; the marginal over K linear columns gives -(N - K) log(s), so the noise "
-    "scale is biased low by about K / (2 N) and its ranks pile up at the top"))
 def test_full_calibration_of_the_whole_map_noise_scale():
     # Source: Talts et al. (2018); the degrees of freedom of a linear least-squares
     # residual, N - K (e.g. Gelman et al., Bayesian Data Analysis, 3rd ed., section 14.2)
