@@ -25,6 +25,7 @@ from sbc_tools import (
     REDUCED,
     SEED,
     PeakTableCase,
+    SamplerSettings,
     central_coverage,
     chi2_uniformity,
     run_sbc,
@@ -117,8 +118,12 @@ def test_full_calibration_of_the_whole_map_noise_scale():
 # ----------------------------------------------------------------------------------------
 # seeds
 # ----------------------------------------------------------------------------------------
+SEEDS_CHECK = SamplerSettings(autocorr_factor=20.0, tau_rtol=0.2, min_steps=200, max_steps=3000,
+                              check_every=50)
+
+
 def _fit(loglike, space, x0, seed):
-    out, _ = sample(loglike, space, x0, seed, FULL)
+    out, _ = sample(loglike, space, x0, seed, SEEDS_CHECK)
     result = FitResult.from_samples(out, space, model="peak_table_check", kind="dispersion",
                                     provenance={"input_sha256": "0" * 64})
     return out, result
