@@ -163,7 +163,13 @@ def write_json(target: str | os.PathLike, obj: Any) -> Path:
     return write_text(target, json.dumps(json_safe(obj), indent=2, allow_nan=False) + "\n")
 
 
-def json_safe(obj):
+def json_safe(obj: Any) -> Any:
+    """``obj`` with NumPy scalars and arrays made plain, and NaN or infinities made ``None``.
+
+    Dicts (keys become text), lists and tuples are converted recursively; anything else
+    is returned as it is.  The result can be written with ``json.dumps(...,
+    allow_nan=False)``, which is what :func:`write_json` does.
+    """
     import math
 
     import numpy as np
