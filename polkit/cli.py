@@ -179,6 +179,13 @@ def _cmd_report(args) -> int:
     return EXIT_OK
 
 
+def _fit_options(args, out: Path) -> dict:
+    """The options every fitting command shares (priors, seed, resume, limits, output)."""
+    return dict(priors=args.priors, seed=args.seed, resume=args.resume, strict=args.strict,
+                out=out, max_steps=args.max_steps, n_walkers=args.walkers,
+                progress=not args.quiet)
+
+
 def _cmd_power(args) -> int:
     from .workflows.power import fit_power
 
@@ -188,14 +195,7 @@ def _cmd_power(args) -> int:
         model=args.model,
         calibration=args.calibration,
         dispersion=args.dispersion,
-        priors=args.priors,
-        seed=args.seed,
-        resume=args.resume,
-        strict=args.strict,
-        out=out,
-        max_steps=args.max_steps,
-        n_walkers=args.walkers,
-        progress=not args.quiet,
+        **_fit_options(args, out),
     )
     print(result.table())
     print(f"results written to {out}")
@@ -246,14 +246,7 @@ def _cmd_dispersion(args) -> int:
         model=args.model,
         kind=args.kind,
         peaks_only=args.peaks_only,
-        priors=args.priors,
-        seed=args.seed,
-        resume=args.resume,
-        strict=args.strict,
-        out=out,
-        max_steps=args.max_steps,
-        n_walkers=args.walkers,
-        progress=not args.quiet,
+        **_fit_options(args, out),
         wavelength_medium=args.wavelength_medium,
     )
     print(result.table())
