@@ -393,6 +393,10 @@ class MapBasis:
         Names of the ``K`` columns (e.g. ``("lower", "upper")``).
     """
 
+    #: ``(mode, arguments)`` of a compiled kernel of :mod:`polkit.models._kernels` that
+    #: gives the same weighted Gram sums as the blocks (set by the basis builders), or None
+    _fused: tuple | None = None
+
     def __init__(
         self,
         batch_shape: tuple[int, ...],
@@ -466,12 +470,16 @@ def _self_energy_flat(energy, flat, sigma_x):
     return total
 
 
-def _green_block(energy, e_c, flat, sigma_x):
-    """Returns block(ws, as_) -> G_CC of shape (w, a, E) via the self-energy form."""
-    base = energy + 0.5j * flat["gamma_c"][:, None] - _self_energy_flat(energy, flat, sigma_x)
+def _green_base(energy, flat, sigma_x):
+    """``E + i gamma_C / 2 - Sigma(E)``, shape (W, E): G_CC = 1 / (base - E_C)."""
+    return energy + 0.5j * flat["gamma_c"][:, None] - _self_energy_flat(energy, flat, sigma_x)
+
+
+def _green_block(base):
+    """Returns block(ws, as_) -> G_CC of shape (w, a, E) from the (W, E) base row."""
     base = base[:, None, :]  # (W, 1, E)
 
-    def block(ws: slice, as_: slice) -> NDArray:
+    def block(ws: slice, as_: slice, e_c) -> NDArray:
         den = base[ws] - e_c[ws, as_, None]
         return np.reciprocal(den, out=den)
 
@@ -542,24 +550,30 @@ def emission_basis(
     )
     poles, residues = _poles_flat(e_c, flat)
     k = poles.shape[-1]
-    lorentz = _lorentz_block(energy, *_lorentz_coefficients(poles, residues))
+    coefficients = _lorentz_coefficients(poles, residues)
+    lorentz = _lorentz_block(energy, *coefficients)
     names = ("lower", "upper") if k == 2 else ("lower", "middle", "upper") if k == 3 else tuple(
         f"branch{i}" for i in range(k))
     if flat["sigma_x"] is None:
         block = lorentz
+        fused = ("lorentz", (energy, *coefficients))
     else:
-        green = _green_block(energy, e_c, flat, flat["sigma_x"])
+        base = _green_base(energy, flat, flat["sigma_x"])
+        green = _green_block(base)
 
         def block(ws: slice, as_: slice) -> NDArray:
             parts = lorentz(ws, as_)
             share = parts.sum(axis=2, keepdims=True)
-            a_sigma = green(ws, as_).imag[:, :, None, :] * (-1.0 / np.pi)
+            a_sigma = green(ws, as_, e_c).imag[:, :, None, :] * (-1.0 / np.pi)
             with np.errstate(divide="ignore", invalid="ignore"):
                 ratio = np.where(share != 0, a_sigma / share, 0.0)
             parts *= ratio
             return parts
 
-    return MapBasis(batch, grid.size, k, energy, block, kind="emission", columns=names)
+        fused = ("disorder", (energy, *coefficients, base, e_c))
+    basis = MapBasis(batch, grid.size, k, energy, block, kind="emission", columns=names)
+    basis._fused = fused
+    return basis
 
 
 def reflectance_basis(
@@ -619,19 +633,22 @@ def reflectance_basis(
         {"e_c0": e_c0, "n_eff": n_eff, "e_x": e_x, "g": g, "gamma_c": gamma_c,
          "gamma_x": gamma_x, "sigma_x": sigma_x, "kappa": kappa},
     )
-    green = _green_block(energy, e_c, flat, flat["sigma_x"])
+    base = _green_base(energy, flat, flat["sigma_x"])
+    green = _green_block(base)
     kap = flat["kappa"][:, None, None]
 
     def block(ws: slice, as_: slice) -> NDArray:
-        gcc = green(ws, as_)
+        gcc = green(ws, as_, e_c)
         gcc *= -1j * kap[ws]
         gcc += 1.0
         out = np.square(gcc.real)
         out += np.square(gcc.imag)
         return out[:, :, None, :]
 
-    return MapBasis(batch, grid.size, 1, energy, block, kind="reflectance",
-                    columns=("cavity",))
+    basis = MapBasis(batch, grid.size, 1, energy, block, kind="reflectance",
+                     columns=("cavity",))
+    basis._fused = ("reflectance", (base, e_c, flat["kappa"]))
+    return basis
 
 
 # --------------------------------------------------------------------------------------
@@ -829,6 +846,46 @@ def _solve_subset(gram: NDArray, rhs: NDArray, scale: NDArray):
         return np.einsum("...ij,...j->...i", vecs, coef), ok
 
 
+def _solve_rows(g_bb: NDArray, cross: NDArray, data: WeightedMap, nonneg: bool):
+    """Background elimination and exact small solves (numpy); ``(chi2 (W, A), amps)``."""
+    n_w, n_a, n_k = g_bb.shape[:3]
+    m = data.columns.shape[1]
+    c0 = data.chi2_background
+    if m:  # eliminate the background per angle (Schur complement)
+        g_bc = cross[..., :m]
+        t = g_bc @ data.background_pinv  # (W, A, K, m)
+        g_red = g_bb - t @ g_bc.swapaxes(-1, -2)
+        h_red = cross[..., m] - np.einsum("waki,ai->wak", t, data.h_background)
+    else:
+        g_red = g_bb
+        h_red = cross[..., 0]
+    diag = np.diagonal(g_bb, axis1=-2, axis2=-1)  # un-reduced scale (W, A, K)
+
+    best = np.broadcast_to(c0, (n_w, n_a)).copy()
+    amps = np.zeros((n_w, n_a, n_k))
+    for size in range(1, n_k + 1):
+        for subset in combinations(range(n_k), size):
+            idx = np.array(subset)
+            sub_h = h_red[..., idx]
+            x, ok = _solve_subset(g_red[..., idx[:, None], idx[None, :]], sub_h, diag[..., idx])
+            if nonneg:
+                ok &= np.all(x >= 0.0, axis=-1)
+            chi = c0 - np.einsum("...i,...i->...", np.where(ok[..., None], x, 0.0), sub_h)
+            better = ok & (chi < best)
+            best = np.where(better, chi, best)
+            if size == n_k:
+                amps = np.where(better[..., None], x, amps)
+            else:
+                full = np.zeros_like(amps)
+                full[..., idx] = x
+                amps = np.where(better[..., None], full, amps)
+    # a non-finite basis (e.g. parameters exactly at an exceptional point) must not be
+    # silently replaced by the background-only fit: give NaN, which the sampler reports
+    broken = ~(np.isfinite(g_bb).all(axis=(-2, -1)) & np.isfinite(cross).all(axis=(-2, -1)))
+    best[broken] = np.nan
+    return np.where(best < 0.0, 0.0, best), amps  # rounding below zero, NaN kept
+
+
 def _iter_blocks(n_walkers: int, n_angle: int, row_elements: int):
     per_walker = n_angle * row_elements
     if per_walker <= _BLOCK_ELEMENTS:
@@ -840,6 +897,15 @@ def _iter_blocks(n_walkers: int, n_angle: int, row_elements: int):
         for w0 in range(n_walkers):
             for a0 in range(0, n_angle, step_a):
                 yield slice(w0, w0 + 1), slice(a0, min(a0 + step_a, n_angle))
+
+
+def _compiled_kernels(basis):
+    """The compiled-kernel module if it should evaluate this basis, else None."""
+    if getattr(basis, "_fused", None) is None:
+        return None
+    from . import _kernels  # imported on first use: it loads numba
+
+    return _kernels if _kernels.enabled() else None
 
 
 if hasattr(np, "vecdot"):  # numpy >= 2.0: a fused gufunc, ~3x faster here than matmul
@@ -959,6 +1025,7 @@ def project_linear(
             f"{data.background_kind!r}), found {background!r}. Call prepare_map with the "
             "background wanted.", field="background")
     elif (data.energy_ev is not None and isinstance(basis, MapBasis)
+          and data.energy_ev is not basis.energy_ev
           and not np.allclose(data.energy_ev, basis.energy_ev, rtol=0, atol=1e-12)):
         raise DataError("expected the prepared map and the basis to share one energy axis, "
                         "found different axes. Prepare the map with the basis's energies.",
@@ -966,48 +1033,27 @@ def project_linear(
     m = data.columns.shape[1]
     sw, rhs = data.sqrt_weight, data.weighted_rhs
 
-    g_bb = np.empty((n_w, n_a, n_k, n_k))
-    cross = np.empty((n_w, n_a, n_k, m + 1))
-    for ws, as_ in _iter_blocks(n_w, n_a, n_k * n_e):
-        blk = get(ws, as_)
-        blk *= sw[as_, None, :]
-        g_bb[ws, as_] = _rowdot(blk[..., :, None, :], blk[..., None, :, :])
-        cross[ws, as_] = _rowdot(blk[..., :, None, :], rhs[as_, None, :, :])
-
-    c0 = data.chi2_background
-    if m:  # eliminate the background per angle (Schur complement)
-        g_bc = cross[..., :m]
-        t = g_bc @ data.background_pinv  # (W, A, K, m)
-        g_red = g_bb - t @ g_bc.swapaxes(-1, -2)
-        h_red = cross[..., m] - np.einsum("waki,ai->wak", t, data.h_background)
+    kernels = _compiled_kernels(basis)
+    if kernels is not None:  # fused compiled pass: line shapes and Gram sums together
+        mode, args = basis._fused
+        gram = {"lorentz": kernels.gram_lorentz, "disorder": kernels.gram_disorder,
+                "reflectance": kernels.gram_reflectance}[mode]
+        g_bb, cross = gram(*args, sw, rhs)
     else:
-        g_red = g_bb
-        h_red = cross[..., 0]
-    diag = np.diagonal(g_bb, axis1=-2, axis2=-1)  # un-reduced scale (W, A, K)
+        g_bb = np.empty((n_w, n_a, n_k, n_k))
+        cross = np.empty((n_w, n_a, n_k, m + 1))
+        for ws, as_ in _iter_blocks(n_w, n_a, n_k * n_e):
+            blk = get(ws, as_)
+            blk *= sw[as_, None, :]
+            g_bb[ws, as_] = _rowdot(blk[..., :, None, :], blk[..., None, :, :])
+            cross[ws, as_] = _rowdot(blk[..., :, None, :], rhs[as_, None, :, :])
 
-    best = np.broadcast_to(c0, (n_w, n_a)).copy()
-    amps = np.zeros((n_w, n_a, n_k))
-    for size in range(1, n_k + 1):
-        for subset in combinations(range(n_k), size):
-            idx = np.array(subset)
-            sub_h = h_red[..., idx]
-            x, ok = _solve_subset(g_red[..., idx[:, None], idx[None, :]], sub_h, diag[..., idx])
-            if nonneg:
-                ok &= np.all(x >= 0.0, axis=-1)
-            chi = c0 - np.einsum("...i,...i->...", np.where(ok[..., None], x, 0.0), sub_h)
-            better = ok & (chi < best)
-            best = np.where(better, chi, best)
-            if size == n_k:
-                amps = np.where(better[..., None], x, amps)
-            else:
-                full = np.zeros_like(amps)
-                full[..., idx] = x
-                amps = np.where(better[..., None], full, amps)
-    # a non-finite basis (e.g. parameters exactly at an exceptional point) must not be
-    # silently replaced by the background-only fit: give NaN, which the sampler reports
-    broken = ~(np.isfinite(g_bb).all(axis=(-2, -1)) & np.isfinite(cross).all(axis=(-2, -1)))
-    best[broken] = np.nan
-    chi2_angle = np.where(best < 0.0, 0.0, best)  # rounding below zero, NaN kept
+    if kernels is not None and n_k <= kernels.MAX_SOLVE_COLUMNS:
+        chi2_angle, amps = kernels.solve_rows(
+            g_bb, cross, data.background_pinv, data.h_background, data.chi2_background,
+            nonneg=nonneg, rtol=_RTOL_SINGULAR)
+    else:
+        chi2_angle, amps = _solve_rows(g_bb, cross, data, nonneg)
     chi2 = chi2_angle.sum(axis=-1).reshape(batch)
     if not return_parts:
         return chi2
