@@ -10,6 +10,17 @@ failing disk meets only a plain file write (never a half-open HDF5 handle inside
 library), and the error is the same clear :class:`OSError` for every kind of result.
 New files get the permissions an ordinary ``open(..., "w")`` would give them (``0666``
 less the umask); a replaced file keeps its permissions.
+
+The temporary file is named ``.<target name>.<host>-<pid>.<random>.part``.  A writer
+killed outright (SIGKILL, power cut) leaves it behind; the next write of the same
+target removes such leftovers when it can tell their writer is gone: made on this host
+by a process that no longer exists, or made on another host and untouched for
+:data:`STALE_AGE_S` seconds.  Temporary files of other targets or of running writers,
+and files of any other name, are never touched.
+
+Files written in place by a library (the HDF5 checkpoint of a run) can ask
+:func:`check_room` before a large write whether it will fit, and turn the library's
+I/O failures into the same clear error with :func:`write_error`.
 """
 
 from __future__ import annotations
@@ -18,10 +29,14 @@ import contextlib
 import errno as _errno
 import io as _io
 import json
+import logging
 import os
 import re
+import shutil
+import socket
 import stat
 import tempfile
+import time
 from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import Any
@@ -34,7 +49,12 @@ __all__ = [
     "write_json",
     "write_netcdf",
     "save_figure",
+    "write_error",
+    "check_room",
+    "STALE_AGE_S",
 ]
+
+log = logging.getLogger(__name__)
 
 _NO_SPACE = {_errno.ENOSPC, _errno.EFBIG, getattr(_errno, "EDQUOT", _errno.ENOSPC)}
 _NO_PERMISSION = {_errno.EACCES, _errno.EPERM, _errno.EROFS}
@@ -54,27 +74,210 @@ def _umask() -> int:
     return mask
 
 
-def _hint(code: int | None) -> str:
+def _hint(code: int | None, target: Path) -> str:
     if code in _NO_SPACE:
         return (
             "; the disk is full or a file-size limit was reached: free some space or "
             "write the results to another folder"
         )
     if code in _NO_PERMISSION:
-        return "; the folder is read-only for this user: choose another output folder"
+        folder = target.parent if str(target.parent) else Path(".")
+        return (
+            f"; the folder {folder} is read-only for this user: choose another output "
+            "folder or make this one writable"
+        )
     return ""
 
 
-def _write_error(target: Path, exc: BaseException) -> OSError | None:
-    """A clear :class:`OSError` for a failed write of ``target`` (None: ``exc`` is no I/O error)."""
-    if isinstance(exc, OSError):
+def _clear_oserror(code: int | None, message: str) -> OSError:
+    """An OSError (the subclass ``code`` selects, e.g. PermissionError) whose text is
+    ``message`` alone, without the ``[Errno N]`` prefix; ``errno`` is still set."""
+    cls = type(OSError(code, "")) if code is not None else OSError
+    exc = cls(message)
+    exc.errno = code
+    return exc
+
+
+def write_error(target: str | os.PathLike, exc: BaseException, *,
+                note: str | None = None) -> OSError | None:
+    """A clear :class:`OSError` for a failed write of ``target``.
+
+    Parameters
+    ----------
+    target
+        The file that was being written.
+    exc
+        What the write raised: an :class:`OSError`, or a :class:`RuntimeError` in which
+        HDF5 reports the failed system call (``errno = 28, error message = ...``).
+    note
+        A last clause for the message (for example how to continue afterwards).
+
+    Returns
+    -------
+    OSError or None
+        ``cannot write TARGET: REASON; WHAT WENT WRONG: FIX[; NOTE]`` with ``errno`` set
+        (a :class:`PermissionError` for a read-only folder), or ``None`` when ``exc`` is
+        no I/O error.
+    """
+    target = Path(target)
+    found = _HDF5_ERRNO.search(str(exc)) if isinstance(exc, (OSError, RuntimeError)) else None
+    if found:  # HDF5 wraps the system call's error in its own text: keep the useful part
+        code, reason = int(found.group(1)), found.group(2)
+    elif isinstance(exc, OSError):
         code, reason = exc.errno, exc.strerror or str(exc)
-    elif isinstance(exc, RuntimeError) and (m := _HDF5_ERRNO.search(str(exc))):
-        code, reason = int(m.group(1)), m.group(2)
     else:
         return None
-    message = f"cannot write {target}: {reason}{_hint(code)}"
-    return OSError(code, message) if code is not None else OSError(message)
+    message = f"cannot write {target}: {reason}{_hint(code, target)}"
+    if note:
+        message += f"; {note}"
+    return _clear_oserror(code, message)
+
+
+def _size(n_bytes: float) -> str:
+    for unit, scale in (("GB", 1e9), ("MB", 1e6), ("kB", 1e3)):
+        if abs(n_bytes) >= scale:
+            return f"{n_bytes / scale:.1f} {unit}"
+    return f"{int(n_bytes)} bytes"
+
+
+def _file_size_limit() -> int | None:
+    """The soft RLIMIT_FSIZE in bytes, or None (no limit, or no such limit on this OS)."""
+    try:
+        import resource
+    except ImportError:  # not on this platform
+        return None
+    soft, _ = resource.getrlimit(resource.RLIMIT_FSIZE)
+    return None if soft == resource.RLIM_INFINITY or soft < 0 else int(soft)
+
+
+def check_room(target: str | os.PathLike, n_bytes: int, *, purpose: str = "the next write",
+               note: str | None = None) -> None:
+    """Raise a clear :class:`OSError` unless ``n_bytes`` more can be written to ``target``.
+
+    Two limits are checked: the space free for this user on the target's file system
+    (:func:`shutil.disk_usage`) and, where the platform has one, the process's file-size
+    limit (``RLIMIT_FSIZE``, ``ulimit -f``) against the target's current size plus
+    ``n_bytes``.  Meant for files a library writes in place, before it is asked to write
+    what cannot fit.
+
+    Parameters
+    ----------
+    target
+        The file that will grow (it may not exist yet).
+    n_bytes
+        The bytes the write needs, margin included.
+    purpose
+        What needs them, for the message (``"the next 100 MCMC steps"``).
+    note
+        A last clause for the message (see :func:`write_error`).
+
+    Raises
+    ------
+    OSError
+        ``errno`` ENOSPC (not enough free space) or EFBIG (file-size limit), with a
+        message naming ``target``, both sizes and the fix; nothing is written.
+    """
+    target = Path(target)
+    folder = target.parent if str(target.parent) else Path(".")
+    while not folder.exists() and folder != folder.parent:
+        folder = folder.parent
+    n_bytes = int(n_bytes)
+    problem = None
+    try:
+        free = shutil.disk_usage(folder).free
+    except OSError:  # cannot tell: let the write itself report
+        free = None
+    if free is not None and free < n_bytes:
+        problem = (_errno.ENOSPC, f"about {_size(n_bytes)} needed for {purpose}, only "
+                   f"{_size(free)} free on its file system")
+    limit = _file_size_limit()
+    if problem is None and limit is not None:
+        try:
+            current = target.stat().st_size
+        except OSError:
+            current = 0
+        if current + n_bytes > limit:
+            problem = (_errno.EFBIG, f"about {_size(n_bytes)} needed for {purpose}, only "
+                       f"{_size(max(0, limit - current))} left under this process's "
+                       f"file-size limit of {_size(limit)} (ulimit -f)")
+    if problem is None:
+        return
+    code, detail = problem
+    message = f"cannot write {target}: {os.strerror(code)} ({detail}){_hint(code, target)}"
+    if note:
+        message += f"; {note}"
+    raise _clear_oserror(code, message)
+
+
+#: seconds after which a leftover temporary file of another host's writer counts as stale
+STALE_AGE_S = 24 * 3600.0
+_RANDOM_PART = re.compile(r"[a-z0-9_]{8}")  # what tempfile.mkstemp puts between prefix/suffix
+
+
+def _host_tag() -> str:
+    """This host's name reduced to letters, digits and '-' (it sits inside file names)."""
+    return re.sub(r"[^A-Za-z0-9-]", "-", socket.gethostname())[:32] or "host"
+
+
+def _temp_owner(name: str, target_name: str) -> tuple[str, int] | None:
+    """(host, pid) of a temporary file name made for ``target_name``, or None if not one.
+
+    Parsed from the right: ``.<target>.<host>-<pid>.<random>.part`` where neither host nor
+    random part holds a dot, so a file belongs to exactly one target name.
+    """
+    if not name.endswith(".part"):
+        return None
+    head, _, random_part = name[: -len(".part")].rpartition(".")
+    head, _, owner = head.rpartition(".")
+    host, _, pid = owner.rpartition("-")
+    if head != "." + target_name or not _RANDOM_PART.fullmatch(random_part):
+        return None
+    if not pid.isdigit() or not re.fullmatch(r"[A-Za-z0-9-]+", host):
+        return None
+    return host, int(pid)
+
+
+def _process_exists(pid: int) -> bool:
+    if os.name != "posix":  # no harmless probe elsewhere: trust the age rule only
+        return True
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except OSError:  # e.g. another user's process
+        return True
+    return True
+
+
+def _remove_stale_temporaries(folder: Path, target_name: str) -> None:
+    """Remove temporary files of ``target_name`` left by writers that are provably gone."""
+    host, me, now = _host_tag(), os.getpid(), time.time()
+    prefix = f".{target_name}."
+    try:
+        with os.scandir(folder) as it:
+            entries = [e for e in it if e.name.startswith(prefix)]
+    except OSError:
+        return
+    for entry in entries:
+        owner = _temp_owner(entry.name, target_name)
+        if owner is None:
+            continue
+        try:
+            info = entry.stat(follow_symlinks=False)
+        except OSError:
+            continue
+        if not stat.S_ISREG(info.st_mode):
+            continue
+        if owner[0] == host:  # a writer on this host: stale once its process is gone
+            stale = owner[1] != me and not _process_exists(owner[1])
+        else:  # another host's writer cannot be asked: stale only when long untouched
+            stale = now - info.st_mtime > STALE_AGE_S
+        if stale:
+            try:
+                os.unlink(entry.path)
+            except OSError:
+                continue
+            log.info("removed %s, left by an interrupted write", entry.path)
 
 
 @contextlib.contextmanager
@@ -84,15 +287,19 @@ def atomic_path(target: str | os.PathLike) -> Iterator[Path]:
     The caller writes the file at the yielded path by any means (a library's own
     writer, for example).  On any exception the temporary file is removed and the
     target is untouched; I/O errors (including those HDF5 reports as
-    :class:`RuntimeError`) are raised as :class:`OSError` naming ``target``.
+    :class:`RuntimeError`) are raised as :class:`OSError` naming ``target``.  Temporary
+    files of ``target`` left by killed writers are removed first (see the module notes).
     """
     target = Path(target)
     folder = target.parent if str(target.parent) else Path(".")
     try:
         folder.mkdir(parents=True, exist_ok=True)
-        fd, tmp_name = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".part", dir=folder)
+        _remove_stale_temporaries(folder, target.name)
+        fd, tmp_name = tempfile.mkstemp(
+            prefix=f".{target.name}.{_host_tag()}-{os.getpid()}.", suffix=".part", dir=folder
+        )
     except OSError as exc:
-        raise _write_error(target, exc) from exc
+        raise write_error(target, exc) from exc
     tmp = Path(tmp_name)
     try:
         try:
@@ -117,7 +324,7 @@ def atomic_path(target: str | os.PathLike) -> Iterator[Path]:
     except BaseException as exc:
         with contextlib.suppress(OSError):
             tmp.unlink()
-        clear = _write_error(target, exc)
+        clear = write_error(target, exc)
         if clear is not None and str(target) not in str(exc):
             raise clear from exc
         raise

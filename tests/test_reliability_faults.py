@@ -455,8 +455,13 @@ def test_permission_refused_is_reported_and_the_old_file_kept(tmp_path, monkeypa
     else:
         monkeypatch.setattr(io.os, "replace", refuse)
     with pytest.raises(PermissionError, match=r"cannot write .*summary\.json: Permission "
-                       r"denied; the folder is read-only"):
+                       r"denied; the folder .* is read-only .*: choose another output "
+                       r"folder") as info:
         io.write_json(target, {"new": 1})
+    message = str(info.value)
+    assert f"the folder {tmp_path} is read-only" in message  # names the folder
+    assert "\n" not in message and "[Errno" not in message  # one clean line
+    assert info.value.errno == errno.EACCES
     assert target.read_text() == '{"old": true}\n'
     assert sorted(p.name for p in tmp_path.iterdir()) == ["summary.json"]
 
