@@ -64,13 +64,29 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("dispersion", help="fit a coupled-oscillator model to an angle-resolved map")
     p.add_argument("map", type=Path)
-    p.add_argument("--model", choices=["two", "three"], default="two")
+    p.add_argument("--model", choices=["two", "three", "weak"], default="two",
+                   help="coupled oscillators (two, three) or uncoupled modes (weak)")
     p.add_argument("--kind", choices=["emission", "reflectance"], default=None)
     p.add_argument("--peaks-only", action="store_true", help="fit the peak table only (fast)")
     p.add_argument("--priors", type=Path, default=None, help="TOML file of priors")
     p.add_argument("--strict", action="store_true", help="4 ensembles, nested R-hat gate")
     p.add_argument("--wavelength-medium", choices=["vacuum", "air"], default=None)
     _add_common_fit_options(p)
+
+    p = sub.add_parser("compare", help="rank weak coupling, two and three oscillators on a map "
+                       "(PSIS-LOO over spectra)")
+    p.add_argument("map", type=Path)
+    p.add_argument("--models", default="weak,two,three",
+                   help="comma-separated models to compare (default weak,two,three)")
+    p.add_argument("--kind", choices=["emission", "reflectance"], default=None)
+    p.add_argument("--priors", type=Path, default=None, help="TOML file of priors")
+    p.add_argument("--wavelength-medium", choices=["vacuum", "air"], default=None)
+    p.add_argument("--seed", type=int, default=None, help="root seed (recorded in the result)")
+    p.add_argument("--out", type=Path, default=None, help="output folder")
+    p.add_argument("--max-steps", type=int, default=None, help="MCMC step limit per model")
+    p.add_argument("--walkers", type=int, default=None, help="walkers per ensemble")
+    p.add_argument("--figures", action="store_true", help="also write each model's figures")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
 
     p = sub.add_parser("power", help="fit a mean-field model to a pump-power series")
     p.add_argument("series", type=Path, help="observable table (CSV, netCDF) or spectra cube")
@@ -254,10 +270,33 @@ def _cmd_dispersion(args) -> int:
     return EXIT_OK if result.converged else EXIT_NOT_CONVERGED
 
 
+def _cmd_compare(args) -> int:
+    from .workflows.dispersion_compare import compare_dispersion_models
+
+    out = args.out or Path("polkit-out") / f"{args.map.stem}-compare"
+    result = compare_dispersion_models(
+        args.map,
+        models=[m.strip() for m in args.models.split(",") if m.strip()],
+        kind=args.kind,
+        priors=args.priors,
+        seed=args.seed,
+        out=out,
+        max_steps=args.max_steps,
+        n_walkers=args.walkers,
+        progress=not args.quiet,
+        wavelength_medium=args.wavelength_medium,
+        figures=args.figures,
+    )
+    print(result.table())
+    print(f"results written to {out}")
+    return EXIT_OK if result.converged else EXIT_NOT_CONVERGED
+
+
 _COMMANDS = {
     "demo": _cmd_demo,
     "inspect": _cmd_inspect,
     "dispersion": _cmd_dispersion,
+    "compare": _cmd_compare,
     "power": _cmd_power,
     "budget": _cmd_budget,
     "survey": _cmd_survey,

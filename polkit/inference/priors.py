@@ -29,7 +29,7 @@ from scipy import special
 
 from ..errors import ConfigError
 
-__all__ = ["PRIOR_KINDS", "Prior", "Parameter", "ParameterSpace", "apply_priors"]
+__all__ = ["PRIOR_KINDS", "Prior", "Parameter", "ParameterSpace", "apply_priors", "read_prior_file"]
 
 #: The prior kinds and the numeric keys each one needs, in order.
 PRIOR_KINDS: dict[str, tuple[str, ...]] = {
@@ -508,6 +508,30 @@ class ParameterSpace:
         )
 
 
+def read_prior_file(path: str | os.PathLike) -> dict[str, Any]:
+    """The tables of a TOML prior file, ``{name: {prior, numbers, units}}`` (not checked).
+
+    Raises
+    ------
+    ConfigError
+        Naming the file: missing, unreadable or not valid TOML.
+    """
+    path = Path(path)
+    try:
+        with open(path, "rb") as fh:
+            return tomllib.load(fh)
+    except FileNotFoundError:
+        raise ConfigError("prior file not found; check the path", path=path) from None
+    except OSError as exc:
+        raise ConfigError(f"cannot read the prior file: {exc}", path=path) from None
+    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
+        raise ConfigError(
+            f"not valid TOML ({exc}); expected tables like [name] with prior, numbers "
+            f"and units",
+            path=path,
+        ) from None
+
+
 def apply_priors(
     space: ParameterSpace,
     source: Mapping[str, Any] | str | os.PathLike,
@@ -547,22 +571,7 @@ def apply_priors(
         kinds; an unreadable or malformed TOML file.
     """
     if isinstance(source, (str, os.PathLike)):
-        path = Path(source)
-        try:
-            with open(path, "rb") as fh:
-                source = tomllib.load(fh)
-        except FileNotFoundError:
-            raise ConfigError(
-                "prior file not found; check the path", path=path
-            ) from None
-        except OSError as exc:
-            raise ConfigError(f"cannot read the prior file: {exc}", path=path) from None
-        except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
-            raise ConfigError(
-                f"not valid TOML ({exc}); expected tables like [name] with prior, numbers "
-                f"and units",
-                path=path,
-            ) from None
+        source, path = read_prior_file(source), Path(source)
     if not isinstance(source, Mapping):
         raise ConfigError(
             f"expected a dict of {{parameter name: prior table}}, got {type(source).__name__}",

@@ -72,6 +72,8 @@ __all__ = [
 log = logging.getLogger(__name__)
 
 DEFAULT_STEPS = {"max_steps": 10000, "min_steps": 400, "check_every": 100}
+#: the model name a result records, per model option
+MODEL_NAMES = {"weak": "weak_coupling", "two": "two_oscillator", "three": "three_oscillator"}
 #: the noise model of the peak-table path
 PEAK_TABLE_NOISE = "peak-table errors from the per-angle line fits, times noise_scale"
 
@@ -113,7 +115,7 @@ def prepare_dispersion(
     src = open_map(source, model=model, kind=kind, wavelength_medium=wavelength_medium,
                    load_options=load_options).cropped(angle_window, energy_window)
     table, guess, space = peak_start(src.data, n_excitons=src.n_excitons, kind=src.kind,
-                                     priors=priors, profile=profile)
+                                     priors=priors, profile=profile, coupling=src.coupling)
     x0 = start_vector(space, guess)
     problem = map_problem(src, space, table=table)
     return problem, DispersionStart(src, table, guess, x0)
@@ -196,7 +198,7 @@ def build_dispersion_result(
         output,
         space,
         derived=derived,
-        model=f"{source.model}_oscillator",
+        model=MODEL_NAMES[source.model],
         kind=source.kind,
         observed=observed,
         provenance=prov,
@@ -237,7 +239,9 @@ def fit_dispersion(
     source
         A map file (any format :func:`polkit.load_map` reads) or a canonical map.
     model
-        ``"two"`` (photon + one exciton) or ``"three"`` (photon + two excitons).
+        ``"two"`` (photon + one exciton), ``"three"`` (photon + two excitons) or ``"weak"``
+        (the uncoupled cavity mode and exciton line, ``g = 0``: the alternative of a model
+        comparison, :func:`polkit.workflows.dispersion_compare.compare_dispersion_models`).
     kind
         ``"emission"`` or ``"reflectance"``; default from the map's attributes.
     peaks_only

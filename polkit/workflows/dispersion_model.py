@@ -11,6 +11,8 @@ Sampled parameters (units in brackets)::
     rabi_splitting [meV] (2g, the full splitting at resonance)
     cavity_linewidth [meV]   exciton_linewidth [meV]   (FWHM)
     three oscillators: exciton2_energy [eV], rabi_splitting2 [meV], exciton2_linewidth [meV]
+    weak coupling: no rabi_splitting (g = 0); the bare cavity mode and the bare exciton
+                 line each get their own amplitude (:mod:`polkit.models.bare_modes`)
     reflectance: mirror_fraction [1] (kappa / gamma_C, kappa the top-mirror coupling in
                  r = r_bg (1 - i kappa G_CC); 0 < kappa <= gamma_C, since the top-mirror loss is
                  part of the cavity loss: kappa = gamma_C is a lossless one-sided cavity, kappa =
@@ -34,9 +36,11 @@ from ..errors import DataError, FitError
 from ..inference.priors import Parameter, ParameterSpace, Prior
 from ..models import dispersion as disp
 from ..models import spectral
+from ..models.bare_modes import bare_mode_basis
 
 __all__ = [
     "MODELS",
+    "COUPLED_MODELS",
     "DispersionProblem",
     "noise_inverse_variance",
     "guess_from_peaks",
@@ -44,8 +48,10 @@ __all__ = [
 ]
 
 MEV = 1e-3
-#: model name -> number of exciton resonances
-MODELS = {"two": 1, "three": 2}
+#: model name -> number of exciton resonances ("weak": the uncoupled modes, g = 0)
+MODELS = {"weak": 1, "two": 1, "three": 2}
+#: the coupled-oscillator models (those with a Rabi splitting)
+COUPLED_MODELS = ("two", "three")
 
 _LONG_NAMES = {
     "exciton_energy": "exciton energy",
@@ -231,6 +237,7 @@ def default_space(
     n_excitons: int = 1,
     kind: str = "emission",
     sample_noise: bool = True,
+    coupling: str = "strong",
 ) -> ParameterSpace:
     """Default priors derived from the data's energy window and the starting point.
 
@@ -238,6 +245,7 @@ def default_space(
     the Rabi splitting is uniform up to the window width; linewidths are log-uniform
     from 1 ueV to the window width (scale-free: equal belief per decade); n_eff is
     uniform over 1.0-5.0, which covers organic, perovskite and III-V cavities.
+    ``coupling="weak"`` leaves out the Rabi splitting (the uncoupled-modes model).
     # common practice, no published source
     """
     lo, hi = float(np.min(energy)), float(np.max(energy))
@@ -271,6 +279,8 @@ def default_space(
             _LONG_NAMES["exciton_linewidth"],
         ),
     ]
+    if coupling == "weak":
+        params = [p for p in params if p.name != "rabi_splitting"]
     if n_excitons == 2:
         params += [
             Parameter(
@@ -328,9 +338,14 @@ class DispersionProblem:
     table: xr.Dataset | None = None
     background: str = "constant"
     noise_note: str = ""
+    coupling: str = "strong"
     _n_pixels: int = field(init=False, default=0)
 
     def __post_init__(self):
+        if self.coupling not in ("strong", "weak") or (
+                self.coupling == "weak" and self.n_excitons != 1):
+            raise FitError(f"expected coupling 'strong', or 'weak' with one exciton; found "
+                           f"{self.coupling!r} with {self.n_excitons} excitons.")
         self.set_noise(self.inv_var, self.noise_note)
         self._idx = {n: i for i, n in enumerate(self.space.names)}
         if self.table is not None:
@@ -348,13 +363,25 @@ class DispersionProblem:
         # amplitudes or reflectance scale, plus the background): integrating those linear
         # parameters out under flat priors turns -N log(s) into -(N - K) log(s)
         # (Gelman et al., Bayesian Data Analysis, 3rd ed., section 14.2)
-        n_columns = (1 if self.kind == "reflectance" else self.n_excitons + 1) + (
+        n_columns = self.n_linear_columns + (
             {"constant": 1, "linear": 2}.get(self.background, 0))
         active = int(np.count_nonzero((self.inv_var > 0).any(axis=1)))
         self._n_dof = max(self._n_pixels - active * n_columns, 1)
         self._weighted = spectral.prepare_map(
             self.y, self.inv_var, background=self.background, energy_ev=self.energy
         )
+
+    @property
+    def n_linear_columns(self) -> int:
+        """Basis amplitudes solved per angle (the background columns not counted)."""
+        if self.coupling == "weak":
+            return 2
+        return 1 if self.kind == "reflectance" else self.n_excitons + 1
+
+    @property
+    def n_background_columns(self) -> int:
+        """Background coefficients solved per angle."""
+        return {"constant": 1, "linear": 2}.get(self.background, 0)
 
     # -- mapping ------------------------------------------------------------------
     def physics(self, theta: np.ndarray) -> dict:
@@ -370,7 +397,7 @@ class DispersionProblem:
         if self.n_excitons == 1:
             p.update(
                 e_x=c["exciton_energy"],
-                g=0.5 * c["rabi_splitting"] * MEV,
+                g=0.5 * self._rabi(c) * MEV,
                 gamma_x=c["exciton_linewidth"] * MEV,
             )
         else:
@@ -381,6 +408,13 @@ class DispersionProblem:
             )
         return p
 
+    @staticmethod
+    def _rabi(c: Mapping[str, np.ndarray]) -> np.ndarray:
+        """The Rabi splitting column (meV), zero for the uncoupled-modes model."""
+        if "rabi_splitting" in c:
+            return c["rabi_splitting"]
+        return np.zeros_like(c["exciton_energy"])
+
     def _noise_scale(self, theta: np.ndarray) -> np.ndarray:
         if "noise_scale" in self._idx:
             return theta[:, self._idx["noise_scale"]]
@@ -389,9 +423,15 @@ class DispersionProblem:
     # -- whole map ----------------------------------------------------------------
     def basis(self, theta: np.ndarray):
         p = self.physics(theta)
+        kappa = None
         if self.kind == "reflectance":
             t = np.atleast_2d(theta)
             kappa = t[:, self._idx["mirror_fraction"]] * t[:, self._idx["cavity_linewidth"]] * MEV
+        if self.coupling == "weak":
+            return bare_mode_basis(self.in_plane, self.energy, e_c0=p["e_c0"], n_eff=p["n_eff"],
+                                   e_x=p["e_x"], gamma_c=p["gamma_c"], gamma_x=p["gamma_x"],
+                                   kappa=kappa, axis=self.axis)
+        if kappa is not None:
             return spectral.reflectance_basis(self.in_plane, self.energy, kappa=kappa, **p)
         return spectral.emission_basis(self.in_plane, self.energy, **p)
 
@@ -458,7 +498,8 @@ class DispersionProblem:
         t = draws.reshape(-1, draws.shape[-1])
         c = {n: t[:, i] for n, i in self._idx.items()}
         ex, ec0, n = c["exciton_energy"], c["cavity_energy"], c["n_eff"]
-        g = 0.5 * c["rabi_splitting"] * MEV
+        rabi = self._rabi(c)
+        g = 0.5 * rabi * MEV
         gc, gx = c["cavity_linewidth"], c["exciton_linewidth"]
         out: dict[str, tuple[np.ndarray, str, str]] = {}
         out["detuning"] = ((ec0 - ex) / MEV, "meV", "detuning E_C0 - E_X")
@@ -498,7 +539,7 @@ class DispersionProblem:
             "1",
             "cavity quality factor E_C0 / gamma_C",
         )
-        strong = (c["rabi_splitting"] > 0.5 * (gc + gx)).astype(float)
+        strong = (rabi > 0.5 * (gc + gx)).astype(float)
         if "mirror_fraction" in c:
             out["mirror_coupling"] = (
                 c["mirror_fraction"] * gc,

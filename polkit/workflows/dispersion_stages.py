@@ -78,7 +78,7 @@ class MapInput:
     source_name
         The file path as given, or the map's ``source`` attribute.
     model
-        ``"two"`` or ``"three"`` oscillators.
+        ``"two"`` or ``"three"`` oscillators, or ``"weak"`` (uncoupled modes).
     kind
         The spectral model: ``"emission"`` (also for transmission) or ``"reflectance"``.
     """
@@ -93,6 +93,11 @@ class MapInput:
     def axis(self) -> str:
         """The in-plane dimension, ``angle`` or ``k``."""
         return in_plane_axis(self.data)
+
+    @property
+    def coupling(self) -> str:
+        """``"weak"`` for the uncoupled-modes model, else ``"strong"``."""
+        return "weak" if self.model == "weak" else "strong"
 
     @property
     def n_excitons(self) -> int:
@@ -165,7 +170,8 @@ def open_map(
         Unknown model or kind, or a bad map (naming the file and the field).
     """
     if model not in MODELS:
-        raise DataError(f"expected model 'two' or 'three', found {model!r}.", field="model")
+        raise DataError(f"expected model 'weak', 'two' or 'three', found {model!r}.",
+                        field="model")
     da, sha, source_name = _load(source, wavelength_medium, load_options)
     kind = kind or da.attrs.get("kind", "emission")
     if kind == "transmission":
@@ -213,6 +219,7 @@ def peak_start(
     kind: str,
     priors: str | os.PathLike | dict | None = None,
     profile: str = "lorentzian",
+    coupling: str = "strong",
 ) -> tuple[xr.Dataset, dict[str, float], ParameterSpace]:
     """Peak table, automatic guess and parameter space of a map.
 
@@ -228,6 +235,9 @@ def peak_start(
         TOML file or dict of priors over the defaults (keys: parameter names).
     profile
         Peak shape of the table, ``"lorentzian"`` or ``"voigt"``.
+    coupling
+        ``"strong"`` (coupled oscillators) or ``"weak"`` (uncoupled modes: no Rabi
+        splitting among the parameters).
 
     Returns
     -------
@@ -240,7 +250,8 @@ def peak_start(
     # peak_table warns (DataWarning) when only one branch is visible: g and detuning degenerate
     table = peak_table(da, n_peaks=n_excitons + 1, profile=profile)
     guess = guess_from_peaks(table, n_excitons=n_excitons)
-    space = default_space(da["energy"].values, guess, n_excitons=n_excitons, kind=kind)
+    space = default_space(da["energy"].values, guess, n_excitons=n_excitons, kind=kind,
+                          coupling=coupling)
     if priors is not None:
         space = apply_priors(space, priors, path=priors if not isinstance(priors, dict) else None)
     return table, guess, space
@@ -284,6 +295,7 @@ def map_problem(source: MapInput, space: ParameterSpace, *,
         kind=source.kind,
         table=table,
         noise_note=noise_note,
+        coupling=source.coupling,
     )
 
 

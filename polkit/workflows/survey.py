@@ -59,7 +59,7 @@ import xarray as xr
 
 from ..errors import ConfigError, DataError, PolkitError
 from ..io import write_json, write_netcdf, write_text
-from .dispersion_model import MODELS
+from .dispersion_model import COUPLED_MODELS as MODELS
 
 __all__ = [
     "run_survey",
