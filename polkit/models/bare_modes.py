@@ -32,14 +32,10 @@ from .spectral import MapBasis
 __all__ = ["bare_mode_basis"]
 
 
-def _flat(name: str, value: ArrayLike, n: int) -> NDArray:
-    arr = np.asarray(value, dtype=float).reshape(-1)
-    if arr.size not in (1, n):
-        raise DataError(
-            f"expected {name} as a scalar or one value per walker ({n}), found {arr.size}.",
-            field=name,
-        )
-    return np.broadcast_to(arr, (n,))
+def _flat(name: str, value: ArrayLike, batch: tuple[int, ...]) -> NDArray:
+    arr = np.asarray(value, dtype=float)
+    n = int(np.prod(batch)) if batch else 1
+    return np.broadcast_to(arr, batch).reshape(n)
 
 
 def bare_mode_basis(
@@ -77,7 +73,8 @@ def bare_mode_basis(
     Returns
     -------
     MapBasis
-        Lazy ``(W, A, 2, E)`` basis with columns ``("cavity", "exciton")``.
+        Lazy ``S + (A, 2, E)`` basis (``S`` the parameters' batch shape) with columns
+        ``("cavity", "exciton")``.
     """
     if axis not in ("angle", "k"):
         raise DataError(f"expected axis 'angle' (degree) or 'k' (1/um), found {axis!r}.",
@@ -89,10 +86,18 @@ def bare_mode_basis(
             f"expected 1-D {axis} and energy axes, found shapes {grid.shape} and {energy.shape}.",
             field="axes",
         )
-    sizes = [np.size(v) for v in (e_c0, n_eff, e_x, gamma_c, gamma_x, kappa) if v is not None]
-    n = max(sizes)
-    ec0, n_eff_, ex = _flat("e_c0", e_c0, n), _flat("n_eff", n_eff, n), _flat("e_x", e_x, n)
-    gc, gx = _flat("gamma_c", gamma_c, n), _flat("gamma_x", gamma_x, n)
+    values = {"e_c0": e_c0, "n_eff": n_eff, "e_x": e_x, "gamma_c": gamma_c, "gamma_x": gamma_x}
+    if kappa is not None:
+        values["kappa"] = kappa
+    try:
+        batch = np.broadcast_shapes(*(np.shape(v) for v in values.values()))
+    except ValueError as exc:
+        raise DataError(
+            "expected physics parameters of one batch shape (e.g. all (W,)), found shapes "
+            f"{ {k: np.shape(v) for k, v in values.items()} }.", field="parameters") from exc
+    flat = {k: _flat(k, v, batch) for k, v in values.items()}
+    ec0, n_eff_, ex = flat["e_c0"], flat["n_eff"], flat["e_x"]
+    gc, gx = flat["gamma_c"], flat["gamma_x"]
     for name, width in (("gamma_c", gc), ("gamma_x", gx)):
         if not np.all(np.isfinite(width)) or np.any(width <= 0):
             raise DataError(f"expected linewidths > 0, found {name} = {width.min():g} eV.",
@@ -106,7 +111,7 @@ def bare_mode_basis(
         lx = (hx[:, None] / np.pi) / (ux * ux + (hx * hx)[:, None])
     else:
         lx = -(hx * hx)[:, None] / (ux * ux + (hx * hx)[:, None])
-        kap = _flat("kappa", kappa, n)
+        kap = flat["kappa"]
 
     def block(ws: slice, as_: slice) -> NDArray:
         u = energy[None, None, :] - e_c[ws, as_, None]  # (w, a, E)
@@ -122,6 +127,6 @@ def bare_mode_basis(
         out[:, :, 1, :] = lx[ws, None, :]
         return out
 
-    return MapBasis((n,), grid.size, 2, energy, block,
+    return MapBasis(batch, grid.size, 2, energy, block,
                     kind="emission" if kappa is None else "reflectance",
                     columns=("cavity", "exciton"))
