@@ -74,6 +74,14 @@ def _umask() -> int:
     return mask
 
 
+def _existing_folder(target: Path) -> Path:
+    """The folder of ``target``, or its nearest ancestor that exists."""
+    folder = target.parent if str(target.parent) else Path(".")
+    while not folder.exists() and folder != folder.parent:
+        folder = folder.parent
+    return folder
+
+
 def _hint(code: int | None, target: Path) -> str:
     if code in _NO_SPACE:
         return (
@@ -81,7 +89,7 @@ def _hint(code: int | None, target: Path) -> str:
             "write the results to another folder"
         )
     if code in _NO_PERMISSION:
-        folder = target.parent if str(target.parent) else Path(".")
+        folder = _existing_folder(target)
         return (
             f"; the folder {folder} is read-only for this user: choose another output "
             "folder or make this one writable"
@@ -151,7 +159,7 @@ def _file_size_limit() -> int | None:
 
 
 def check_room(target: str | os.PathLike, n_bytes: int, *, purpose: str = "the next write",
-               note: str | None = None) -> None:
+               fix: str | None = None) -> None:
     """Raise a clear :class:`OSError` unless ``n_bytes`` more can be written to ``target``.
 
     Two limits are checked: the space free for this user on the target's file system
@@ -168,8 +176,9 @@ def check_room(target: str | os.PathLike, n_bytes: int, *, purpose: str = "the n
         The bytes the write needs, margin included.
     purpose
         What needs them, for the message (``"the next 100 MCMC steps"``).
-    note
-        A last clause for the message (see :func:`write_error`).
+    fix
+        What the user should do, for the message; by default free some space (or raise
+        the limit) or write to another folder.
 
     Raises
     ------
@@ -178,9 +187,7 @@ def check_room(target: str | os.PathLike, n_bytes: int, *, purpose: str = "the n
         message naming ``target``, both sizes and the fix; nothing is written.
     """
     target = Path(target)
-    folder = target.parent if str(target.parent) else Path(".")
-    while not folder.exists() and folder != folder.parent:
-        folder = folder.parent
+    folder = _existing_folder(target)
     n_bytes = int(n_bytes)
     problem = None
     try:
@@ -199,14 +206,14 @@ def check_room(target: str | os.PathLike, n_bytes: int, *, purpose: str = "the n
         if current + n_bytes > limit:
             problem = (_errno.EFBIG, f"about {_size(n_bytes)} needed for {purpose}, only "
                        f"{_size(max(0, limit - current))} left under this process's "
-                       f"file-size limit of {_size(limit)} (ulimit -f)")
+                       f"file-size limit of {_size(limit)}, ulimit -f")
     if problem is None:
         return
     code, detail = problem
-    message = f"cannot write {target}: {os.strerror(code)} ({detail}){_hint(code, target)}"
-    if note:
-        message += f"; {note}"
-    raise _clear_oserror(code, message)
+    if fix is None:
+        fix = ("free some space or write to another folder" if code == _errno.ENOSPC else
+               "raise the limit or write to another folder")
+    raise _clear_oserror(code, f"cannot write {target}: {os.strerror(code)} ({detail}): {fix}")
 
 
 #: seconds after which a leftover temporary file of another host's writer counts as stale

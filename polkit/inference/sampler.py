@@ -20,6 +20,7 @@ decisions and produces the same chain as an uninterrupted one):
 from __future__ import annotations
 
 import contextlib
+import errno
 import json
 import logging
 import math
@@ -34,7 +35,8 @@ from typing import Any
 import numpy as np
 import xarray as xr
 
-from ..errors import ConfigError, ConvergenceWarning, FitError
+from ..errors import ConfigError, ConvergenceWarning, FitError, PolkitError
+from ..io import check_room, write_error
 from . import diagnostics as diag
 from .optimize import MapResult, check_ensemble, initial_ball
 from .posterior import LogPosterior, describe_point
@@ -45,6 +47,13 @@ __all__ = ["SamplerOutput", "run_ensemble", "default_moves"]
 log = logging.getLogger(__name__)
 
 _CHECKPOINT_FORMAT = 1
+#: room kept beyond the chain data of a stretch of steps: HDF5 object headers, chunk-index
+#: nodes and attributes (the random state is rewritten at every step)
+_CHECKPOINT_METADATA_BYTES = 64 * 1024
+#: and this fraction of the stretch's own bytes
+_CHECKPOINT_MARGIN = 0.1
+#: errno values that mean "no room" (full disk, quota, file-size limit)
+_NO_ROOM = {errno.ENOSPC, errno.EFBIG, getattr(errno, "EDQUOT", errno.ENOSPC)}
 
 
 def default_moves() -> list:
@@ -230,9 +239,11 @@ def _open_checkpoint(path: Path, space, n_walkers, seed, resume) -> np.random.Se
         )
     if not path.exists():
         seed_seq = _root_seed(seed)
-        path.parent.mkdir(parents=True, exist_ok=True)
-        with h5py.File(path, "w") as fh:
-            fh.attrs.update(_checkpoint_meta(space, n_walkers, seed_seq))
+        check_room(path, _CHECKPOINT_METADATA_BYTES, purpose="a new checkpoint")
+        with _checkpoint_writes(path):
+            path.parent.mkdir(parents=True, exist_ok=True)
+            with h5py.File(path, "w") as fh:
+                fh.attrs.update(_checkpoint_meta(space, n_walkers, seed_seq))
         return seed_seq
     try:
         with h5py.File(path, "r") as fh:
@@ -295,9 +306,110 @@ def _group_attr(path: Path | None, group: str, key: str, value=None):
     if value is None:
         with h5py.File(path, "r") as fh:
             return fh[group].attrs.get(key) if group in fh else None
-    with h5py.File(path, "a") as fh:
+    with _checkpoint_writes(path), h5py.File(path, "a") as fh:
         fh[group].attrs[key] = value
     return value
+
+
+#: what to do when the checkpoint has no room left (the preflight checks stop before writing)
+_ROOM_FIX = (
+    "make room (free disk space, or raise the file-size limit), then continue the run with "
+    "resume=True (--resume on the command line); the steps stored so far are kept"
+)
+#: what to do when a write failed half-way (the disk filled up during a step)
+_FAILED_WRITE_NOTE = (
+    "the disk filled up while a step was being written, so the last step may not have "
+    "been stored; once there is room, continue the run with resume=True (--resume on the "
+    "command line), and if the checkpoint can no longer be read, remove it and start afresh"
+)
+
+
+@contextlib.contextmanager
+def _checkpoint_writes(path: Path):
+    """Raise I/O failures of HDF5 writes to the checkpoint as one clear :class:`OSError`.
+
+    h5py reports a full disk or a file-size limit as an :class:`OSError` or
+    :class:`RuntimeError` carrying HDF5's own error stack; the clear error names the
+    checkpoint, the problem and the fix (see :func:`polkit.io.write_error`).
+    """
+    try:
+        yield
+    except PolkitError:
+        raise
+    except (OSError, RuntimeError) as exc:
+        if str(exc).startswith("cannot write "):  # already clear (polkit.io)
+            raise
+        clear = write_error(path, exc)
+        if clear is None:
+            raise
+        if clear.errno in _NO_ROOM:
+            clear = write_error(path, exc, note=_FAILED_WRITE_NOTE)
+        raise clear from exc
+
+
+@dataclass(frozen=True)
+class _ChunkRows:
+    """How one per-step dataset of the checkpoint grows: HDF5 allocates a chunk whole when
+    it is first written, so the dataset grows by ``row_bytes`` every ``rows`` steps."""
+
+    rows: int
+    row_bytes: int
+
+    def new_bytes(self, start: int, stop: int) -> int:
+        """Bytes of the chunks first touched by steps ``start:stop``."""
+        first_rows = -(-stop // self.rows) - -(-start // self.rows)  # ceil divisions
+        return first_rows * self.row_bytes
+
+
+def _chunk_rows(chunks, shape_tail, itemsize) -> _ChunkRows:
+    across = math.prod(-(-n // c) for n, c in zip(shape_tail, chunks[1:], strict=True))
+    return _ChunkRows(int(chunks[0]), int(across * math.prod(chunks) * itemsize))
+
+
+def _with_margin(n_bytes: int) -> int:
+    return int(n_bytes * (1.0 + _CHECKPOINT_MARGIN)) + _CHECKPOINT_METADATA_BYTES
+
+
+def _growth(path: Path, group: str, n_steps: int, n_walkers: int, ndim: int,
+            n_extras: int) -> tuple[int, list[_ChunkRows]]:
+    """Stored steps of ``group`` and how its chain, log-prob and extras datasets grow.
+
+    Chunk shapes are read from the file; the extras dataset, which emcee creates at the
+    first stored step, gets the shape h5py will choose for it.
+    """
+    import h5py
+
+    tails = {"chain": (ndim,), "log_prob": ()}
+    if n_extras:
+        tails["blobs"] = (n_extras,)
+    growth = []
+    with h5py.File(path, "r") as fh:
+        g = fh.get(group)
+        start = int(g.attrs.get("iteration", 0)) if g is not None else 0
+        for name, tail in tails.items():
+            ds = g.get(name) if g is not None else None
+            if ds is not None and ds.chunks:
+                growth.append(_chunk_rows(ds.chunks, ds.shape[1:], ds.dtype.itemsize))
+            else:
+                itemsize = 8 * math.prod(tail)
+                chunks = _guess_chunks(start + n_steps, n_walkers, itemsize)
+                growth.append(_chunk_rows(chunks, (n_walkers,), itemsize))
+    return start, growth
+
+
+def _guess_chunks(n_rows: int, n_walkers: int, itemsize: int) -> tuple[int, int]:
+    """The chunk shape h5py gives a ``(n_rows, n_walkers)`` dataset growing along axis 0."""
+    try:
+        from h5py._hl.filters import guess_chunk
+
+        chunks = tuple(int(c) for c in guess_chunk((n_rows, n_walkers), (None, n_walkers),
+                                                   itemsize))
+        if len(chunks) == 2 and min(chunks) >= 1:
+            return chunks
+    except (ImportError, AttributeError, TypeError, ValueError):
+        pass
+    # h5py's rule changed or moved: the largest chunk it makes (1 MiB) over all walkers
+    return max(1, 2**20 // max(1, n_walkers * itemsize)), n_walkers
 
 
 # ----------------------------------------------------------------------------------------
@@ -332,15 +444,25 @@ def _checkpoint_backend(path: Path, name: str):
 
     class _Backend(emcee.backends.HDFBackend):
         _handle = None
+        #: called with the step about to be stored, before anything of it is written
+        before_step = None
 
         @contextlib.contextmanager
         def session(self):
             self._handle = h5py.File(self.filename, "a")
             try:
                 yield
-            finally:
+            except BaseException:
                 handle, self._handle = self._handle, None
-                handle.close()
+                # after a failed write HDF5 may be unable to flush on close; the error in
+                # flight says what went wrong, so a second one from close is dropped
+                try:
+                    handle.close()
+                except (OSError, RuntimeError) as exc:
+                    log.debug("closing %s after a failed step: %s", self.filename, exc)
+                raise
+            handle, self._handle = self._handle, None
+            handle.close()
 
         def open(self, mode="r"):
             if self._handle is not None:
@@ -348,6 +470,9 @@ def _checkpoint_backend(path: Path, name: str):
             return super().open(mode)
 
         def save_step(self, state, accepted):
+            if self.before_step is not None:
+                with self.open() as fh:
+                    self.before_step(int(fh[self.name].attrs["iteration"]))
             super().save_step(state, accepted)
             if self._handle is not None:
                 self._handle.flush()
@@ -358,20 +483,27 @@ def _checkpoint_backend(path: Path, name: str):
 class _Ensemble:
     """One emcee sampler, its backend and its gate history."""
 
-    def __init__(self, index, log_post, space, n_walkers, moves, checkpoint, seq):
+    def __init__(self, index, log_post, space, n_walkers, moves, checkpoint, seq,
+                 n_extras=0):
         import emcee
 
         self.index = index
         self.name = f"ensemble{index}"
         self.checkpoint = checkpoint
+        self.n_walkers = n_walkers
+        self.ndim = space.ndim
+        self.n_extras = n_extras
         if checkpoint is not None:
             backend = _checkpoint_backend(checkpoint, self.name)
         else:
             backend = emcee.backends.Backend()
         self.backend = backend
-        self.sampler = emcee.EnsembleSampler(
-            n_walkers, space.ndim, log_post, moves=moves, vectorize=True, backend=backend
-        )
+        writes = _checkpoint_writes(checkpoint) if checkpoint is not None else (
+            contextlib.nullcontext())
+        with writes:  # emcee creates the ensemble's group in the checkpoint here
+            self.sampler = emcee.EnsembleSampler(
+                n_walkers, space.ndim, log_post, moves=moves, vectorize=True, backend=backend
+            )
         # emcee wraps the function in a helper that prints every exception (our FitError,
         # a KeyboardInterrupt) to stdout before re-raising it; call ours directly instead
         self.sampler.log_prob_fn = log_post
@@ -402,16 +534,45 @@ class _Ensemble:
         self.state = emcee.State(p0, log_prob=log_prob, blobs=blobs, random_state=self.rng_state)
 
     def advance(self, n_steps: int, pbar, stop_event) -> None:
-        session = self.backend.session() if self.checkpoint is not None else (
-            contextlib.nullcontext())
-        with session:
-            for state in self.sampler.sample(
-                self.state, iterations=n_steps, skip_initial_state_check=True, store=True
-            ):
-                self.state = state
-                pbar.update(1)
-                if stop_event is not None and stop_event.is_set():
-                    raise _Stopped()
+        """Take ``n_steps`` steps, storing each; with a checkpoint, first make sure they fit.
+
+        Before the stretch, and again before each step is stored, the free space and the
+        file-size limit are checked against the bytes still needed (whole HDF5 chunks
+        plus a margin); when they do not fit, a clear :class:`OSError` is raised before
+        h5py is asked to write, and the steps stored so far stay readable and
+        resumable.  A write that fails anyway (the disk filled up within a step) is
+        raised as the same kind of error.
+        """
+        if self.checkpoint is None:
+            self._sample(n_steps, pbar, stop_event)
+            return
+        path = self.checkpoint
+        with _checkpoint_writes(path):
+            start, growth = _growth(path, self.name, n_steps, self.n_walkers, self.ndim,
+                                    self.n_extras)
+        need = _with_margin(sum(g.new_bytes(start, start + n_steps) for g in growth))
+        check_room(path, need, purpose=f"the next {n_steps} MCMC steps", fix=_ROOM_FIX)
+
+        def before_step(step: int) -> None:
+            # someone else may be filling the disk: check again before every step
+            need = _with_margin(sum(g.new_bytes(step, step + 1) for g in growth))
+            check_room(path, need, purpose="the next MCMC step", fix=_ROOM_FIX)
+
+        self.backend.before_step = before_step
+        try:
+            with _checkpoint_writes(path), self.backend.session():
+                self._sample(n_steps, pbar, stop_event)
+        finally:
+            self.backend.before_step = None
+
+    def _sample(self, n_steps: int, pbar, stop_event) -> None:
+        for state in self.sampler.sample(
+            self.state, iterations=n_steps, skip_initial_state_check=True, store=True
+        ):
+            self.state = state
+            pbar.update(1)
+            if stop_event is not None and stop_event.is_set():
+                raise _Stopped()
 
     def chain(self, n: int | None = None) -> tuple[np.ndarray, np.ndarray]:
         chain = self.backend.get_chain()
@@ -614,7 +775,9 @@ def run_ensemble(
     log_post = LogPosterior(log_likelihood, space, n_extras=len(extras_units))
     positions = _initial_positions(x0, space, n_walkers, n_ens)
     ensembles = [
-        _Ensemble(e, log_post, space, n_walkers, moves, path, children[e]) for e in range(n_ens)
+        _Ensemble(e, log_post, space, n_walkers, moves, path, children[e],
+                  n_extras=len(extras_units))
+        for e in range(n_ens)
     ]
 
     gate: dict[int, diag.GateCheck] = {}
