@@ -8,10 +8,12 @@ in-plane point ``a`` it needs the weighted Gram blocks::
     H[w, a, k, j] = sum_E s(E) B_k(E) R_j(E)            (basis x [background, data])
 
 with ``s = sqrt(weight)`` and ``R = s * [background columns, y]`` (the prepared map).  The
-kernels here evaluate the basis columns of one ``(w, a)`` row into a per-thread buffer
-of ``K x E`` numbers (a few kB, it stays in the level-1 cache) and accumulate the sums
-from it at once: no ``W x A x K x E`` array is ever formed, and the data row of an angle
-is reused by every walker while it is in the cache (angles outer, walkers inner).
+kernels evaluate the basis of one ``(w, a)`` row and accumulate the sums in the same pass
+over the energy axis (for two or three branches and a constant background every sum
+stays in a register; otherwise the row's ``K x E`` values go through a buffer of a few
+kB that stays in the level-1 cache): no ``W x A x K x E`` array is ever formed, and the
+data row of an angle is reused by every walker while it is in cache (angles outer,
+walkers inner).
 
 Three basis families are covered, the same formulas as the numpy blocks of
 :mod:`polkit.models.spectral` (pole form, eV throughout):
@@ -25,8 +27,9 @@ Three basis families are covered, the same formulas as the numpy blocks of
 
 Switch: the compiled path is used when numba imports and the environment variable
 ``POLKIT_COMPILED`` is not ``0``; :func:`use_compiled` switches it at run time (tests run
-both paths).  ``POLKIT_THREADS`` (default 1) sets how many threads a kernel call may use;
-more than one runs the rows in parallel with numba's threading layer.
+both paths).  The kernels run on one thread: on a shared two-core machine numba's
+parallel loops (threading layer GNU OpenMP) made a call several times slower, and the
+sampler already has one likelihood call per half-ensemble to keep a core busy.
 """
 
 from __future__ import annotations
@@ -38,11 +41,9 @@ import numpy as np
 
 __all__ = [
     "ENV_SWITCH",
-    "ENV_THREADS",
     "available",
     "enabled",
     "use_compiled",
-    "threads",
     "gram_lorentz",
     "gram_disorder",
     "gram_reflectance",
@@ -54,8 +55,6 @@ logger = logging.getLogger(__name__)
 
 #: environment variable: ``0`` forces the numpy path
 ENV_SWITCH = "POLKIT_COMPILED"
-#: environment variable: threads per kernel call (default 1)
-ENV_THREADS = "POLKIT_THREADS"
 
 _state: dict = {"forced": None}
 
@@ -89,19 +88,6 @@ def use_compiled(flag: bool | None) -> bool | None:
     return previous
 
 
-def threads() -> int:
-    """Threads one kernel call may use (``POLKIT_THREADS``, default 1, at least 1)."""
-    raw = os.environ.get(ENV_THREADS, "1").strip()
-    try:
-        n = int(raw)
-    except ValueError:
-        from ..errors import ConfigError
-
-        raise ConfigError(f"expected a whole number of threads, found {raw!r}. Set "
-                          f"{ENV_THREADS}=1 (or 2, ...).", key=ENV_THREADS) from None
-    return max(1, n)
-
-
 # --------------------------------------------------------------------------------------
 # kernels (numba compiles them on first use and caches the machine code on disk)
 # --------------------------------------------------------------------------------------
@@ -118,14 +104,107 @@ else:
     _IMPORT_ERROR = ""
 
 
-def _rows_lorentz(en, xr, h2, ah, b, sw, rhs, g, c, chunk, n_chunks):
-    """Rows ``chunk`` of ``n_chunks``: Lorentzian branch lines, then their Gram sums."""
+def _lorentz2(en, xr, h2, ah, b, sw, rhs, g, c):
+    """Two branches and one background column, in one pass.
+
+    The common case (one exciton, constant background) with every sum in a register.
+    """
+    n_w, n_a = xr.shape[0], xr.shape[1]
+    n_e = en.size
+    for row in range(n_w * n_a):
+        a = row // n_w  # angles outer: the data row of an angle stays in cache
+        w = row - a * n_w
+        x0, x1 = xr[w, a, 0], xr[w, a, 1]
+        d0, d1 = h2[w, a, 0], h2[w, a, 1]
+        p0, p1 = ah[w, a, 0], ah[w, a, 1]
+        q0, q1 = b[w, a, 0], b[w, a, 1]
+        s00 = s01 = s11 = 0.0
+        c00 = c01 = c10 = c11 = 0.0
+        for e in range(n_e):
+            u0 = en[e] - x0
+            u1 = en[e] - x1
+            v0 = (p0 - q0 * u0) / (u0 * u0 + d0) * sw[a, e]
+            v1 = (p1 - q1 * u1) / (u1 * u1 + d1) * sw[a, e]
+            r0 = rhs[a, 0, e]
+            r1 = rhs[a, 1, e]
+            s00 += v0 * v0
+            s01 += v0 * v1
+            s11 += v1 * v1
+            c00 += v0 * r0
+            c01 += v0 * r1
+            c10 += v1 * r0
+            c11 += v1 * r1
+        g[w, a, 0, 0] = s00
+        g[w, a, 0, 1] = s01
+        g[w, a, 1, 0] = s01
+        g[w, a, 1, 1] = s11
+        c[w, a, 0, 0] = c00
+        c[w, a, 0, 1] = c01
+        c[w, a, 1, 0] = c10
+        c[w, a, 1, 1] = c11
+
+
+def _lorentz3(en, xr, h2, ah, b, sw, rhs, g, c):
+    """Three branches and one background column, in one pass."""
+    n_w, n_a = xr.shape[0], xr.shape[1]
+    n_e = en.size
+    for row in range(n_w * n_a):
+        a = row // n_w
+        w = row - a * n_w
+        x0, x1, x2 = xr[w, a, 0], xr[w, a, 1], xr[w, a, 2]
+        d0, d1, d2 = h2[w, a, 0], h2[w, a, 1], h2[w, a, 2]
+        p0, p1, p2 = ah[w, a, 0], ah[w, a, 1], ah[w, a, 2]
+        q0, q1, q2 = b[w, a, 0], b[w, a, 1], b[w, a, 2]
+        s00 = s01 = s02 = s11 = s12 = s22 = 0.0
+        c00 = c01 = c10 = c11 = c20 = c21 = 0.0
+        for e in range(n_e):
+            u0 = en[e] - x0
+            u1 = en[e] - x1
+            u2 = en[e] - x2
+            v0 = (p0 - q0 * u0) / (u0 * u0 + d0) * sw[a, e]
+            v1 = (p1 - q1 * u1) / (u1 * u1 + d1) * sw[a, e]
+            v2 = (p2 - q2 * u2) / (u2 * u2 + d2) * sw[a, e]
+            r0 = rhs[a, 0, e]
+            r1 = rhs[a, 1, e]
+            s00 += v0 * v0
+            s01 += v0 * v1
+            s02 += v0 * v2
+            s11 += v1 * v1
+            s12 += v1 * v2
+            s22 += v2 * v2
+            c00 += v0 * r0
+            c01 += v0 * r1
+            c10 += v1 * r0
+            c11 += v1 * r1
+            c20 += v2 * r0
+            c21 += v2 * r1
+        g[w, a, 0, 0] = s00
+        g[w, a, 1, 1] = s11
+        g[w, a, 2, 2] = s22
+        g[w, a, 0, 1] = g[w, a, 1, 0] = s01
+        g[w, a, 0, 2] = g[w, a, 2, 0] = s02
+        g[w, a, 1, 2] = g[w, a, 2, 1] = s12
+        c[w, a, 0, 0] = c00
+        c[w, a, 0, 1] = c01
+        c[w, a, 1, 0] = c10
+        c[w, a, 1, 1] = c11
+        c[w, a, 2, 0] = c20
+        c[w, a, 2, 1] = c21
+
+
+def _lorentz(en, xr, h2, ah, b, sw, rhs, g, c):
+    """Lorentzian branch lines ``(ah - b u) / (u^2 + h2)``, ``u = E - x``, and their sums."""
     n_w, n_a, n_k = xr.shape
     n_e = en.size
-    rows = n_w * n_a
+    if rhs.shape[1] == 2 and n_k == 2:
+        _lorentz2(en, xr, h2, ah, b, sw, rhs, g, c)
+        return
+    if rhs.shape[1] == 2 and n_k == 3:
+        _lorentz3(en, xr, h2, ah, b, sw, rhs, g, c)
+        return
     buf = np.empty((n_k, n_e))
-    for row in range(chunk * rows // n_chunks, (chunk + 1) * rows // n_chunks):
-        a = row // n_w  # angles outer: the data row of an angle stays in cache
+    for row in range(n_w * n_a):
+        a = row // n_w
         w = row - a * n_w
         for k in range(n_k):
             x = xr[w, a, k]
@@ -138,16 +217,14 @@ def _rows_lorentz(en, xr, h2, ah, b, sw, rhs, g, c, chunk, n_chunks):
         _accumulate(buf, rhs, a, g, c, w)
 
 
-def _rows_disorder(en, xr, h2, ah, b, base_re, base_im, e_c, sw, rhs, g, c, chunk,
-                   n_chunks):
-    """Rows of the disorder-broadened emission basis: lines rescaled to ``A_C^sigma``."""
+def _disorder(en, xr, h2, ah, b, base_re, base_im, e_c, sw, rhs, g, c):
+    """Emission lines with exciton disorder: Lorentzian lines rescaled to ``A_C^sigma``."""
     n_w, n_a, n_k = xr.shape
     n_e = en.size
-    rows = n_w * n_a
     inv_pi = 1.0 / np.pi
     buf = np.empty((n_k, n_e))
     share = np.empty(n_e)
-    for row in range(chunk * rows // n_chunks, (chunk + 1) * rows // n_chunks):
+    for row in range(n_w * n_a):
         a = row // n_w
         w = row - a * n_w
         share[:] = 0.0
@@ -174,13 +251,12 @@ def _rows_disorder(en, xr, h2, ah, b, base_re, base_im, e_c, sw, rhs, g, c, chun
         _accumulate(buf, rhs, a, g, c, w)
 
 
-def _rows_reflectance(base_re, base_im, e_c, kap, sw, rhs, g, c, chunk, n_chunks):
-    """Rows of the reflectance basis ``|1 - i kappa / (base - E_C)|^2``."""
+def _reflectance(base_re, base_im, e_c, kap, sw, rhs, g, c):
+    """Reflectance column ``|1 - i kappa / (base - E_C)|^2`` and its sums."""
     n_w, n_a = e_c.shape
     n_e = base_re.shape[1]
-    rows = n_w * n_a
     buf = np.empty((1, n_e))
-    for row in range(chunk * rows // n_chunks, (chunk + 1) * rows // n_chunks):
+    for row in range(n_w * n_a):
         a = row // n_w
         w = row - a * n_w
         ec = e_c[w, a]
@@ -211,38 +287,6 @@ def _accumulate(buf, rhs, a, g, c, w):
                 acc += buf[k, e] * buf[q, e]
             g[w, a, k, q] = acc
             g[w, a, q, k] = acc
-
-
-def _serial_lorentz(en, xr, h2, ah, b, sw, rhs, g, c, n_chunks):
-    for chunk in range(n_chunks):
-        _rows_lorentz(en, xr, h2, ah, b, sw, rhs, g, c, chunk, n_chunks)
-
-
-def _parallel_lorentz(en, xr, h2, ah, b, sw, rhs, g, c, n_chunks):
-    for chunk in _prange(n_chunks):
-        _rows_lorentz(en, xr, h2, ah, b, sw, rhs, g, c, chunk, n_chunks)
-
-
-def _serial_disorder(en, xr, h2, ah, b, base_re, base_im, e_c, sw, rhs, g, c, n_chunks):
-    for chunk in range(n_chunks):
-        _rows_disorder(en, xr, h2, ah, b, base_re, base_im, e_c, sw, rhs, g, c, chunk,
-                       n_chunks)
-
-
-def _parallel_disorder(en, xr, h2, ah, b, base_re, base_im, e_c, sw, rhs, g, c, n_chunks):
-    for chunk in _prange(n_chunks):
-        _rows_disorder(en, xr, h2, ah, b, base_re, base_im, e_c, sw, rhs, g, c, chunk,
-                       n_chunks)
-
-
-def _serial_reflectance(base_re, base_im, e_c, kap, sw, rhs, g, c, n_chunks):
-    for chunk in range(n_chunks):
-        _rows_reflectance(base_re, base_im, e_c, kap, sw, rhs, g, c, chunk, n_chunks)
-
-
-def _parallel_reflectance(base_re, base_im, e_c, kap, sw, rhs, g, c, n_chunks):
-    for chunk in _prange(n_chunks):
-        _rows_reflectance(base_re, base_im, e_c, kap, sw, rhs, g, c, chunk, n_chunks)
 
 
 def _solve_rows(g, cross, pinv, hb, c0, subsets, sizes, nonneg, rtol, chi2_out, amps_out):
@@ -331,9 +375,10 @@ def _solve_rows(g, cross, pinv, hb, c0, subsets, sizes, nonneg, rtol, chi2_out, 
                             ok = False
                 if not ok:
                     continue
-                chi = base
+                dot = 0.0
                 for i in range(p):
-                    chi -= x[i] * hr[subsets[s, i]]
+                    dot += x[i] * hr[subsets[s, i]]
+                chi = base - dot
                 if chi < best:
                     best = chi
                     for k in range(n_k):
@@ -346,36 +391,20 @@ def _solve_rows(g, cross, pinv, hb, c0, subsets, sizes, nonneg, rtol, chi2_out, 
 
 
 if _numba is not None:
-    _prange = _numba.prange
     _inner = _numba.njit(cache=True, fastmath=_FASTMATH, error_model="numpy", inline="always")
     _accumulate = _inner(_accumulate)
-    _rows_lorentz = _inner(_rows_lorentz)
-    _rows_disorder = _inner(_rows_disorder)
-    _rows_reflectance = _inner(_rows_reflectance)
-    _serial = _numba.njit(cache=True, fastmath=_FASTMATH, error_model="numpy")
-    _parallel = _numba.njit(cache=True, fastmath=_FASTMATH, error_model="numpy",
-                           parallel=True)
+    _lorentz2 = _inner(_lorentz2)
+    _lorentz3 = _inner(_lorentz3)
+    _outer = _numba.njit(cache=True, fastmath=_FASTMATH, error_model="numpy")
     _KERNELS = {
-        (False, "solve"): _numba.njit(cache=True, error_model="numpy")(_solve_rows),
-        (False, "lorentz"): _serial(_serial_lorentz),
-        (True, "lorentz"): _parallel(_parallel_lorentz),
-        (False, "disorder"): _serial(_serial_disorder),
-        (True, "disorder"): _parallel(_parallel_disorder),
-        (False, "reflectance"): _serial(_serial_reflectance),
-        (True, "reflectance"): _parallel(_parallel_reflectance),
+        "lorentz": _outer(_lorentz),
+        "disorder": _outer(_disorder),
+        "reflectance": _outer(_reflectance),
+        # the solve keeps strict IEEE arithmetic: it mirrors the numpy closed forms
+        "solve": _numba.njit(cache=True, error_model="numpy")(_solve_rows),
     }
 else:  # pragma: no cover - only where numba does not import
-    _prange = range
     _KERNELS = {}
-
-
-def _kernel(name: str):
-    n = threads()
-    parallel = n > 1
-    if parallel:
-        n = min(n, _numba.config.NUMBA_NUM_THREADS)
-        _numba.set_num_threads(n)
-    return _KERNELS[(parallel, name)], (n if parallel else 1)
 
 
 def _f64(a) -> np.ndarray:
@@ -404,11 +433,10 @@ def gram_lorentz(energy, xr, h2, ah, b, sqrt_weight, weighted_rhs):
     gram, cross : ndarray
         ``(W, A, K, K)`` and ``(W, A, K, J)``.
     """
-    kern, n_chunks = _kernel("lorentz")
     xr = _f64(xr)
     g, c = _outputs(*xr.shape, weighted_rhs.shape[1])
-    kern(_f64(energy), xr, _f64(h2), _f64(ah), _f64(b), _f64(sqrt_weight),
-         _f64(weighted_rhs), g, c, n_chunks)
+    _KERNELS["lorentz"](_f64(energy), xr, _f64(h2), _f64(ah), _f64(b), _f64(sqrt_weight),
+                        _f64(weighted_rhs), g, c)
     return g, c
 
 
@@ -432,12 +460,12 @@ def gram_disorder(energy, xr, h2, ah, b, base, e_c, sqrt_weight, weighted_rhs):
     gram, cross : ndarray
         ``(W, A, K, K)`` and ``(W, A, K, J)``.
     """
-    kern, n_chunks = _kernel("disorder")
     xr = _f64(xr)
     base = np.asarray(base)
     g, c = _outputs(*xr.shape, weighted_rhs.shape[1])
-    kern(_f64(energy), xr, _f64(h2), _f64(ah), _f64(b), _f64(base.real), _f64(base.imag),
-         _f64(e_c), _f64(sqrt_weight), _f64(weighted_rhs), g, c, n_chunks)
+    _KERNELS["disorder"](_f64(energy), xr, _f64(h2), _f64(ah), _f64(b), _f64(base.real),
+                         _f64(base.imag), _f64(e_c), _f64(sqrt_weight), _f64(weighted_rhs),
+                         g, c)
     return g, c
 
 
@@ -460,12 +488,11 @@ def gram_reflectance(base, e_c, kappa, sqrt_weight, weighted_rhs):
     gram, cross : ndarray
         ``(W, A, 1, 1)`` and ``(W, A, 1, J)``.
     """
-    kern, n_chunks = _kernel("reflectance")
     base = np.asarray(base)
     e_c = _f64(e_c)
     g, c = _outputs(e_c.shape[0], e_c.shape[1], 1, weighted_rhs.shape[1])
-    kern(_f64(base.real), _f64(base.imag), e_c, _f64(kappa), _f64(sqrt_weight),
-         _f64(weighted_rhs), g, c, n_chunks)
+    _KERNELS["reflectance"](_f64(base.real), _f64(base.imag), e_c, _f64(kappa),
+                            _f64(sqrt_weight), _f64(weighted_rhs), g, c)
     return g, c
 
 
@@ -519,6 +546,6 @@ def solve_rows(gram, cross, background_pinv, h_background, chi2_background, *, n
     m = background_pinv.shape[1]
     pinv = _f64(background_pinv) if m else np.zeros((n_a, 1, 1))
     hb = _f64(h_background) if m else np.zeros((n_a, 1))
-    _KERNELS[(False, "solve")](_f64(gram), _f64(cross), pinv, hb, _f64(chi2_background),
+    _KERNELS["solve"](_f64(gram), _f64(cross), pinv, hb, _f64(chi2_background),
                                subsets, sizes, bool(nonneg), float(rtol), chi2, amps)
     return chi2, amps
