@@ -391,7 +391,7 @@ def _solve_rows(g, cross, pinv, hb, c0, subsets, sizes, nonneg, rtol, chi2_out, 
 
 
 if _numba is not None:
-    _inner = _numba.njit(cache=True, fastmath=_FASTMATH, error_model="numpy", inline="always")
+    _inner = _numba.njit(cache=True, fastmath=_FASTMATH, error_model="numpy")
     _accumulate = _inner(_accumulate)
     _lorentz2 = _inner(_lorentz2)
     _lorentz3 = _inner(_lorentz3)
