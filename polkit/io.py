@@ -145,7 +145,7 @@ def _size(n_bytes: float) -> str:
     for unit, scale in (("GB", 1e9), ("MB", 1e6), ("kB", 1e3)):
         if abs(n_bytes) >= scale:
             return f"{n_bytes / scale:.1f} {unit}"
-    return f"{int(n_bytes)} bytes"
+    return f"{int(n_bytes)} byte" + ("" if int(n_bytes) == 1 else "s")
 
 
 def _file_size_limit() -> int | None:

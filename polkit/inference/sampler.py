@@ -444,7 +444,7 @@ def _checkpoint_backend(path: Path, name: str):
 
     class _Backend(emcee.backends.HDFBackend):
         _handle = None
-        #: called with the step about to be stored, before anything of it is written
+        #: called before anything of a step is written
         before_step = None
 
         @contextlib.contextmanager
@@ -471,8 +471,7 @@ def _checkpoint_backend(path: Path, name: str):
 
         def save_step(self, state, accepted):
             if self.before_step is not None:
-                with self.open() as fh:
-                    self.before_step(int(fh[self.name].attrs["iteration"]))
+                self.before_step()
             super().save_step(state, accepted)
             if self._handle is not None:
                 self._handle.flush()
@@ -553,8 +552,11 @@ class _Ensemble:
         need = _with_margin(sum(g.new_bytes(start, start + n_steps) for g in growth))
         check_room(path, need, purpose=f"the next {n_steps} MCMC steps", fix=_ROOM_FIX)
 
-        def before_step(step: int) -> None:
+        steps = iter(range(start, start + n_steps))
+
+        def before_step() -> None:
             # someone else may be filling the disk: check again before every step
+            step = next(steps)
             need = _with_margin(sum(g.new_bytes(step, step + 1) for g in growth))
             check_room(path, need, purpose="the next MCMC step", fix=_ROOM_FIX)
 
