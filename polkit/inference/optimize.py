@@ -343,6 +343,13 @@ def initial_ball(
         raise FitError(f"the ball centre is outside the prior: {describe_point(space, x)}")
     bounds = space.bounds
     lo, hi = bounds[:, 0], bounds[:, 1]
+    # a curvature measured across a kink of the posterior (e.g. a coupling pressed to zero,
+    # where two complex branch energies meet) can be so large that the ball rounds to one
+    # point in floating point; keep every spread above 1e-9 of the parameter's magnitude or
+    # prior width so the ensemble always spans the space (the pre-burn widens it).
+    # common practice, no published source
+    width = np.where(np.isfinite(hi - lo), hi - lo, 0.0)
+    scale = np.maximum(scale, 1e-9 * np.maximum(np.abs(x), width))
     p0 = x + spread * scale * rng.standard_normal((n_walkers, space.ndim))
     for _ in range(100):
         out = (p0 < lo) | (p0 > hi)
