@@ -12,6 +12,7 @@ from __future__ import annotations
 
 __version__ = "0.1.0"
 
+from .data import load_map, load_series  # noqa: E402,F401
 from .errors import (  # noqa: F401
     ConfigError,
     ConvergenceWarning,
@@ -21,7 +22,5 @@ from .errors import (  # noqa: F401
     PolkitError,
     PolkitWarning,
 )
-
-from .data import load_map, load_series  # noqa: E402,F401
-from .workflows.dispersion import fit_dispersion  # noqa: E402,F401
 from .inference import FitResult  # noqa: E402,F401
+from .workflows.dispersion import fit_dispersion  # noqa: E402,F401

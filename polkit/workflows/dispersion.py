@@ -13,9 +13,9 @@ or in :mod:`polkit.workflows.dispersion_stages`, so the interactive panel
    (multi-start least squares), default priors from the data range, user priors on top;
 3. :func:`table_mode`: the peak-table fit (MAP; with ``peaks_only`` also the MCMC, a fast
    answer);
-4. :func:`refine_mode` and :func:`calibrate_problem_noise`: the whole-map MAP from the
-   peak-table mode, the noise model calibrated on its residuals (variance = a * model + b),
-   then the MAP again;
+4. :func:`whole_map_start` and :func:`calibrate_problem_noise`: the whole-map MAP from the
+   better of the peak-table mode and the raw guess, the noise model calibrated on its
+   residuals (variance = a * model + b), then the MAP again;
 5. :func:`sample_problem`: a short pre-burn, then emcee until the convergence gate passes,
    checkpointed in HDF5;
 6. :func:`build_dispersion_result`: derived quantities per posterior draw and the result
@@ -55,6 +55,7 @@ from .dispersion_stages import (
     refine_mode,
     start_vector,
     table_mode,
+    whole_map_start,
 )
 
 __all__ = [
@@ -291,7 +292,7 @@ def fit_dispersion(
         noise_note = PEAK_TABLE_NOISE
     else:
         path_used, like = "whole_map", problem.log_likelihood
-        start = refine_mode(problem, table_map.x, staged=True)
+        start = whole_map_start(problem, begin.x0, table_map.x)
         noise_note = calibrate_problem_noise(problem, start.x, begin.source.data.attrs)
         start = refine_mode(problem, start.x)
 

@@ -54,7 +54,7 @@ from ..models import spectral
 from ._steps import checkpoint_file, posterior_theta, sample_problem, step_limits
 from .dispersion import DEFAULT_STEPS, DispersionFit, build_dispersion_result, prepare_dispersion
 from .dispersion_model import MODELS, DispersionProblem
-from .dispersion_stages import calibrate_problem_noise, refine_mode, table_mode
+from .dispersion_stages import calibrate_problem_noise, refine_mode, whole_map_start
 
 __all__ = [
     "CAVEATS",
@@ -451,14 +451,13 @@ def _cross_started_modes(prepared: Mapping[str, tuple]) -> dict[str, np.ndarray]
     The peak table is matched to the branches of each model; for the uncoupled model, a
     cavity line crossing the exciton line gives peaks that a per-angle fit places poorly
     and its table mode can be far off.  Each model is therefore started from its table mode
-    and from the raw guess, and then from the other models' whole-map modes (shared parameters copied, the rest from its own mode), and the
-    start with the highest whole-map posterior is kept.  # common practice, no published source
+    and from its raw guess (:func:`whole_map_start`), then from the other models'
+    whole-map modes (shared parameters copied, the rest from its own mode), and the start
+    with the highest whole-map posterior is kept.  # common practice, no published source
     """
     own = {}
     for m, (problem, begin) in prepared.items():
-        starts = (table_mode(problem, begin.x0).x, begin.x0)  # table mode, raw guess
-        own[m] = max((refine_mode(problem, x, staged=True) for x in starts),
-                     key=lambda r: r.log_post)
+        own[m] = whole_map_start(problem, begin.x0)
     best = dict(own)
     for m, (problem, _) in prepared.items():
         names = problem.space.names

@@ -49,6 +49,7 @@ __all__ = [
     "map_problem",
     "table_mode",
     "refine_mode",
+    "whole_map_start",
     "calibrate_problem_noise",
 ]
 
@@ -329,6 +330,30 @@ def refine_mode(problem: DispersionProblem, x0: np.ndarray, *,
     if staged:
         return _staged_map(problem.log_likelihood, space, x0)
     return find_map(LogPosterior(problem.log_likelihood, space), space, x0)
+
+
+def whole_map_start(problem: DispersionProblem, x0: np.ndarray,
+                    table_x: np.ndarray | None = None) -> MapResult:
+    """The whole-map mode from the better of two starts: the peak-table mode and the guess.
+
+    The peak-table mode is usually the better start, but where the per-angle line fits
+    place peaks poorly (lines that overlap, an uncoupled cavity mode crossing the exciton
+    line) it can be far off; the raw guess from the table's peak positions is then the
+    safer start.  Both are refined in stages (:func:`refine_mode`) and the one with the
+    higher whole-map posterior is kept.  # common practice, no published source
+
+    Parameters
+    ----------
+    problem
+        The problem (with its peak table).
+    x0
+        The automatic guess (:attr:`DispersionStart.x0`).
+    table_x
+        The peak-table mode, when already found (else it is found here).
+    """
+    table_x = table_mode(problem, x0).x if table_x is None else table_x
+    return max((refine_mode(problem, x, staged=True) for x in (table_x, x0)),
+               key=lambda r: r.log_post)
 
 
 def calibrate_problem_noise(problem: DispersionProblem, x: np.ndarray,
