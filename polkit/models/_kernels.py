@@ -408,7 +408,11 @@ else:  # pragma: no cover - only where numba does not import
 
 
 def _f64(a) -> np.ndarray:
-    return np.ascontiguousarray(a, dtype=np.float64)
+    """``a`` as a C-contiguous, writeable float64 array (one numba signature whatever came in)."""
+    if (type(a) is np.ndarray and a.dtype == np.float64 and a.flags.c_contiguous
+            and a.flags.writeable):
+        return a
+    return np.array(a, dtype=np.float64, order="C")
 
 
 def _outputs(n_w: int, n_a: int, n_k: int, n_j: int) -> tuple[np.ndarray, np.ndarray]:

@@ -242,20 +242,27 @@ def _check_physics(flat: dict, angles) -> None:
         v = flat.get(name)
         return [] if v is None else (v if isinstance(v, list) else [v])
 
-    for name in ("sigma_x", "kappa", "g"):
-        for v in values(name):
-            if np.any(~(v >= 0)):
-                raise DataError(f"expected {name} >= 0 eV (a width or coupling), found "
-                                f"{v[~(v >= 0)][0]!r}.", field=name)
+    # one comparison per group first (this runs at every likelihood call); the loops
+    # that name the offending parameter run only when something is wrong
+    groups = (("sigma_x", "kappa", "g"), ("e_c0", "e_x", "gamma_c", "gamma_x"))
+    lowest = [np.concatenate([v for name in names for v in values(name)]).min()
+              for names in groups]
+    if not lowest[0] >= 0:  # NaN fails too
+        for name in groups[0]:
+            for v in values(name):
+                if np.any(~(v >= 0)):
+                    raise DataError(f"expected {name} >= 0 eV (a width or coupling), found "
+                                    f"{v[~(v >= 0)][0]!r}.", field=name)
     # a zero linewidth is a delta line that no pixel grid can represent
-    for name in ("e_c0", "e_x", "gamma_c", "gamma_x"):
-        for v in values(name):
-            if np.any(~(v > 0)):
-                raise DataError(f"expected {name} > 0 eV, found {v[~(v > 0)][0]!r}.",
-                                field=name)
+    if not lowest[1] > 0:
+        for name in groups[1]:
+            for v in values(name):
+                if np.any(~(v > 0)):
+                    raise DataError(f"expected {name} > 0 eV, found {v[~(v > 0)][0]!r}.",
+                                    field=name)
     n_eff = flat["n_eff"]
     limit = 0.0 if angles is None or angles.size == 0 else np.abs(np.sin(np.deg2rad(angles))).max()
-    if np.any(~(n_eff > limit)):
+    if not n_eff.min() > limit:
         raise DataError(
             f"expected n_eff > |sin(angle)| = {limit:.3g} for every angle of the map (and > 0), "
             f"found {n_eff[~(n_eff > limit)][0]!r}.", field="n_eff")
@@ -288,19 +295,27 @@ def _prepare(in_plane, energy_ev, axis: str, params: dict):
             flat[name] = _strip(value)
             shapes.append(flat[name].shape)
     try:
-        batch = np.broadcast_shapes(*shapes)
+        batch = shapes[0] if shapes.count(shapes[0]) == len(shapes) else np.broadcast_shapes(
+            *shapes)
     except ValueError as exc:
         raise DataError(
             "expected physics parameters of one batch shape (e.g. all (W,)), found shapes "
             f"{sorted(set(shapes))}.", field="parameters") from exc
     n = int(np.prod(batch)) if batch else 1
 
+    def one(x):  # read-only views of the caller's arrays
+        x = x.reshape(n) if x.shape == batch else np.broadcast_to(x, batch).reshape(n)
+        if x.flags.writeable:
+            x = x.view()
+            x.flags.writeable = False
+        return x
+
     def flatten(v):
         if v is None:
             return None
         if isinstance(v, list):
-            return [np.broadcast_to(x, batch).reshape(n) for x in v]
-        return np.broadcast_to(v, batch).reshape(n)
+            return [one(x) for x in v]
+        return one(v)
 
     flat = {k: flatten(v) for k, v in flat.items()}
     _check_physics(flat, grid if axis == "angle" else None)
