@@ -240,7 +240,14 @@ def test_results_killed_mid_write_are_old_or_new_never_truncated(tmp_path):
         versions = _check_complete(folder)
         seen.update(versions.values())
         version = max(versions.values())
+        # each writer removes what the killed ones left of its targets: at most the one
+        # temporary file of the last kill remains
+        assert len(list(folder.glob(".*.part"))) <= 1
     assert len(seen) > 3, "the writer made progress between kills"
+    for name in ("summary.json", "table.txt", "posterior.nc", "fit.png"):
+        io.write_bytes(folder / name, (folder / name).read_bytes())
+    assert sorted(p.name for p in folder.iterdir()) == sorted(
+        ["summary.json", "table.txt", "posterior.nc", "fit.png"])
 
 
 def test_a_write_that_fails_leaves_no_temporary_file_and_keeps_permissions(tmp_path):
@@ -477,6 +484,86 @@ def test_permission_refused_is_reported_and_the_old_file_kept(tmp_path, monkeypa
     assert info.value.errno == errno.EACCES
     assert target.read_text() == '{"old": true}\n'
     assert sorted(p.name for p in tmp_path.iterdir()) == ["summary.json"]
+
+
+# ----------------------------------------------------------------------------------------
+# 5. temporary files left by a killed writer
+# ----------------------------------------------------------------------------------------
+_HOLD_TEMPORARIES = r"""
+import sys, time
+from pathlib import Path
+from polkit import io
+
+folder = Path(sys.argv[1])
+with io.atomic_path(folder / "summary.json") as a, io.atomic_path(folder / "table.txt") as b:
+    a.write_bytes(b"half of a summary")
+    b.write_bytes(b"half of a table")
+    print(a.name, b.name, flush=True)
+    time.sleep(600)  # killed long before
+"""
+
+
+def _start_holder(folder: Path) -> tuple[subprocess.Popen, list[str]]:
+    proc = subprocess.Popen([sys.executable, "-c", _HOLD_TEMPORARIES, str(folder)],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    line = proc.stdout.readline()
+    assert line.strip(), proc.stderr.read()
+    return proc, line.split()
+
+
+def _kill(proc: subprocess.Popen) -> None:
+    proc.send_signal(signal.SIGKILL)
+    proc.wait(timeout=60)
+    proc.stdout.close()
+    proc.stderr.close()
+
+
+def test_next_write_removes_temporary_files_of_killed_writers_only(tmp_path):
+    # common practice, no published source: a writer killed with SIGKILL cannot clean up;
+    # the next write of the same target removes the temporary files it can prove are dead
+    # (made on this host by a process that no longer exists, or made on another host and
+    # untouched for a day) and nothing else
+    folder = tmp_path / "results"
+    folder.mkdir()
+    (folder / "summary.json").write_text('{"old": true}\n')
+    # the running writer starts first: a writer that starts later cleans up on its own
+    running, (running_summary, running_table) = _start_holder(folder)
+    try:
+        killed, (killed_summary, killed_table) = _start_holder(folder)
+        _kill(killed)
+        decoys = [
+            ".summary.json.notes.part",  # not a temporary file name of polkit
+            "summary.json.somehost-1.abcdefgh.part",  # no leading dot
+            ".summary.json.somehost-1.ABCDEFGH.part",  # mkstemp never uses capitals
+            ".summary.json.otherhost-4242.abcdefgh.part",  # another host, recent
+            ".other.json.otherhost-4242.abcdefgh.part",  # another target
+        ]
+        for name in decoys:
+            (folder / name).write_text("not ours to remove")
+        old = folder / ".summary.json.otherhost-4243.abcd_fgh.part"
+        old.write_text("left two days ago on another host")
+        two_days_ago = time.time() - 2 * io.STALE_AGE_S
+        os.utime(old, (two_days_ago, two_days_ago))
+        assert (folder / killed_summary).exists() and (folder / killed_table).exists()
+
+        io.write_json(folder / "summary.json", {"new": True})
+
+        assert json.loads((folder / "summary.json").read_text()) == {"new": True}
+        assert not (folder / killed_summary).exists()  # its writer is dead
+        assert not old.exists()  # another host's, a day untouched
+        assert (folder / killed_table).exists()  # another target's: left to its own writer
+        assert (folder / running_summary).exists()  # its writer is still running
+        assert (folder / running_table).exists()
+        assert all((folder / name).exists() for name in decoys)
+
+        io.write_text(folder / "table.txt", "rows\n")
+        assert not (folder / killed_table).exists()
+        assert (folder / running_table).exists()
+    finally:
+        _kill(running)
+    # nothing else was created or removed (the running writer's files stay: killed last)
+    assert {p.name for p in folder.iterdir()} == {
+        "summary.json", "table.txt", *decoys, running_summary, running_table}
 
 
 def test_checkpoint_of_another_run_is_refused_not_overwritten(map_file, tmp_path):
