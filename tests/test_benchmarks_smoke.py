@@ -41,7 +41,7 @@ def tiny_results(bench) -> dict:
     """Every benchmark of this folder run once with tiny sizes (the lmfit part if installed)."""
     results = {
         "hot_path": bench("bench_hot_path").run(True, n_angles=6, n_energies=40, n_walkers=4,
-                                                repeats=2),
+                                                repeats=2, measure_compile=False),
         "peer": bench("bench_peer").run(True, n_angles=5, n_energies=60, n_walkers=12,
                                         steps=30, loop_baseline=False),
         "scaling": bench("bench_scaling").run(True, angles=(3, 6), n_energies=50, n_walkers=4,
@@ -89,7 +89,17 @@ def test_hot_path_benchmark_runs(tiny_results):
     assert r["floor_used"] in r["hot_path_ratio_by_floor"]
     assert r["hot_path_ratio"] == max(r["hot_path_ratio_by_floor"].values())
     assert r["grid"] == {"walkers": 4, "angles": 6, "energies": 40}
-    assert any("spectral.py" in row["function"] for row in r["profile_top"])
+    assert any("spectral.py" in row["function"] or "_kernels.py" in row["function"]
+               for row in r["profile_top"])
+    assert math.isfinite(r["numpy_path_ms"]) and r["numpy_path_ms"] > 0
+    # the compiled and numpy paths agree (tolerance argued in tests/test_spectral_kernels.py)
+    assert r["compiled_minus_numpy_max_abs"] < 1e-6
+    if r["compiled_path"]:
+        assert r["numba"] is not None
+        assert "error" not in r["first_call"], r["first_call"]
+        assert set(r["first_call"]) == {"cache_load_s"}
+    else:
+        assert r["first_call"] is None
 
 
 # ----------------------------------------------------------------------------------------

@@ -21,6 +21,12 @@ hot path, so the medians flatter the ratio and the minima are the check.
 A cProfile summary shows where the time goes.  The script prints numbers and never
 asserts on them.
 
+The hot path runs polkit's compiled kernels (:mod:`polkit.models._kernels`, numba) when
+they are available; the same call on the pure-numpy path is timed beside it (interleaved)
+as context, and the cost of the first compiled call in a fresh state (numba compiling, or
+loading its on-disk cache) is measured in a separate interpreter and reported apart: a
+one-time cost per machine (compile) or per process (cache load), not part of a call.
+
 The map is invented: a GaAs-like two-oscillator emission map simulated with polkit's own
 model (seeded), in counts with Gaussian noise of the CCD variance ``counts / gain +
 read_noise^2``.  This module also provides that map to the other benchmarks.
@@ -32,7 +38,11 @@ import argparse
 import cProfile
 import gc
 import json
+import os
 import pstats
+import subprocess
+import sys
+import tempfile
 import time
 from pathlib import Path
 
@@ -147,6 +157,59 @@ def floor_in_place(energy: np.ndarray, centre: np.ndarray, half: np.ndarray,
     return u
 
 
+def _numba_version() -> str | None:
+    try:
+        import numba
+    except Exception:  # not installed, or does not import against this numpy
+        return None
+    return numba.__version__
+
+
+_FIRST_CALL = """
+import sys, time, json
+t0 = time.perf_counter()
+sys.path.insert(0, {here!r})
+import numpy as np
+from bench_hot_path import SEED, problem_for, simulated_map, walker_ball
+rng = np.random.default_rng(SEED)
+da, inv_var, _ = simulated_map({n_angles}, {n_energies}, seed=rng.integers(2**32))
+problem = problem_for(da, inv_var)
+theta = walker_ball(problem.space, {n_walkers}, rng)
+t1 = time.perf_counter()
+problem.log_likelihood(theta)
+t2 = time.perf_counter()
+problem.log_likelihood(theta)
+t3 = time.perf_counter()
+print(json.dumps({{"first_s": t2 - t1, "second_s": t3 - t2}}))
+"""
+
+
+def first_call_cost(n_angles: int, n_energies: int, n_walkers: int, *,
+                    compile: bool = True) -> dict:
+    """One-time cost of the first compiled call, measured in fresh interpreters.
+
+    With ``compile`` the first run points numba at an empty cache folder
+    (``NUMBA_CACHE_DIR``), so it compiles (``compile_s``); a second run reuses that folder
+    and only loads the machine code (``cache_load_s``).  Without it, one run uses the
+    usual cache (``cache_load_s``; it compiles if that cache is cold).  Each figure is the
+    first call's time minus the second call's, so it holds importing numba plus compiling
+    or loading, not the work of a call.
+    """
+    code = _FIRST_CALL.format(here=str(Path(__file__).resolve().parent), n_angles=n_angles,
+                              n_energies=n_energies, n_walkers=n_walkers)
+    out = {}
+    with tempfile.TemporaryDirectory() as cache:
+        env = dict(os.environ, NUMBA_CACHE_DIR=cache) if compile else dict(os.environ)
+        for label in ("compile_s", "cache_load_s") if compile else ("cache_load_s",):
+            done = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True,
+                                  text=True, timeout=600)
+            if done.returncode != 0:
+                return {"error": " ".join(done.stderr.strip().splitlines()[-1:])}
+            r = json.loads(done.stdout.strip().splitlines()[-1])
+            out[label] = r["first_s"] - r["second_s"]
+    return out
+
+
 def _profile_summary(func, n_calls: int, top: int = 8) -> list[dict]:
     prof = cProfile.Profile()
     prof.enable()
@@ -177,6 +240,7 @@ def run(
     n_energies: int = 600,
     n_walkers: int = 32,
     repeats: int | None = None,
+    measure_compile: bool = True,
 ) -> dict:
     """Time the whole-map log-likelihood and the Lorentzian floor; returns the figures.
 
@@ -188,6 +252,9 @@ def run(
         Grid of the benchmark (80 x 600 map, 32 walkers by default).
     repeats
         Interleaved repetitions (overrides ``quick``).
+    measure_compile
+        Also time a first call that compiles the kernels from scratch (a few seconds);
+        otherwise only the first call that loads them from numba's cache.
     """
     reps = repeats if repeats is not None else (7 if quick else 21)
     rng = np.random.default_rng(SEED)
@@ -208,19 +275,37 @@ def run(
         "preallocated_float32": (floor_in_place, (e32, c32, h32),
                                  np.empty(grid, dtype=np.float32)),
     }
+    from polkit.models import _kernels
+
+    compiled = _kernels.enabled()
     first = problem.log_likelihood(theta)  # warm-up (and a check that it is finite)
+    previous = _kernels.use_compiled(False)
+    try:
+        numpy_value = problem.log_likelihood(theta)
+    finally:
+        _kernels.use_compiled(previous)
     for fn, args, buf in floors.values():
         fn(*args, out=buf)
-    times: dict[str, list[float]] = {"hot": [], **{k: [] for k in floors}}
+    times: dict[str, list[float]] = {"hot": [], "numpy_path": [], **{k: [] for k in floors}}
     for _ in range(reps):
         gc.collect()
         t0 = time.perf_counter()
         problem.log_likelihood(theta)
         times["hot"].append(time.perf_counter() - t0)
+        if compiled:
+            previous = _kernels.use_compiled(False)
+            try:
+                t0 = time.perf_counter()
+                problem.log_likelihood(theta)
+                times["numpy_path"].append(time.perf_counter() - t0)
+            finally:
+                _kernels.use_compiled(previous)
         for name, (fn, args, buf) in floors.items():
             t0 = time.perf_counter()
             fn(*args, out=buf)
             times[name].append(time.perf_counter() - t0)
+    if not compiled:
+        times["numpy_path"] = times["hot"]
     med = {k: float(np.median(v)) for k, v in times.items()}
     low = {k: float(np.min(v)) for k, v in times.items()}
     t_hot = med["hot"]
@@ -234,6 +319,14 @@ def run(
         "repeats": reps,
         "parameters": problem.space.names,
         "log_likelihood_finite": bool(np.all(np.isfinite(first))),
+        "compiled_path": compiled,
+        "numba": _numba_version(),
+        "compiled_minus_numpy_max_abs": float(np.max(np.abs(first - numpy_value))),
+        "numpy_path_ms": 1e3 * med["numpy_path"],
+        "numpy_path_ms_min": 1e3 * low["numpy_path"],
+        "numpy_path_ratio": med["numpy_path"] / med[strictest],
+        "first_call": (first_call_cost(n_angles, n_energies, n_walkers, compile=measure_compile)
+                       if compiled else None),
         "hot_path_ms": 1e3 * t_hot,
         "hot_path_ms_iqr": [1e3 * float(np.percentile(times["hot"], q)) for q in (25, 75)],
         "hot_path_ns_per_walker_pixel": 1e9 * t_hot / n_elem,
@@ -273,6 +366,19 @@ def print_report(r: dict) -> None:
     print(f"  hot_path_ratio {r['hot_path_ratio']:.2f} (medians) against the fastest float64 "
           f"floor ({r['floor_used']}); {r['hot_path_ratio_of_minima']:.2f} from the minima; "
           f"target <= {r['target_ratio']:g}")
+    if r["compiled_path"]:
+        fc = r["first_call"] or {}
+        labels = {"compile_s": "compiling", "cache_load_s": "loading from numba's cache"}
+        fc_text = ("; ".join(f"{labels[k]} {v:.2f} s" for k, v in fc.items())
+                   if "error" not in fc else f"not measured ({fc['error']})")
+        print(f"  compiled kernels (numba {r['numba']}); the numpy path takes "
+              f"{r['numpy_path_ms']:.2f} ms (ratio {r['numpy_path_ratio']:.2f}); largest "
+              f"log-likelihood difference between the paths "
+              f"{r['compiled_minus_numpy_max_abs']:.1e}")
+        print(f"  one-time cost of the first compiled call (fresh interpreter, numba import "
+              f"included): {fc_text}")
+    else:
+        print("  numpy path (numba not available or POLKIT_COMPILED=0)")
     print("  where the time goes (cProfile, own time per call):")
     for row in r["profile_top"]:
         print(f"    {row['own_ms_per_eval']:8.2f} ms {100 * row['own_share']:5.1f} %  "
