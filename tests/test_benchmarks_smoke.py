@@ -130,6 +130,8 @@ def test_peer_benchmark_polkit_side_runs(tiny_results):
     assert r["same_physics_chi2_max_rel_diff"] < 1e-9
     assert r["polkit"]["min_ess_bulk"] > 0 and r["polkit"]["wall_s"] > 0
     assert set(r["polkit"]["median"]) == set(r["parameters"])
+    assert set(r["one_time_costs_s"]) == {"polkit_first_call_s", "arviz_first_diagnostics_s"}
+    assert all(v >= 0 for v in r["one_time_costs_s"].values())
 
 
 def test_peer_benchmark_lmfit_side_runs(tiny_results):
@@ -139,6 +141,8 @@ def test_peer_benchmark_lmfit_side_runs(tiny_results):
     assert r["lmfit"]["min_ess_bulk"] > 0
     assert math.isfinite(r["ess_per_second_ratio"]) and r["ess_per_second_ratio"] > 0
     assert set(r["median_difference_in_sd"]) == set(r["parameters"])
+    # a fresh process adds the one-time costs to polkit's time, never the other way
+    assert 0 < r["ess_per_second_ratio_fresh_process"] <= r["ess_per_second_ratio"]
 
 
 def test_peer_benchmark_says_why_without_lmfit(bench, monkeypatch):

@@ -66,10 +66,10 @@ def machine() -> dict:
             if line.startswith("model name"):
                 info["cpu_model"] = line.split(":", 1)[1].strip()
                 break
-    for name in ("scipy", "emcee", "arviz", "xarray", "lmfit"):
+    for name in ("scipy", "emcee", "arviz", "xarray", "lmfit", "numba"):
         try:
             info[name] = importlib.import_module(name).__version__
-        except ImportError:
+        except Exception:  # not installed, or (numba) does not import against this numpy
             info[name] = None
     try:
         deps = np.show_config(mode="dicts")["Build Dependencies"]
@@ -103,6 +103,10 @@ def figures(results: dict) -> dict:
                    hot_path_ms=round(r["hot_path_ms"], 3),
                    floor_ms={k: round(v, 3) for k, v in r["floor_ms"].items()},
                    hot_path_grid=r["grid"])
+        if "compiled_path" in r:
+            out.update(hot_path_compiled=r["compiled_path"],
+                       hot_path_numpy_path_ratio=round(r["numpy_path_ratio"], 3),
+                       hot_path_first_call_s=r["first_call"])
     r = results.get("peer")
     if r and "error" not in r:
         out["ess_per_second_ratio"] = (None if r.get("ess_per_second_ratio") is None
@@ -118,6 +122,11 @@ def figures(results: dict) -> dict:
                 peer_max_median_difference_sd=round(max(r["median_difference_in_sd"].values()),
                                                     3),
             )
+            if r.get("ess_per_second_ratio_fresh_process") is not None:
+                out["ess_per_second_ratio_fresh_process"] = round(
+                    r["ess_per_second_ratio_fresh_process"], 2)
+                out["peer_one_time_costs_s"] = {k: round(v, 2)
+                                                for k, v in r["one_time_costs_s"].items()}
             loop = r.get("per_angle_loop_comparison")
             if loop:
                 out["ess_per_second_ratio_per_angle_loop"] = round(loop["ess_per_second_ratio"],
@@ -174,7 +183,7 @@ def _print_machine(m: dict) -> None:
     print(f"machine: {m.get('cpu_model', m['machine'])}, {m['cpu_count']} cores "
           f"({m['usable_cores']} usable), load average {m.get('load_average_1_5_15min')}")
     print(f"  Python {m['python']}, numpy {m['numpy']}, scipy {m['scipy']}, emcee {m['emcee']}, "
-          f"ArviZ {m['arviz']}, lmfit {m['lmfit']}")
+          f"ArviZ {m['arviz']}, lmfit {m['lmfit']}, numba {m.get('numba')}")
     print(f"  BLAS: {blas.get('name')} {blas.get('version')} "
           f"({blas.get('openblas configuration', '')}); threadpools: {m['threadpools']}")
 
