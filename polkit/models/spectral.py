@@ -30,6 +30,17 @@ positions, widths and residues) and evaluates blocks of rows on demand.
 :func:`project_linear` consumes it block by block, so the full ``(W, A, K, E)`` array
 is never formed and each block stays in the processor cache while its Gram matrices
 are accumulated.  ``numpy.asarray(basis)`` materialises the whole array when wanted.
+
+Compiled path
+-------------
+The bases built here also carry the few numbers a compiled kernel needs
+(:mod:`polkit.models._kernels`, numba): it evaluates each row's line shapes and
+accumulates its Gram sums in one pass over the energy axis, then solves the small
+problems in closed form, with the same formulas as the numpy path (the tests hold the
+two to rounding).  It is used whenever numba imports; ``POLKIT_COMPILED=0`` (or
+``polkit.models._kernels.use_compiled(False)``) selects the numpy path.  A basis built
+another way (an ndarray, or a :class:`MapBasis` from elsewhere) always takes the numpy
+path.
 """
 
 from __future__ import annotations
@@ -960,7 +971,9 @@ def project_linear(
     enumerating all ``2^K`` active sets in closed form (vectorised over walkers and
     angles) and keeping the admissible solution with the smallest ``chi^2``: with
     ``nonneg`` this is the constrained optimum of the convex problem, without it the
-    ordinary least-squares optimum (robust to a singular column).  Numerically
+    ordinary least-squares optimum (robust to a singular column).  For the bases of
+    :func:`emission_basis` and :func:`reflectance_basis` the Gram sums and the small
+    solves run in compiled kernels when numba is available (module notes).  Numerically
     singular sub-problems (e.g. a branch lying entirely in masked pixels) are
     skipped; such amplitudes are 0.  A basis with NaN or infinite values gives a NaN
     ``chi^2`` for that walker (never a silent finite value).
