@@ -15,6 +15,15 @@ decisions and produces the same chain as an uninterrupted one):
 2. all ensembles are then continued to a common length; in strict mode the common
    length grows (by half, at least ``check_every`` steps) until nested R-hat over
    the ensembles is at most ``nested_rhat_max`` or ``max_steps`` is reached.
+
+Room on disk: before each stretch of steps, and again before each stored step, the
+free space and the file-size limit are checked against what the checkpoint will need
+(whole HDF5 chunks plus a margin, see :func:`polkit.io.check_room`).  When it does not
+fit, the run stops with one :class:`OSError` naming the checkpoint and the fix before
+h5py is asked to write; the stored steps stay readable and ``resume=True`` continues
+them.  Only a disk that fills up within a single step (another program writing) meets
+h5py's own failure: it is reported the same way, but HDF5 may leave the checkpoint
+unreadable and the interpreter may crash on exit.
 """
 
 from __future__ import annotations
@@ -306,6 +315,8 @@ def _group_attr(path: Path | None, group: str, key: str, value=None):
     if value is None:
         with h5py.File(path, "r") as fh:
             return fh[group].attrs.get(key) if group in fh else None
+    check_room(path, _CHECKPOINT_METADATA_BYTES, purpose="the run's progress record",
+               fix=_ROOM_FIX)
     with _checkpoint_writes(path), h5py.File(path, "a") as fh:
         fh[group].attrs[key] = value
     return value
