@@ -346,10 +346,11 @@ def initial_ball(
     # a curvature measured across a kink of the posterior (e.g. a coupling pressed to zero,
     # where two complex branch energies meet) can be so large that the ball rounds to one
     # point in floating point; keep every spread above 1e-9 of the parameter's magnitude or
-    # prior width so the ensemble always spans the space (the pre-burn widens it).
+    # prior width so the ensemble always spans the space (the pre-burn widens it).  A
+    # scale of exactly zero is the caller's request and is refused below.
     # common practice, no published source
     width = np.where(np.isfinite(hi - lo), hi - lo, 0.0)
-    scale = np.maximum(scale, 1e-9 * np.maximum(np.abs(x), width))
+    scale = np.where(scale > 0, np.maximum(scale, 1e-9 * np.maximum(np.abs(x), width)), scale)
     p0 = x + spread * scale * rng.standard_normal((n_walkers, space.ndim))
     for _ in range(100):
         out = (p0 < lo) | (p0 > hi)
