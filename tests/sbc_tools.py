@@ -54,7 +54,7 @@ from polkit.inference import (
 )
 from polkit.models import spectral
 from polkit.models.coherent import steady_state_sweep
-from polkit.workflows.dispersion_model import DispersionProblem, line_maximum
+from polkit.workflows.dispersion_model import DispersionProblem, fitted_line_centre
 from polkit.workflows.power_model import PowerProblem
 
 MEV = 1e-3
@@ -348,7 +348,7 @@ class PeakTableCase:
         p = helper.physics(truth[None, :])
         poles, res = spectral.branch_poles(self.angle, axis="angle",
                                            **{k: v for k, v in p.items() if k != "axis"})
-        pos = line_maximum(poles, res)[0]  # (A, 2) eV
+        pos = fitted_line_centre(poles, res)[0]  # (A, 2) eV
         wid = (-2.0 * poles.imag)[0] / MEV  # (A, 2) meV
         de = np.broadcast_to(np.array([0.08, 0.2]) * MEV, pos.shape).copy()
         dw = np.broadcast_to(np.array([0.03, 0.08]), pos.shape).copy()
