@@ -44,6 +44,7 @@ __all__ = [
     "DispersionProblem",
     "noise_inverse_variance",
     "fitted_line_centre",
+    "table_centre_response",
     "line_maximum",
     "guess_from_peaks",
     "default_space",
@@ -355,6 +356,9 @@ class DispersionProblem:
                 self.table
             )
             self._t_all = self._tfound.sum(axis=1) == (self.n_excitons + 1)
+            self._t_resp = None
+            if self.kind == "emission":
+                self._t_resp = table_centre_response(self.table, self.energy, self.inv_var)
 
     def set_noise(self, inv_var: np.ndarray, note: str = "") -> None:
         """Set the inverse variance per pixel and precompute the data side of the projection."""
@@ -474,18 +478,32 @@ class DispersionProblem:
         poles, res = spectral.branch_poles(
             self.in_plane, **{k: v for k, v in p.items() if k != "axis"}, axis=self.axis
         )
-        pos = fitted_line_centre(poles, res)[:, :, None, :]  # (W, A, 1, K)
+        h = -poles.imag
+        ratio = np.divide(res.imag, res.real, out=np.zeros_like(h), where=res.real > 0)
         wid = (-2.0 * poles.imag)[:, :, None, :]
         e = np.nan_to_num(self._te)[None, :, :, None]  # (1, A, P, 1)
-        r2 = ((e - pos) / self._tde[None, :, :, None]) ** 2
+        de = self._tde[None, :, :, None]
         w_ok = np.isfinite(self._tw) & np.isfinite(self._tdw) & (self._tdw > 0)
         wr = np.where(w_ok, self._tw, 0.0)[None, :, :, None]
         wd = np.where(w_ok, self._tdw, 1.0)[None, :, :, None]
-        r2 = r2 + np.where(w_ok[None, :, :, None], ((wr - wid) / wd) ** 2, 0.0)
+        r2w = np.where(w_ok[None, :, :, None], ((wr - wid) / wd) ** 2, 0.0)  # (W, A, P, K)
+        resp = self._t_resp
+        if resp is None:  # first order, uniform weights (fitted_line_centre)
+            pos = (poles.real - h * ratio)[:, :, None, :]
+        else:  # each peak's own response to the asymmetry of the branch it is matched to
+            own = np.diagonal(resp, axis1=1, axis2=2)  # (A, P)
+            pos = poles.real[:, :, None, :] + own[None, :, :, None] * ratio[:, :, None, :]
+        r2 = ((e - pos) / de) ** 2 + r2w
         n_peaks, k = r2.shape[2], r2.shape[3]
         best = np.min(r2, axis=3)  # (W, A, P)
         if n_peaks == k:
-            ordered = np.take_along_axis(r2, np.arange(k)[None, None, :, None], axis=3)[..., 0]
+            if resp is None:
+                ordered = np.take_along_axis(r2, np.arange(k)[None, None, :, None],
+                                             axis=3)[..., 0]
+            else:  # every branch found: the joint response, neighbours' asymmetry included
+                pos_o = poles.real + np.einsum("apk,wak->wap", resp, ratio)
+                ordered = ((e[..., 0] - pos_o) / de[..., 0]) ** 2 + np.diagonal(
+                    r2w, axis1=2, axis2=3)
             best = np.where(self._t_all[None, :, None], ordered, best)
         chi2 = np.sum(np.where(self._tfound[None], best, 0.0), axis=(1, 2))
         s = self._noise_scale(theta)
@@ -579,6 +597,79 @@ class DispersionProblem:
             axis=-1,
         )
         return grid, poles.real, cav, exs
+
+
+def table_centre_response(table: xr.Dataset, energy: np.ndarray,
+                          inv_var: np.ndarray) -> np.ndarray | None:
+    """How the centres of a per-angle Lorentzian fit respond to asymmetric branch lines.
+
+    A branch line of area ``A`` is ``A (h - beta x) / (pi (x^2 + h^2))`` with ``beta = b/a``
+    the ratio of the imaginary to the real part of its photon residue.  A weighted
+    least-squares fit of symmetric Lorentzians plus a constant (what
+    :func:`polkit.extract.peak_table` does) responds to the odd parts linearly, to first
+    order in ``beta``: ``d p = (J^T W J)^-1 J^T W sum_k beta_k o_k`` with ``J`` the fit's
+    Jacobian at the table's own parameters, ``W`` the pixel weights and
+    ``o_k = -A_k x / (pi (x^2 + h_k^2))`` (the Gauss-Newton step of the perturbed fit,
+    e.g. Bjorck, Numerical Methods for Least Squares Problems, 1996, section 1.4).  The
+    centre rows give ``R[a, j, k]``, the shift of peak ``j``'s centre per unit ``beta_k``
+    (eV).  For one line, uniform weights and a wide window ``R = -h``
+    (:func:`fitted_line_centre`); shot-noise weights and a neighbouring line change it,
+    which is what this corrects.
+
+    Parameters
+    ----------
+    table
+        A Lorentzian peak table (``energy`` eV, ``fwhm`` meV, ``area`` signal x meV,
+        ``background``).
+    energy, inv_var
+        The map's energy axis (eV) and inverse pixel variances ``(A, E)``.
+
+    Returns
+    -------
+    ndarray or None
+        ``R`` of shape ``(A, P, P)`` (zero rows and columns for peaks not found), or None
+        when the table lacks what is needed (a Voigt table, no areas).
+    """
+    need = ("energy", "fwhm", "area", "found")
+    if table.attrs.get("profile", "lorentzian") != "lorentzian" or any(
+            n not in table for n in need):
+        return None
+    axis = in_plane_axis(table)
+    x_c = np.asarray(table["energy"].transpose(axis, ...).values, dtype=float)
+    h_all = 0.5 * MEV * np.asarray(table["fwhm"].transpose(axis, ...).values, dtype=float)
+    area = MEV * np.asarray(table["area"].transpose(axis, ...).values, dtype=float)
+    found = np.asarray(table["found"].transpose(axis, ...).values) > 0
+    n_a, n_p = x_c.shape
+    if inv_var.shape[0] != n_a:
+        return None
+    out = np.zeros((n_a, n_p, n_p))
+    for a in range(n_a):
+        ok = found[a] & np.isfinite(x_c[a]) & np.isfinite(h_all[a]) & np.isfinite(area[a]) & (
+            h_all[a] > 0)
+        idx = np.flatnonzero(ok)
+        w = inv_var[a]
+        if idx.size == 0 or np.count_nonzero(w > 0) < 3 * idx.size + 2:
+            continue
+        u = energy[None, :] - x_c[a, idx, None]  # (k, E)
+        h = h_all[a, idx, None]
+        d = u * u + h * h
+        phi = h / (np.pi * d)
+        cols = [np.ones_like(energy)]
+        for j in range(idx.size):
+            a_j = area[a, idx[j]]
+            cols += [a_j * 2.0 * u[j] * h[j] / (np.pi * d[j] ** 2),  # d/d centre
+                     a_j * 0.5 * (u[j] ** 2 - h[j] ** 2) / (np.pi * d[j] ** 2) * 2.0,  # d/d h
+                     phi[j]]  # d/d area
+        jac = np.stack(cols, axis=1)  # (E, 1 + 3k)
+        odd = -area[a, idx, None] * u / (np.pi * d)  # (k, E)
+        sw = np.sqrt(np.clip(w, 0.0, None))
+        try:
+            step, *_ = np.linalg.lstsq(jac * sw[:, None], (odd * sw[None, :]).T, rcond=None)
+        except np.linalg.LinAlgError:
+            continue
+        centre_rows = 1 + 3 * np.arange(idx.size)
+        out[a][np.ix_(idx, idx)] = step[centre_rows, :]
+    return out
 
 
 def fitted_line_centre(poles: np.ndarray, residues: np.ndarray) -> np.ndarray:
