@@ -199,7 +199,7 @@ def test_same_seed_gives_the_same_numbers(refined):
 
 
 def test_refusals_name_the_problem(panel, emission_map):
-    with pytest.raises(DataError, match="expected model 'two' or 'three'"):
+    with pytest.raises(DataError, match="expected model 'weak', 'two' or 'three'"):
         dispersion_panel(emission_map, model="four")
     with pytest.raises(DataError, match="unknown parameters"):
         panel.set_values({"rabi": 3.0})
