@@ -140,7 +140,7 @@ class DispersionPanel(FitPanel):
         # the peak table warns (DataWarning) when only one branch is visible
         self.table, self.guess, space = st.peak_start(
             first.data, n_excitons=self.n_excitons, kind=kind_model, priors=priors,
-            profile=profile)
+            profile=profile, coupling=self.source.coupling)
         self._tables = {(tuple(map(float, win_x)), tuple(map(float, win_e))): self.table}
         self.space = space
         self._theta = st.start_vector(space, self.guess, keep_inside=True, log_margin=True)
@@ -321,7 +321,8 @@ class DispersionPanel(FitPanel):
                                                  "lp_linewidth_k0")}
         idx = {n: i for i, n in enumerate(self.space.names)}
         mean_width = 0.5 * (theta[idx["cavity_linewidth"]] + theta[idx["exciton_linewidth"]])
-        strong = theta[idx["rabi_splitting"]] > mean_width
+        rabi = theta[idx["rabi_splitting"]] if "rabi_splitting" in idx else 0.0  # weak: g = 0
+        strong = rabi > mean_width
         rows = [
             ("detuning E_C0 - E_X", f"{d['detuning']:+.3f}", "meV"),
             ("|X|^2 at k = 0 (lower polariton)", f"{d['exciton_fraction_k0']:.3f}", "1"),
@@ -329,7 +330,7 @@ class DispersionPanel(FitPanel):
             ("lower polariton at k = 0", f"{d['lp_energy_k0']:.5f}", "eV"),
             ("lower-polariton linewidth at k = 0", f"{d['lp_linewidth_k0']:.3f}", "meV"),
             ("2g vs (gamma_C + gamma_X)/2",
-             f"{theta[idx['rabi_splitting']]:.2f} {'>' if strong else '<='} {mean_width:.2f}",
+             f"{rabi:.2f} {'>' if strong else '<='} {mean_width:.2f}",
              "meV"),
         ]
         body = "".join(f"<tr><td>{html.escape(a)}</td><td style='text-align:right'>{b}</td>"
@@ -350,8 +351,7 @@ class DispersionPanel(FitPanel):
         # 1. the peak-table posterior is smooth: its mode from the sliders is a safe start
         table_map = st.table_mode(problem, x0, table=self.peak_table())
         # 2. whole-map mode from the table mode and from the sliders; keep the better
-        candidates = [st.refine_mode(problem, table_map.x), st.refine_mode(problem, x0)]
-        start = max(candidates, key=lambda c: c.log_post)
+        start = st.whole_map_start(problem, x0, table_map.x)
         # 3. noise model at that mode (as the workflow does), then the mode again
         st.calibrate_problem_noise(problem, start.x, self._problem_source.data.attrs)
         return st.refine_mode(problem, start.x)
