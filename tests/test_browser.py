@@ -79,6 +79,8 @@ def lab(tmp_path):
     nb = nbformat.read(ROOT / "notebooks" / "01_dispersion.ipynb", as_version=4)
     params = next(c for c in nb.cells if "parameters" in c.metadata.get("tags", []))
     params.source += "\nmax_steps = 30  # short run for the browser test"
+    # no model comparison (tested elsewhere): it would keep the kernel busy while the slider moves
+    params.source += "\ncompare_models = []"
     nbformat.write(nb, tmp_path / "notebooks" / "01_dispersion.ipynb")
 
     token = uuid.uuid4().hex
