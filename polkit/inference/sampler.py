@@ -461,6 +461,7 @@ def _checkpoint_backend(path: Path, name: str):
         @contextlib.contextmanager
         def session(self):
             self._handle = h5py.File(self.filename, "a")
+            self._datasets = None
             try:
                 yield
             except BaseException:
@@ -480,12 +481,42 @@ def _checkpoint_backend(path: Path, name: str):
                 return _OpenFile(self._handle)
             return super().open(mode)
 
+        _datasets = None
+
+        def grow(self, ngrow, blobs):
+            self._datasets = None  # grow may create the blobs dataset
+            super().grow(ngrow, blobs)
+
         def save_step(self, state, accepted):
             if self.before_step is not None:
                 self.before_step()
-            super().save_step(state, accepted)
-            if self._handle is not None:
-                self._handle.flush()
+            if self._handle is None:
+                super().save_step(state, accepted)
+                return
+            # emcee's own save_step reopens the group and its datasets and rereads their
+            # attributes several times per step; with the file held open the same writes
+            # (chain, log_prob, blobs, accepted, random state, iteration, in emcee's layout)
+            # are made through handles looked up once per stretch
+            g = self._handle[self.name]
+            if self._datasets is None:
+                self._datasets = {k: g[k] for k in ("chain", "log_prob", "accepted", "blobs")
+                                  if k in g}
+            d = self._datasets
+            if state.coords.shape != d["chain"].shape[1:]:
+                raise ValueError(f"invalid coordinate dimensions; expected "
+                                 f"{d['chain'].shape[1:]}")
+            if (state.blobs is None) != ("blobs" not in d):
+                raise ValueError("blobs appeared or vanished between steps")
+            it = int(g.attrs["iteration"])
+            d["chain"][it] = state.coords
+            d["log_prob"][it] = state.log_prob
+            if state.blobs is not None:
+                d["blobs"][it] = state.blobs
+            d["accepted"][:] = d["accepted"][:] + accepted
+            for i, v in enumerate(state.random_state):
+                g.attrs[f"random_state_{i}"] = v
+            g.attrs["iteration"] = it + 1
+            self._handle.flush()
 
     return _Backend(os.fspath(path), name=name)
 
