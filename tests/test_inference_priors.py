@@ -218,3 +218,31 @@ def test_space_refuses_duplicates_and_missing_units():
         ParameterSpace([p, p])
     with pytest.raises(ConfigError, match="needs units"):
         Parameter("a", "", Prior.normal(0, 1))
+
+
+def test_joint_log_prior_is_the_sum_of_scipy_log_densities():
+    # Source: scipy.stats (uniform, loguniform, norm, truncnorm logpdf), an independent
+    # implementation of each density; the joint prior of independent parameters is their sum
+    import numpy as np
+    from scipy import stats
+
+    from polkit.inference.priors import Parameter, ParameterSpace, Prior
+
+    sp = ParameterSpace([
+        Parameter("a", "1", Prior.uniform(0.0, 2.0)),
+        Parameter("b", "1", Prior.loguniform(0.1, 10.0)),
+        Parameter("c", "1", Prior.normal(1.0, 2.0)),
+        Parameter("d", "1", Prior.truncnormal(0.0, 1.0, -1.0, 2.0)),
+    ])
+    rng = np.random.default_rng(0)
+    theta = rng.uniform(-1.5, 3.0, (2000, 4))
+    theta[5, 1] = np.nan
+    expect = (stats.uniform(0.0, 2.0).logpdf(theta[:, 0])
+              + stats.loguniform(0.1, 10.0).logpdf(theta[:, 1])
+              + stats.norm(1.0, 2.0).logpdf(theta[:, 2])
+              + stats.truncnorm(-1.0, 2.0, loc=0.0, scale=1.0).logpdf(theta[:, 3]))
+    expect = np.where(np.isnan(expect), -np.inf, expect)
+    got = sp.log_prior(theta)
+    assert np.array_equal(np.isfinite(got), np.isfinite(expect))
+    ok = np.isfinite(expect)
+    np.testing.assert_allclose(got[ok], expect[ok], rtol=1e-12, atol=1e-12)

@@ -389,6 +389,15 @@ class ParameterSpace:
         if dupes:
             raise ConfigError(f"duplicate parameter names {dupes}", key=dupes[0])
         self._index = {n: i for i, n in enumerate(names)}
+        # uniform and log-uniform priors (the common case) are evaluated together
+        box = [j for j, p in enumerate(self._params) if p.prior.kind in ("uniform", "loguniform")]
+        self._box = np.array(box, dtype=int)
+        self._box_lo = np.array([self._params[j].prior.low for j in box], dtype=float)
+        self._box_hi = np.array([self._params[j].prior.high for j in box], dtype=float)
+        self._box_log = np.array([self._params[j].prior.kind == "loguniform" for j in box],
+                                 dtype=bool)
+        self._box_norm = float(sum(self._params[j].prior._lognorm for j in box))
+        self._other = [j for j in range(len(self._params)) if j not in set(box)]
 
     # -- container protocol -----------------------------------------------------------
     def __len__(self) -> int:
@@ -462,8 +471,14 @@ class ParameterSpace:
                 f"theta has shape {theta.shape}; expected (..., {self.ndim}) for {self.names}"
             )
         total = np.zeros(theta.shape[:-1])
-        for j, p in enumerate(self._params):
-            total = total + p.prior.logpdf(theta[..., j])
+        if self._box.size:
+            x = theta[..., self._box]
+            with np.errstate(invalid="ignore", divide="ignore"):
+                inside = np.all((x >= self._box_lo) & (x <= self._box_hi), axis=-1)
+                logs = np.log(np.where(self._box_log & (x > 0), x, 1.0)).sum(axis=-1)
+            total = np.where(inside, self._box_norm - logs, -np.inf)
+        for j in self._other:
+            total = total + self._params[j].prior.logpdf(theta[..., j])
         return total
 
     def sample_prior(self, rng: np.random.Generator, n: int) -> np.ndarray:
