@@ -11,6 +11,7 @@
 
 from __future__ import annotations
 
+import logging
 import os
 from collections.abc import Callable, Sequence
 from pathlib import Path
@@ -59,6 +60,33 @@ def corner_data(result, names: Sequence[str]) -> tuple[np.ndarray, list[str]]:
     units = [result.posterior[n].attrs.get("units", "") for n in names]
     labels = [f"{n}\n[{u}]" if u and u != "1" else n for n, u in zip(names, units, strict=True)]
     return data, labels
+
+
+class _NoContourNotes(logging.Filter):
+    """Drops corner's note that a 2-D panel has too few distinct points for contours."""
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        return "Too few points to create valid contours" not in record.getMessage()
+
+
+def corner_figure(data: np.ndarray, labels: Sequence[str]):
+    """A corner plot (corner) with 16/50/84 % quantiles.
+
+    corner logs a warning on the root logger for every panel of a parameter held at one
+    value (e.g. pinned at a prior bound), which is not news in a plot that shows it; those
+    notes are dropped while the plot is drawn.
+    """
+    import corner
+
+    pyplot()
+    root = logging.getLogger()
+    quiet = _NoContourNotes()
+    root.addFilter(quiet)
+    try:
+        return corner.corner(data, labels=list(labels), quantiles=[0.16, 0.5, 0.84],
+                             show_titles=False, label_kwargs={"fontsize": 8})
+    finally:
+        root.removeFilter(quiet)
 
 
 def trace_figure(result):

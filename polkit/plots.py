@@ -10,6 +10,7 @@ from pathlib import Path
 
 import numpy as np
 
+from . import _mpl
 from ._mpl import corner_data, posterior_matrix, trace_figure, write_figures
 from ._mpl import pyplot as _plt
 
@@ -119,21 +120,10 @@ def residual_figure(result):
 
 def corner_figure(result, names: list[str] | None = None):
     """Corner plot (corner) of the sampled parameters and the detuning."""
-    import corner
-
-    _plt()
     names = names or [n for n in result.space.names if n != "noise_scale"] + (
         ["detuning"] if "detuning" in result.posterior else []
     )
-    data, labels = corner_data(result, names)
-    fig = corner.corner(
-        data,
-        labels=labels,
-        quantiles=[0.16, 0.5, 0.84],
-        show_titles=False,
-        label_kwargs={"fontsize": 8},
-    )
-    return fig
+    return _mpl.corner_figure(*corner_data(result, names))
 
 
 def dispersion_figures(result, folder: str | os.PathLike) -> list[Path]:

@@ -15,6 +15,7 @@ from pathlib import Path
 
 import numpy as np
 
+from . import _mpl
 from ._mpl import corner_data, posterior_matrix, trace_figure, write_figures
 from ._mpl import pyplot as _plt
 
@@ -179,14 +180,9 @@ def residual_figure(result, *, n_draws: int = 300):
 
 def corner_figure(result):
     """Corner plot (corner) of the sampled physics parameters (noise parameters left out)."""
-    import corner
-
-    _plt()
     noise = {c.noise_param for c in result.problem().channels.values()}
     names = [n for n in result.space.names if n not in noise]
-    data, labels = corner_data(result, names)
-    return corner.corner(data, labels=labels, quantiles=[0.16, 0.5, 0.84], show_titles=False,
-                         label_kwargs={"fontsize": 8})
+    return _mpl.corner_figure(*corner_data(result, names))
 
 
 def power_figures(result, folder: str | os.PathLike) -> list[Path]:
