@@ -101,7 +101,7 @@ def test_full_calibration(name):
     # within binomial bounds, at family-wise 1 % (Bonferroni over 3 checks per parameter).
     run = _full(name)
     failures = run.failures(10, 0.01)
-    if name == "whole_map":  # the noise scale is checked (and known to fail) below
+    if name == "whole_map":  # the noise scale has its own test below
         failures = [f for f in failures if not f.startswith("noise_scale")]
     assert not failures, "\n".join([run.table(10), *failures])
 
