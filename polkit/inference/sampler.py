@@ -51,7 +51,7 @@ from .optimize import MapResult, check_ensemble, initial_ball
 from .posterior import LogPosterior, describe_point
 from .priors import ParameterSpace
 
-__all__ = ["SamplerOutput", "run_ensemble", "default_moves"]
+__all__ = ["SamplerOutput", "run_ensemble", "default_moves", "root_seed"]
 
 log = logging.getLogger(__name__)
 
@@ -200,7 +200,14 @@ class SamplerOutput:
 # ----------------------------------------------------------------------------------------
 # seeds and checkpoints
 # ----------------------------------------------------------------------------------------
-def _root_seed(seed) -> np.random.SeedSequence:
+def root_seed(seed) -> np.random.SeedSequence:
+    """The root :class:`~numpy.random.SeedSequence` of a run from an int, a sequence or None.
+
+    Raises
+    ------
+    ConfigError
+        For anything but a non-negative int, None or a SeedSequence (key ``seed``).
+    """
     if seed is None:
         return np.random.SeedSequence()
     if isinstance(seed, np.random.SeedSequence):
@@ -209,7 +216,7 @@ def _root_seed(seed) -> np.random.SeedSequence:
     if isinstance(seed, (int, np.integer)) and not isinstance(seed, bool) and seed >= 0:
         return np.random.SeedSequence(int(seed))
     raise ConfigError(
-        f"seed must be a non-negative int, None or numpy.random.SeedSequence; got {seed!r}",
+        f"expected a non-negative int, None or numpy.random.SeedSequence; found {seed!r}",
         key="seed",
     )
 
@@ -247,7 +254,7 @@ def _open_checkpoint(path: Path, space, n_walkers, seed, resume) -> np.random.Se
             path=path,
         )
     if not path.exists():
-        seed_seq = _root_seed(seed)
+        seed_seq = root_seed(seed)
         check_room(path, _CHECKPOINT_METADATA_BYTES, purpose="a new checkpoint")
         with _checkpoint_writes(path):
             path.parent.mkdir(parents=True, exist_ok=True)
@@ -294,7 +301,7 @@ def _open_checkpoint(path: Path, space, n_walkers, seed, resume) -> np.random.Se
     spawn_key = tuple(json.loads(text("polkit_seed_spawn_key")))
     stored = np.random.SeedSequence(entropy, spawn_key=spawn_key)
     if seed is not None:
-        asked = _root_seed(seed)
+        asked = root_seed(seed)
         if _entropy_int(asked) != _entropy_int(stored) or tuple(asked.spawn_key) != spawn_key:
             raise ConfigError(
                 f"the checkpoint was started with seed entropy {entropy} (spawn key "
@@ -814,7 +821,7 @@ def run_ensemble(
     else:
         if resume:
             raise ConfigError("resume=True needs a checkpoint path", key="resume")
-        root = _root_seed(seed)
+        root = root_seed(seed)
     children = root.spawn(n_ens)
     log_post = LogPosterior(log_likelihood, space, n_extras=len(extras_units))
     positions = _initial_positions(x0, space, n_walkers, n_ens)

@@ -425,7 +425,8 @@ def dispersion_panel(
     source
         A map file (any format :func:`polkit.load_map` reads) or a canonical map.
     model
-        ``"two"`` (photon + one exciton) or ``"three"`` (photon + two excitons).
+        ``"two"`` (photon + one exciton), ``"three"`` (photon + two excitons) or ``"weak"``
+        (the uncoupled cavity mode and exciton line).
     kind
         ``"emission"``, ``"reflectance"`` or ``"transmission"``; default from the map.
     priors

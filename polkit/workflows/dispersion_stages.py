@@ -152,7 +152,8 @@ def open_map(
     source
         A map file (any format :func:`polkit.load_map` reads) or a canonical map.
     model
-        ``"two"`` (photon + one exciton) or ``"three"`` (photon + two excitons).
+        ``"two"`` (photon + one exciton), ``"three"`` (photon + two excitons) or ``"weak"``
+        (the uncoupled cavity mode and exciton line).
     kind
         ``"emission"``, ``"reflectance"`` or ``"transmission"``; default from the map's
         attributes.  Transmission peaks follow the photon spectral function, so it is

@@ -58,6 +58,7 @@ import numpy as np
 import xarray as xr
 
 from ..errors import ConfigError, DataError, PolkitError
+from ..inference.sampler import root_seed
 from ..io import write_json, write_netcdf, write_text
 from .dispersion_model import COUPLED_MODELS as MODELS
 
@@ -1312,19 +1313,6 @@ def _fmt_mm(v) -> str:
 # ----------------------------------------------------------------------------------------
 # driver
 # ----------------------------------------------------------------------------------------
-def _root_seed(seed) -> np.random.SeedSequence:
-    if seed is None:
-        return np.random.SeedSequence()
-    if isinstance(seed, np.random.SeedSequence):
-        return np.random.SeedSequence(seed.entropy, spawn_key=seed.spawn_key)
-    if isinstance(seed, (int, np.integer)) and not isinstance(seed, bool) and seed >= 0:
-        return np.random.SeedSequence(int(seed))
-    raise ConfigError(
-        f"expected a non-negative int, None or numpy.random.SeedSequence; found {seed!r}",
-        key="seed",
-    )
-
-
 def _state(out: Path, mode: str, model: str, seed, priors_key) -> np.random.SeedSequence:
     """Open or create ``survey_state.json``; returns the root seed of this survey."""
     path = out / STATE_FILE
@@ -1348,7 +1336,7 @@ def _state(out: Path, mode: str, model: str, seed, priors_key) -> np.random.Seed
         entropy = int(old["seed_entropy"])
         spawn_key = tuple(int(k) for k in old.get("seed_spawn_key", []))
         if seed is not None:
-            asked = _root_seed(seed)
+            asked = root_seed(seed)
             if (int(asked.entropy), tuple(asked.spawn_key)) != (entropy, spawn_key):
                 raise ConfigError(
                     f"this folder holds a survey seeded with entropy {entropy}; asked for "
@@ -1362,7 +1350,7 @@ def _state(out: Path, mode: str, model: str, seed, priors_key) -> np.random.Seed
         state = dict(old, priors=priors_key)
         write_json(path, state)
         return np.random.SeedSequence(entropy, spawn_key=spawn_key)
-    root = _root_seed(seed)
+    root = root_seed(seed)
     write_json(path, {
         "format": _STATE_FORMAT,
         "mode": mode,
