@@ -450,6 +450,9 @@ class _OpenFile:
         return False
 
 
+_UNSET = object()
+
+
 def _checkpoint_backend(path: Path, name: str):
     """An emcee HDFBackend that keeps the file open while sampling and flushes every step.
 
@@ -489,6 +492,7 @@ def _checkpoint_backend(path: Path, name: str):
             return super().open(mode)
 
         _datasets = None
+        _cache = None
 
         def grow(self, ngrow, blobs):
             self._datasets = None  # grow may create the blobs dataset
@@ -504,25 +508,36 @@ def _checkpoint_backend(path: Path, name: str):
             # attributes several times per step; with the file held open the same writes
             # (chain, log_prob, blobs, accepted, random state, iteration, in emcee's layout)
             # are made through handles looked up once per stretch
-            g = self._handle[self.name]
             if self._datasets is None:
+                g = self._handle[self.name]
                 self._datasets = {k: g[k] for k in ("chain", "log_prob", "accepted", "blobs")
                                   if k in g}
-            d = self._datasets
+                self._cache = {"group": g, "iteration": int(g.attrs["iteration"]),
+                               "accepted": g["accepted"][:], "random_state": {}}
+            d, c = self._datasets, self._cache
+            g = c["group"]
             if state.coords.shape != d["chain"].shape[1:]:
                 raise ValueError(f"invalid coordinate dimensions; expected "
                                  f"{d['chain'].shape[1:]}")
             if (state.blobs is None) != ("blobs" not in d):
                 raise ValueError("blobs appeared or vanished between steps")
-            it = int(g.attrs["iteration"])
+            it = c["iteration"]
             d["chain"][it] = state.coords
             d["log_prob"][it] = state.log_prob
             if state.blobs is not None:
                 d["blobs"][it] = state.blobs
-            d["accepted"][:] = d["accepted"][:] + accepted
+            c["accepted"] = c["accepted"] + accepted
+            d["accepted"][:] = c["accepted"]
+            # the random state as emcee stores it; parts unchanged since the last step of
+            # this stretch (the generator's name, the cached Gaussian) are not rewritten
+            written = c["random_state"]
             for i, v in enumerate(state.random_state):
-                g.attrs[f"random_state_{i}"] = v
+                key = f"random_state_{i}"
+                if isinstance(v, np.ndarray) or written.get(key, _UNSET) != v:
+                    g.attrs[key] = v
+                    written[key] = v
             g.attrs["iteration"] = it + 1
+            c["iteration"] = it + 1
             self._handle.flush()
 
     return _Backend(os.fspath(path), name=name)
