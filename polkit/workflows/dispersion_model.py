@@ -359,6 +359,16 @@ class DispersionProblem:
             self._t_resp = None
             if self.kind == "emission":
                 self._t_resp = table_centre_response(self.table, self.energy, self.inv_var)
+            # the table side of the likelihood, fixed for the fit: (1, A, P, 1) arrays
+            w_ok = np.isfinite(self._tw) & np.isfinite(self._tdw) & (self._tdw > 0)
+            self._t_e = np.nan_to_num(self._te)[None, :, :, None]
+            self._t_de = self._tde[None, :, :, None]
+            self._t_w_ok = w_ok[None, :, :, None]
+            self._t_wr = np.where(w_ok, self._tw, 0.0)[None, :, :, None]
+            self._t_wd = np.where(w_ok, self._tdw, 1.0)[None, :, :, None]
+            self._t_own = (None if self._t_resp is None else
+                           np.diagonal(self._t_resp, axis1=1, axis2=2)[None, :, :, None])
+            self._t_nobs = int(self._tfound.sum() + (self._tfound & w_ok).sum())
 
     def set_noise(self, inv_var: np.ndarray, note: str = "") -> None:
         """Set the inverse variance per pixel and precompute the data side of the projection."""
@@ -480,26 +490,20 @@ class DispersionProblem:
         )
         h = -poles.imag
         ratio = np.divide(res.imag, res.real, out=np.zeros_like(h), where=res.real > 0)
-        wid = (-2.0 * poles.imag)[:, :, None, :]
-        e = np.nan_to_num(self._te)[None, :, :, None]  # (1, A, P, 1)
-        de = self._tde[None, :, :, None]
-        w_ok = np.isfinite(self._tw) & np.isfinite(self._tdw) & (self._tdw > 0)
-        wr = np.where(w_ok, self._tw, 0.0)[None, :, :, None]
-        wd = np.where(w_ok, self._tdw, 1.0)[None, :, :, None]
-        r2w = np.where(w_ok[None, :, :, None], ((wr - wid) / wd) ** 2, 0.0)  # (W, A, P, K)
+        wid = (2.0 * h)[:, :, None, :]
+        e, de = self._t_e, self._t_de
+        r2w = np.where(self._t_w_ok, ((self._t_wr - wid) / self._t_wd) ** 2, 0.0)  # (W,A,P,K)
         resp = self._t_resp
         if resp is None:  # first order, uniform weights (fitted_line_centre)
             pos = (poles.real - h * ratio)[:, :, None, :]
         else:  # each peak's own response to the asymmetry of the branch it is matched to
-            own = np.diagonal(resp, axis1=1, axis2=2)  # (A, P)
-            pos = poles.real[:, :, None, :] + own[None, :, :, None] * ratio[:, :, None, :]
+            pos = poles.real[:, :, None, :] + self._t_own * ratio[:, :, None, :]
         r2 = ((e - pos) / de) ** 2 + r2w
         n_peaks, k = r2.shape[2], r2.shape[3]
         best = np.min(r2, axis=3)  # (W, A, P)
         if n_peaks == k:
             if resp is None:
-                ordered = np.take_along_axis(r2, np.arange(k)[None, None, :, None],
-                                             axis=3)[..., 0]
+                ordered = np.diagonal(r2, axis1=2, axis2=3)
             else:  # every branch found: the joint response, neighbours' asymmetry included
                 pos_o = poles.real + np.einsum("apk,wak->wap", resp, ratio)
                 ordered = ((e[..., 0] - pos_o) / de[..., 0]) ** 2 + np.diagonal(
@@ -507,7 +511,7 @@ class DispersionProblem:
             best = np.where(self._t_all[None, :, None], ordered, best)
         chi2 = np.sum(np.where(self._tfound[None], best, 0.0), axis=(1, 2))
         s = self._noise_scale(theta)
-        n_obs = int(self._tfound.sum() + (self._tfound & w_ok).sum())
+        n_obs = self._t_nobs
         return -0.5 * chi2 / (s * s) - n_obs * np.log(s)
 
     # -- derived quantities ---------------------------------------------------------
