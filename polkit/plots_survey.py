@@ -20,6 +20,7 @@ from pathlib import Path
 import numpy as np
 
 from . import io
+from ._mpl import pyplot
 
 __all__ = ["survey_figures", "maps_figure", "detuning_figure", "wafer_map", "MAP_QUANTITIES"]
 
@@ -32,19 +33,6 @@ MAP_QUANTITIES: dict[str, str] = {
     "lp_linewidth_k0": "LP linewidth at k = 0",
     "photon_fraction_k0": "photon fraction at k = 0",
 }
-
-
-def _plt():
-    import matplotlib
-
-    if matplotlib.get_backend().lower() not in ("agg", "module://matplotlib_inline.backend_inline"):
-        try:
-            matplotlib.use("Agg", force=False)
-        except Exception:  # noqa: BLE001 - a GUI backend already in use is fine
-            pass
-    import matplotlib.pyplot as plt
-
-    return plt
 
 
 def _marker_size(n: int) -> float:
@@ -106,7 +94,7 @@ def wafer_map(ds, name: str, *, ax=None, statistic: str = "median", surface=None
     -------
     matplotlib.axes.Axes
     """
-    plt = _plt()
+    plt = pyplot()
     if ax is None:
         _, ax = plt.subplots(figsize=(5.0, 4.2))
     var = ds[name]
@@ -171,7 +159,7 @@ def detuning_figure(ds, surface):
     -------
     matplotlib.figure.Figure
     """
-    plt = _plt()
+    plt = pyplot()
     fig, ax = plt.subplots(figsize=(6.4, 5.2))
     if "detuning" not in ds:
         ax.text(0.5, 0.5, "no detuning: every position failed", ha="center",
@@ -215,7 +203,7 @@ def maps_figure(ds, surface=None):
     -------
     matplotlib.figure.Figure
     """
-    plt = _plt()
+    plt = pyplot()
     names = [n for n in MAP_QUANTITIES if n in ds]
     if not names:
         fig, ax = plt.subplots(figsize=(5.0, 4.0))
@@ -247,7 +235,7 @@ def survey_figures(ds, surface, folder: str | os.PathLike) -> list[Path]:
     list of Path
         The files written.
     """
-    plt = _plt()
+    plt = pyplot()
     folder = Path(folder)
     written = []
     for name, make in (("wafer_maps.png", lambda: maps_figure(ds, surface)),

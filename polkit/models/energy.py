@@ -21,6 +21,7 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 from scipy import constants as _c
 
+from .._checks import real_array
 from ..constants import HBAR_MEV_PS
 from ..errors import DataError
 
@@ -64,18 +65,7 @@ ELECTRONIC_REFERENCE: tuple[ReferenceEnergy, ...] = (
 
 
 def _checked(name: str, value: ArrayLike, *, positive: bool = True, upper: float | None = None):
-    try:
-        arr = np.asarray(value, dtype=float)
-    except (TypeError, ValueError) as exc:
-        raise DataError(
-            f"expected an array of real numbers, found {type(value).__name__}", field=name
-        ) from exc
-    if not np.all(np.isfinite(arr)):
-        raise DataError("expected finite numbers, found non-finite value(s)", field=name)
-    if positive and np.any(arr <= 0):
-        raise DataError(f"expected values > 0, found minimum {arr.min():g}", field=name)
-    if not positive and np.any(arr < 0):
-        raise DataError(f"expected values >= 0, found minimum {arr.min():g}", field=name)
+    arr = real_array(name, value, positive=positive, nonneg=not positive)
     if upper is not None and np.any(arr > upper):
         raise DataError(
             f"expected values in (0, {upper:g}], found maximum {arr.max():g}; "
