@@ -49,6 +49,40 @@ def test_checkpointed_run_equals_in_memory_run(tmp_path, reference):
     np.testing.assert_array_equal(stored_steps(tmp_path / "c.h5"), reference.chains[0])
 
 
+def test_checkpoint_reads_back_through_emcees_own_backend(tmp_path, reference):
+    # Source: emcee's HDFBackend (emcee 3, Foreman-Mackey et al., PASP 125, 306 (2013)) is
+    # the reader of the layout polkit writes step by step through HDF5's low-level calls:
+    # chain, log-probability, acceptance counts, iteration and generator state must read
+    # back as an emcee-written file's would
+    import emcee
+
+    path = tmp_path / "c.h5"
+    with pytest.warns(ConvergenceWarning):
+        run_ensemble(loglike, SPACE, START, seed=31, checkpoint=path, **SETTINGS)
+    backend = emcee.backends.HDFBackend(os.fspath(path), name="ensemble0", read_only=True)
+    chain = backend.get_chain()
+    assert backend.iteration == SETTINGS["max_steps"]
+    np.testing.assert_array_equal(chain, reference.chains[0])
+    np.testing.assert_array_equal(backend.get_log_prob(), reference.log_prob[0])
+    moved = np.any(chain[1:] != chain[:-1], axis=-1).sum(axis=0)
+    # the first step's move away from the starting ball is counted but not in the chain
+    assert set(np.unique(backend.accepted - moved)) <= {0.0, 1.0}
+    # the stored generator state is the one after the last step: continuing it by hand
+    # from the last sample with emcee's sampler reproduces a longer polkit run's next step
+    state = backend.get_last_sample()
+    assert state.random_state[0] == "MT19937" and len(state.random_state[1]) == 624
+    with pytest.warns(ConvergenceWarning):
+        longer = run_ensemble(loglike, SPACE, START, seed=31,
+                              **{**SETTINGS, "max_steps": SETTINGS["max_steps"] + 1})
+    from polkit.inference.posterior import LogPosterior
+    from polkit.inference.sampler import default_moves
+
+    sampler = emcee.EnsembleSampler(SETTINGS["n_walkers"], 2, LogPosterior(loglike, SPACE),
+                                    moves=default_moves(), vectorize=True)
+    nxt = sampler.run_mcmc(state, 1, progress=False, skip_initial_state_check=True)
+    np.testing.assert_array_equal(nxt.coords, longer.chains[0, -1])
+
+
 def test_keyboard_interrupt_then_resume_gives_the_unbroken_chain(tmp_path, reference):
     # common practice, no published source: resume loses no finished step and continues the
     # same random stream (the generator state is stored with every step)

@@ -49,6 +49,26 @@ def test_autocorr_time_ignores_frozen_walkers_and_flags_frozen_parameters():
     assert tau[1] == np.inf
 
 
+@pytest.mark.parametrize("n_steps, n_walkers, phi", [(1000, 32, 0.9), (777, 7, 0.3),
+                                                      (64, 12, 0.995), (3, 4, 0.5)])
+def test_autocorr_time_equals_emcees_estimator(n_steps, n_walkers, phi):
+    # Source: emcee.autocorr.integrated_time (Foreman-Mackey et al., PASP 125, 306 (2013);
+    # Sokal's window, c = 5), the reference implementation of the same estimator, run
+    # walker by walker; lengths off powers of two, a frozen walker, and a chain too short
+    # for Sokal's window (the last lag is used) included
+    import emcee
+
+    rng = np.random.default_rng(n_steps)
+    chain = np.stack([_ar1(rng, phi, n_steps, n_walkers),
+                      rng.standard_normal((n_steps, n_walkers)).cumsum(axis=0)], axis=-1)
+    chain[:, 1, 0] = 0.25
+    tau = autocorr_time(chain)
+    expected = [emcee.autocorr.integrated_time(np.delete(chain[:, :, 0], 1, axis=1) if j == 0
+                                                else chain[:, :, 1],
+                                                c=5, tol=0, quiet=True)[0] for j in range(2)]
+    np.testing.assert_allclose(tau, expected, rtol=1e-10, atol=1e-12)  # atol: tau ~ 0 at 3 steps
+
+
 def test_acceptance_and_stuck_walkers_from_a_constructed_chain():
     # common practice, no published source: acceptance = fraction of steps a walker moved
     rng = np.random.default_rng(2)

@@ -170,6 +170,7 @@ def preburn(log_likelihood: Callable, space, start, n_walkers: int, seed,
             min_steps=n,
             check_every=n,
             progress=False,
+            ess_rhat=False,  # its draws only seed the run
         )
     pos = out.chains[0, -1].copy()
     lp = out.log_prob[0, -1]
