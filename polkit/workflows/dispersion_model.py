@@ -34,8 +34,8 @@ from scipy import optimize
 
 from ..errors import DataError, FitError
 from ..inference.priors import Parameter, ParameterSpace, Prior
+from ..models import _kernels, spectral
 from ..models import dispersion as disp
-from ..models import spectral
 from ..models.bare_modes import bare_mode_basis
 
 __all__ = [
@@ -359,15 +359,27 @@ class DispersionProblem:
             self._t_resp = None
             if self.kind == "emission":
                 self._t_resp = table_centre_response(self.table, self.energy, self.inv_var)
-            # the table side of the likelihood, fixed for the fit: (1, A, P, 1) arrays
+            # the table side of the likelihood, fixed for the fit: (A, P) arrays for the
+            # compiled kernel, (1, A, P, 1) views of them for the numpy path (entries of
+            # peaks not found are placeholders: 0 eV, error 1 eV; they are never summed)
             w_ok = np.isfinite(self._tw) & np.isfinite(self._tdw) & (self._tdw > 0)
-            self._t_e = np.nan_to_num(self._te)[None, :, :, None]
-            self._t_de = self._tde[None, :, :, None]
-            self._t_w_ok = w_ok[None, :, :, None]
-            self._t_wr = np.where(w_ok, self._tw, 0.0)[None, :, :, None]
-            self._t_wd = np.where(w_ok, self._tdw, 1.0)[None, :, :, None]
-            self._t_own = (None if self._t_resp is None else
-                           np.diagonal(self._t_resp, axis1=1, axis2=2)[None, :, :, None])
+            own = (None if self._t_resp is None else
+                   np.diagonal(self._t_resp, axis1=1, axis2=2))
+            resp = None if self._t_resp is None else np.ascontiguousarray(self._t_resp)
+            self._t_kernel = tuple(
+                a if a is None else np.ascontiguousarray(a)
+                for a in (np.nan_to_num(self._te), np.where(self._tfound, self._tde, 1.0),
+                          np.where(w_ok, self._tw, 0.0),
+                          np.where(w_ok, self._tdw, 1.0), w_ok, own, resp, self._t_all,
+                          self._tfound)
+            )
+            t_e, t_de, t_wr, t_wd = self._t_kernel[:4]
+            self._t_e = t_e[None, :, :, None]
+            self._t_de = t_de[None, :, :, None]
+            self._t_w_ok = self._t_kernel[4][None, :, :, None]
+            self._t_wr = t_wr[None, :, :, None]
+            self._t_wd = t_wd[None, :, :, None]
+            self._t_own = None if own is None else self._t_kernel[5][None, :, :, None]
             self._t_nobs = int(self._tfound.sum() + (self._tfound & w_ok).sum())
 
     def set_noise(self, inv_var: np.ndarray, note: str = "") -> None:
@@ -490,6 +502,21 @@ class DispersionProblem:
         )
         h = -poles.imag
         ratio = np.divide(res.imag, res.real, out=np.zeros_like(h), where=res.real > 0)
+        if _kernels.enabled():
+            chi2 = _kernels.table_chi2(poles.real, h, ratio, *self._t_kernel)
+        else:
+            chi2 = self._table_chi2_numpy(poles, h, ratio)
+        s = self._noise_scale(theta)
+        n_obs = self._t_nobs
+        return -0.5 * chi2 / (s * s) - n_obs * np.log(s)
+
+    def _table_chi2_numpy(self, poles: np.ndarray, h: np.ndarray,
+                          ratio: np.ndarray) -> np.ndarray:
+        """Peak-table chi-square per walker in numpy (the path without numba).
+
+        ``poles`` are the complex branch energies ``(W, A, K)``, ``h = -Im poles`` and
+        ``ratio = Im r / Re r`` of the photon residues (0 where ``Re r <= 0``).
+        """
         wid = (2.0 * h)[:, :, None, :]
         e, de = self._t_e, self._t_de
         r2w = np.where(self._t_w_ok, ((self._t_wr - wid) / self._t_wd) ** 2, 0.0)  # (W,A,P,K)
@@ -509,10 +536,7 @@ class DispersionProblem:
                 ordered = ((e[..., 0] - pos_o) / de[..., 0]) ** 2 + np.diagonal(
                     r2w, axis1=2, axis2=3)
             best = np.where(self._t_all[None, :, None], ordered, best)
-        chi2 = np.sum(np.where(self._tfound[None], best, 0.0), axis=(1, 2))
-        s = self._noise_scale(theta)
-        n_obs = self._t_nobs
-        return -0.5 * chi2 / (s * s) - n_obs * np.log(s)
+        return np.sum(np.where(self._tfound[None], best, 0.0), axis=(1, 2))
 
     # -- derived quantities ---------------------------------------------------------
     def derived(self, draws: np.ndarray) -> dict[str, tuple[np.ndarray, str, str]]:
