@@ -70,9 +70,25 @@ def _cli(*args: str) -> list[str]:
     return [sys.executable, "-m", "polkit.cli", *args]
 
 
-def _run_args(map_path: Path, out: Path, *extra: str) -> list[str]:
-    return _cli("dispersion", str(map_path), "--peaks-only", "--out", str(out), "--seed",
-                str(SEED), "--max-steps", str(STEPS), "--quiet", *extra)
+def _run_args(map_path: Path, out: Path, *extra: str, cli=_cli) -> list[str]:
+    return cli("dispersion", str(map_path), "--peaks-only", "--out", str(out), "--seed",
+               str(SEED), "--max-steps", str(STEPS), "--quiet", *extra)
+
+
+#: the command line with every likelihood call held up by 3 ms, so that a kill at a random
+#: moment lands inside sampling however fast the machine; the sleep changes no value
+_SLOWED_CLI = (
+    "import sys, time\n"
+    "from polkit.workflows.dispersion_model import DispersionProblem as P\n"
+    "fast = P.table_log_likelihood\n"
+    "P.table_log_likelihood = lambda self, theta: (time.sleep(0.003), fast(self, theta))[1]\n"
+    "from polkit.cli import main\n"
+    "sys.exit(main(sys.argv[1:]))\n"
+)
+
+
+def _slowed_cli(*args: str) -> list[str]:
+    return [sys.executable, "-c", _SLOWED_CLI, *args]
 
 
 def _stored_chain(checkpoint: Path) -> tuple[np.ndarray, np.ndarray]:
@@ -127,10 +143,11 @@ def test_fit_killed_while_sampling_resumes_to_the_uninterrupted_chain(map_file, 
     run = tmp_path / "run"
     checkpoint = run / "chains.h5"
     # killed once on the first attempt and once more while resuming (two random moments)
-    first = _kill_while_sampling(_run_args(map_file, run), checkpoint, rng, tmp_path)
+    first = _kill_while_sampling(_run_args(map_file, run, cli=_slowed_cli), checkpoint, rng,
+                                 tmp_path)
     chain1, lp1 = _stored_chain(checkpoint)
-    second = _kill_while_sampling(_run_args(map_file, run, "--resume"), checkpoint, rng,
-                                  tmp_path)
+    second = _kill_while_sampling(_run_args(map_file, run, "--resume", cli=_slowed_cli),
+                                  checkpoint, rng, tmp_path)
     chain2, lp2 = _stored_chain(checkpoint)
     assert second >= first
     np.testing.assert_array_equal(chain2[:first], chain1)  # nothing written was lost

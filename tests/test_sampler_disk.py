@@ -38,7 +38,7 @@ import numpy as np
 from polkit.inference import Parameter, ParameterSpace, Prior, run_ensemble
 
 SPACE = ParameterSpace([Parameter(f"p{i}", "meV", Prior.normal(0.0, 1.0)) for i in range(6)])
-# 32 walkers x 6 parameters: h5py stores the chain in chunks of 128 steps, so the checkpoint
+# 32 walkers x 6 parameters: the chain is stored in chunks of 42 steps (64 kB), so the checkpoint
 # grows in several jumps within the run
 SETTINGS = dict(n_walkers=32, seed=11, max_steps=260, min_steps=260, check_every=40,
                 progress=False, log_prob_extras={"half_chi2": "1"})
