@@ -76,6 +76,9 @@ def corner_figure(data: np.ndarray, labels: Sequence[str]):
     value (e.g. pinned at a prior bound), which is not news in a plot that shows it; those
     notes are dropped while the plot is drawn.
     """
+    from ._arviz import arviz
+
+    arviz()  # corner imports ArviZ: the one polkit imported, without its numba kernels
     import corner
 
     pyplot()

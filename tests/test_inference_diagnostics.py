@@ -145,3 +145,40 @@ def test_gate_passes_a_long_stable_chain_and_names_what_fails_on_a_short_one():
     assert not short.passed
     text = " ".join(short.reasons)
     assert "shorter than 50 x" in text and "acceptance outside" in text
+
+
+_ESS_SCRIPT = r"""
+import json, sys
+import numpy as np
+if sys.argv[1] == "polkit":
+    from polkit.models import _kernels
+    assert _kernels.available()  # numba imported first, as in a fit
+    from polkit._arviz import arviz
+    az = arviz()
+    import numba
+    assert sys.modules["numba"] is numba and not az.Numba.numba_flag
+else:
+    import arviz as az
+    assert az.Numba.numba_flag  # ArviZ's own default with numba installed
+x = np.random.default_rng(5).standard_normal((8, 400)).cumsum(axis=1)
+print(json.dumps([float(az.ess(x, method="bulk")), float(az.ess(x, method="tail")),
+                  float(az.rhat(x))]))
+"""
+
+
+def test_arviz_without_its_numba_kernels_gives_the_same_ess_and_rhat():
+    # Source: ArviZ itself (Vehtari et al., Bayesian Analysis 16, 667 (2021) estimators):
+    # polkit imports it with numba hidden (to skip compiling kernels it does not use); the
+    # numpy path must give ArviZ's numba-path values, and polkit's own numba must still load
+    import json
+    import subprocess
+    import sys
+
+    pytest.importorskip("numba")
+    values = {}
+    for how in ("polkit", "plain"):
+        proc = subprocess.run([sys.executable, "-c", _ESS_SCRIPT, how], capture_output=True,
+                              text=True, timeout=300)
+        assert proc.returncode == 0, proc.stderr[-2000:]
+        values[how] = json.loads(proc.stdout.strip().splitlines()[-1])
+    np.testing.assert_allclose(values["polkit"], values["plain"], rtol=1e-10)

@@ -39,11 +39,9 @@ log = logging.getLogger(__name__)
 
 
 def _arviz():
-    with warnings.catch_warnings():  # ArviZ 0.23 announces its refactor on import
-        warnings.simplefilter("ignore", FutureWarning)
-        import arviz
+    from .._arviz import arviz
 
-    return arviz
+    return arviz()
 
 
 def autocorr_time(chain: np.ndarray) -> np.ndarray:
@@ -72,11 +70,15 @@ def autocorr_time(chain: np.ndarray) -> np.ndarray:
     if not moving.any():
         return out
     # Source: emcee.autocorr.function_1d -- the autocorrelation by FFT of the centred
-    # series zero-padded to twice the next power of two, normalised at lag 0
-    n_fft = 2 * (1 << (n_steps - 1).bit_length())
+    # series, normalised at lag 0.  emcee pads to twice the next power of two; any length
+    # of at least 2 N - 1 gives the same linear (not circular) autocorrelation, so the
+    # fastest such length is taken (the values agree to rounding)
+    from scipy import fft
+
+    n_fft = fft.next_fast_len(2 * n_steps - 1, real=True)
     centred = np.ascontiguousarray((chain - chain.mean(axis=0)).transpose(1, 2, 0))
-    spectrum = np.fft.rfft(centred, n=n_fft, axis=-1)  # (W, P, frequencies)
-    acf = np.fft.irfft(spectrum.real**2 + spectrum.imag**2, n=n_fft, axis=-1)[..., :n_steps]
+    spectrum = fft.rfft(centred, n=n_fft, axis=-1)  # (W, P, frequencies)
+    acf = fft.irfft(spectrum.real**2 + spectrum.imag**2, n=n_fft, axis=-1)[..., :n_steps]
     with np.errstate(invalid="ignore", divide="ignore"):
         acf = acf / acf[..., :1]
     n_moving = moving.sum(axis=0)

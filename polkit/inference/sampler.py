@@ -681,6 +681,7 @@ class _Ensemble:
         self.rng_state = np.random.RandomState(np.random.MT19937(mcmc_seq)).get_state()
         self.state = None
         self.taus: dict[int, np.ndarray] = {}
+        self._read = (np.empty((0, n_walkers, space.ndim)), np.empty((0, n_walkers)))
 
     @property
     def steps(self) -> int:
@@ -747,8 +748,17 @@ class _Ensemble:
                 raise _Stopped()
 
     def chain(self, n: int | None = None) -> tuple[np.ndarray, np.ndarray]:
-        chain = self.backend.get_chain()
-        lp = self.backend.get_log_prob()
+        if self.checkpoint is None:
+            chain, lp = self.backend.get_chain(), self.backend.get_log_prob()
+        else:  # steps read before are kept: only the new ones come from the file
+            chain, lp = self._read
+            stored = self.steps
+            if len(chain) < stored:
+                with self.backend.open() as fh:
+                    g = fh[self.name]
+                    chain = np.concatenate([chain, g["chain"][len(chain):stored]])
+                    lp = np.concatenate([lp, g["log_prob"][len(lp):stored]])
+                self._read = chain, lp
         return (chain, lp) if n is None else (chain[:n], lp[:n])
 
     def tau_at(self, n: int) -> np.ndarray:

@@ -144,7 +144,9 @@ def pointwise_log_likelihood(
 
 def _elpd_arviz(log_lik: np.ndarray, posterior: Mapping[str, np.ndarray]) -> dict[str, Any]:
     """PSIS-LOO and WAIC from ArviZ for a ``(chain, draw, spectrum)`` log-likelihood."""
-    import arviz as az
+    from .._arviz import arviz
+
+    az = arviz()
 
     idata = az.from_dict(posterior=dict(posterior), log_likelihood={"spectrum": log_lik})
     with warnings.catch_warnings():
