@@ -255,17 +255,27 @@ def _cmd_demo(args) -> int:
 
 
 def _cmd_dispersion(args) -> int:
+    from ._corner_process import CornerProcess
     from .workflows.dispersion import fit_dispersion
 
     out = args.out or Path("polkit-out") / args.map.stem
-    result = fit_dispersion(
-        args.map,
-        model=args.model,
-        kind=args.kind,
-        peaks_only=args.peaks_only,
-        **_fit_options(args, out),
-        wavelength_medium=args.wavelength_medium,
-    )
+    # a second process gets matplotlib ready while the fit samples, then draws the corner
+    # plot alongside the other figures (see polkit._corner_process)
+    corner_process = CornerProcess.start()
+    try:
+        result = fit_dispersion(
+            args.map,
+            model=args.model,
+            kind=args.kind,
+            peaks_only=args.peaks_only,
+            **_fit_options(args, out),
+            wavelength_medium=args.wavelength_medium,
+            figures=False,
+        )
+        result.figures(out, corner_process=corner_process)
+    finally:
+        if corner_process is not None:
+            corner_process.close()
     print(result.table())
     print(f"results written to {out}")
     return EXIT_OK if result.converged else EXIT_NOT_CONVERGED

@@ -118,17 +118,33 @@ def residual_figure(result):
     return fig
 
 
-def corner_figure(result, names: list[str] | None = None):
-    """Corner plot (corner) of the sampled parameters and the detuning."""
-    names = names or [n for n in result.space.names if n != "noise_scale"] + (
+def _corner_names(result) -> list[str]:
+    """The corner plot's variables: the sampled parameters (not the noise scale), detuning."""
+    return [n for n in result.space.names if n != "noise_scale"] + (
         ["detuning"] if "detuning" in result.posterior else []
     )
-    return _mpl.corner_figure(*corner_data(result, names))
 
 
-def dispersion_figures(result, folder: str | os.PathLike) -> list[Path]:
-    """Write fit.png, residuals.png, corner.png and traces.png into ``folder``."""
-    return write_figures(result, folder, (("fit.png", fit_figure),
-                                          ("residuals.png", residual_figure),
-                                          ("corner.png", corner_figure),
-                                          ("traces.png", trace_figure)))
+def corner_figure(result, names: list[str] | None = None):
+    """Corner plot (corner) of the sampled parameters and the detuning."""
+    return _mpl.corner_figure(*corner_data(result, names or _corner_names(result)))
+
+
+def dispersion_figures(result, folder: str | os.PathLike, *,
+                       corner_process=None) -> list[Path]:
+    """Write fit.png, residuals.png, corner.png and traces.png into ``folder``.
+
+    With ``corner_process`` (a :class:`polkit._corner_process.CornerProcess`), the corner
+    plot is drawn there while the other figures are drawn here; where that fails it is
+    drawn here.  The files are the same either way.
+    """
+    folder = Path(folder)
+    in_process = corner_process is not None and corner_process.submit(
+        folder / "corner.png", *corner_data(result, _corner_names(result)))
+    fit, residuals, traces = write_figures(result, folder, (("fit.png", fit_figure),
+                                                           ("residuals.png", residual_figure),
+                                                           ("traces.png", trace_figure)))
+    corner = corner_process.result() if in_process else None
+    if corner is None:
+        corner = write_figures(result, folder, (("corner.png", corner_figure),))[0]
+    return [fit, residuals, corner, traces]

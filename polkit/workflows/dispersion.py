@@ -82,10 +82,15 @@ PEAK_TABLE_NOISE = "peak-table errors from the per-angle line fits, times noise_
 class DispersionFit(FitResult):
     """A dispersion result: a :class:`~polkit.inference.FitResult` that can redraw its figures."""
 
-    def figures(self, folder: str | os.PathLike) -> list[Path]:
+    def figures(self, folder: str | os.PathLike, *, corner_process=None) -> list[Path]:
+        """Write fit.png, residuals.png, corner.png and traces.png into ``folder``.
+
+        ``corner_process``: a :class:`polkit._corner_process.CornerProcess` that draws the
+        corner plot alongside (the ``polkit`` command passes one).
+        """
         from .. import plots
 
-        return plots.dispersion_figures(self, folder)
+        return plots.dispersion_figures(self, folder, corner_process=corner_process)
 
 
 # --------------------------------------------------------------------------------------
