@@ -381,6 +381,25 @@ class DispersionProblem:
             self._t_wd = t_wd[None, :, :, None]
             self._t_own = None if own is None else self._t_kernel[5][None, :, :, None]
             self._t_nobs = int(self._tfound.sum() + (self._tfound & w_ok).sum())
+            self._t_fused = None
+            if self.n_excitons == 1 and _kernels.available():
+                self._t_fused = self._two_mode_operands()
+
+    def _two_mode_operands(self) -> tuple:
+        """What the one-exciton compiled peak-table kernel needs, fixed for the fit.
+
+        The parameter map mirrors :meth:`physics` (levels in eV, Rabi splitting in meV ->
+        ``g = 0.5 * 1e-3 * rabi`` eV, linewidths in meV -> eV; no Rabi column: ``g = 0``),
+        the axis terms ``sin^2(angle)`` or ``hbar c k`` and the table side.
+        """
+        idx = self._idx
+        rabi = idx.get("rabi_splitting", -1)
+        parameters = _kernels.parameter_map(
+            [idx["cavity_energy"], idx["n_eff"], idx["exciton_energy"], rabi,
+             idx["cavity_linewidth"], idx["exciton_linewidth"]],
+            [1.0, 1.0, 1.0, 0.5 * MEV, MEV, MEV], len(self.space.names))
+        return (parameters, _kernels.in_plane_terms(self.in_plane, self.axis),
+                _kernels.table_operands(*self._t_kernel))
 
     def set_noise(self, inv_var: np.ndarray, note: str = "") -> None:
         """Set the inverse variance per pixel and precompute the data side of the projection."""
@@ -492,20 +511,34 @@ class DispersionProblem:
         A table peak position is compared with :func:`fitted_line_centre` (where a
         symmetric line fit places an asymmetric branch line), its width with the branch
         FWHM ``-2 Im eps``.
+
+        Routes: with the compiled kernels on, one exciton goes from ``theta`` to the
+        chi-square in one call (:func:`polkit.models._kernels.two_mode_table_chi2`); a walker
+        outside the model's domain sends the call to the numpy poles, which raise the
+        ``DataError``.  Three oscillators take the numpy poles and the compiled matching
+        (:func:`polkit.models._kernels.table_chi2`); without numba (or with
+        ``POLKIT_COMPILED=0``) everything is numpy.
         """
         if self.table is None:
             raise FitError("no peak table was given to this problem.")
         theta = np.atleast_2d(theta)
-        p = self.physics(theta)
-        poles, res = spectral.branch_poles(
-            self.in_plane, **{k: v for k, v in p.items() if k != "axis"}, axis=self.axis
-        )
-        h = -poles.imag
-        ratio = np.divide(res.imag, res.real, out=np.zeros_like(h), where=res.real > 0)
-        if _kernels.enabled():
-            chi2 = _kernels.table_chi2(poles.real, h, ratio, *self._t_kernel)
-        else:
-            chi2 = self._table_chi2_numpy(poles, h, ratio)
+        chi2 = None
+        compiled = _kernels.enabled()
+        if compiled and self._t_fused is not None:  # one exciton: one compiled call
+            chi2, outside = _kernels.two_mode_table_chi2(theta, *self._t_fused)
+            if outside:  # the numpy route below raises the DataError naming the parameter
+                chi2 = None
+        if chi2 is None:
+            p = self.physics(theta)
+            poles, res = spectral.branch_poles(
+                self.in_plane, **{k: v for k, v in p.items() if k != "axis"}, axis=self.axis
+            )
+            h = -poles.imag
+            ratio = np.divide(res.imag, res.real, out=np.zeros_like(h), where=res.real > 0)
+            if compiled:
+                chi2 = _kernels.table_chi2(poles.real, h, ratio, *self._t_kernel)
+            else:
+                chi2 = self._table_chi2_numpy(poles, h, ratio)
         s = self._noise_scale(theta)
         n_obs = self._t_nobs
         return -0.5 * chi2 / (s * s) - n_obs * np.log(s)
