@@ -482,21 +482,6 @@ def _table_chi2(pr, h, ratio, t_e, t_de, t_wr, t_wd, t_w_ok, t_own, t_resp, t_al
                                          t_own, t_resp, t_all, t_found, has_resp)
 
 
-def _complex_divide(a_r, a_i, b_r, b_i):
-    """``(a_r + i a_i) / (b_r + i b_i)`` as numpy divides complex numbers (Smith's scaling)."""
-    abs_r = abs(b_r)
-    abs_i = abs(b_i)
-    if abs_r >= abs_i:
-        if abs_r == 0.0 and abs_i == 0.0:  # a complex inf or nan, no exception
-            return a_r / abs_r, a_i / abs_r
-        rat = b_i / b_r
-        scl = 1.0 / (b_r + b_i * rat)
-        return (a_r + a_i * rat) * scl, (a_i - a_r * rat) * scl
-    rat = b_r / b_i
-    scl = 1.0 / (b_i + b_r * rat)
-    return (a_r * rat + a_i) * scl, (a_i * rat - a_r) * scl
-
-
 def _two_mode_rows(ec0, n_eff, e_x, g, gamma_c, gamma_x, grid, k_axis, pr, h, rr, ri):
     """Branch poles and photon residues of one walker, one exciton, along the in-plane axis.
 
@@ -521,7 +506,7 @@ def _two_mode_rows(ec0, n_eff, e_x, g, gamma_c, gamma_x, grid, k_axis, pr, h, rr
       1 eV to get the residue of an exciton-like branch, which loses about
       ``u |eps| / |eps_up - eps_lo|`` (u = 2^-53); at ``g = 0`` it is all rounding and
       ``Im r / Re r`` becomes noise, while here the residues of uncoupled modes are
-      exactly 0 and 1.  Complex divisions are numpy's (Smith's scaling).
+      exactly 0 and 1.
     """
     mean_i = 0.0 - 0.25 * (gamma_c + gamma_x)
     half_i = 0.5 * (0.0 - 0.5 * (gamma_c - gamma_x))
@@ -554,16 +539,24 @@ def _two_mode_rows(ec0, n_eff, e_x, g, gamma_c, gamma_x, grid, k_axis, pr, h, rr
         m_i = root.imag - half_i
         p_r = root.real + half_r
         p_i = root.imag + half_i
-        if p_r * p_r + p_i * p_i >= m_r * m_r + m_i * m_i:
-            m_r, m_i = _complex_divide(gg, 0.0, p_r, p_i)
+        p2 = p_r * p_r + p_i * p_i
+        m2 = m_r * m_r + m_i * m_i
+        if p2 >= m2:  # m = g^2 / p = g^2 conj(p) / |p|^2
+            f = gg / p2
+            m_r = f * p_r
+            m_i = -f * p_i
         else:
-            p_r, p_i = _complex_divide(gg, 0.0, m_r, m_i)
-        res_r, res_i = _complex_divide(m_r, m_i, 2.0 * root.real, 2.0 * root.imag)
-        up_res_r, up_res_i = _complex_divide(p_r, p_i, 2.0 * root.real, 2.0 * root.imag)
-        rr[a, 0] = res_r
-        ri[a, 0] = res_i
-        rr[a, 1] = up_res_r
-        ri[a, 1] = up_res_i
+            f = gg / m2
+            p_r = f * m_r
+            p_i = -f * m_i
+        # 1 / (2 root) = conj(root) / (2 |root|^2); inf or nan at root = 0, as numpy's
+        f = 0.5 / (root.real * root.real + root.imag * root.imag)
+        inv_r = f * root.real
+        inv_i = -f * root.imag
+        rr[a, 0] = m_r * inv_r - m_i * inv_i
+        ri[a, 0] = m_r * inv_i + m_i * inv_r
+        rr[a, 1] = p_r * inv_r - p_i * inv_i
+        ri[a, 1] = p_r * inv_i + p_i * inv_r
 
 
 def _walker_physics(theta, w, columns, scales, phys):
@@ -634,7 +627,6 @@ if _numba is not None:
     # the peak-table helpers keep strict IEEE arithmetic (no fastmath)
     _strict = _numba.njit(cache=True, error_model="numpy")
     _table_walker_chi2 = _strict(_table_walker_chi2)
-    _complex_divide = _strict(_complex_divide)
     _two_mode_rows = _strict(_two_mode_rows)
     _walker_physics = _strict(_walker_physics)
     _in_domain = _strict(_in_domain)
