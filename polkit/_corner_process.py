@@ -6,19 +6,21 @@ starts this process when a fit begins, so that it imports matplotlib and corner 
 otherwise idle second core while the fit samples; when the fit is done, the corner plot
 is drawn there while the main process draws and writes the other figures.
 
-Nothing depends on it: where it cannot be started (one usable core, a platform without
-``spawn``), where it fails, or where its drawing raises, the caller draws the corner plot
-itself, which also reports any real error (a full disk, say) the usual way.  The process
-is a daemon: it ends with the command, also on Ctrl-C (it ignores SIGINT and is stopped by
-the parent).
+Nothing depends on it: where it cannot be started (one usable core, a platform that
+cannot pass it a pipe), where it fails, or where its drawing raises, the caller draws the
+corner plot itself, which also reports any real error (a full disk, say) the usual way.
+The process ends with the command: it stops when its input closes, also on Ctrl-C (it
+ignores SIGINT and the parent stops it).
 """
 
 from __future__ import annotations
 
 import logging
-import multiprocessing
 import os
+import pickle
 import signal
+import subprocess
+import sys
 from collections.abc import Sequence
 from pathlib import Path
 
@@ -39,9 +41,17 @@ def _usable_cores() -> int:
         return os.cpu_count() or 1
 
 
-def _serve(conn) -> None:
-    """The process's loop: ``("corner", path, data, labels)`` requests until ``None``."""
+def _serve(requests, replies) -> None:
+    """The process's loop: ``("corner", path, data, labels)`` requests until ``None``.
+
+    ``requests`` and ``replies`` are binary streams carrying pickles (the parent's pipes).
+    """
     signal.signal(signal.SIGINT, signal.SIG_IGN)  # Ctrl-C is the parent's to handle
+
+    def reply(message) -> None:
+        pickle.dump(message, replies, protocol=pickle.HIGHEST_PROTOCOL)
+        replies.flush()
+
     try:
         from . import _mpl, io
         from ._arviz import arviz
@@ -50,15 +60,19 @@ def _serve(conn) -> None:
         arviz()
         import corner  # noqa: F401 - warmed up here, used by _mpl.corner_figure
     except Exception as exc:  # noqa: BLE001 - the parent draws the plot itself
-        conn.send(("error", f"cannot start drawing: {type(exc).__name__}: {exc}"))
-        return
+        failure = f"cannot start drawing: {type(exc).__name__}: {exc}"
+    else:
+        failure = None
     while True:
         try:
-            message = conn.recv()
-        except (EOFError, OSError):
+            message = pickle.load(requests)
+        except (EOFError, OSError, pickle.UnpicklingError):
             return
         if message is None:
             return
+        if failure is not None:
+            reply(("error", failure))
+            continue
         _, path, data, labels = message
         try:
             fig = _mpl.corner_figure(data, labels)
@@ -66,25 +80,34 @@ def _serve(conn) -> None:
                 io.save_figure(path, fig)
             finally:
                 plt.close(fig)
-            conn.send(("ok", path))
+            reply(("ok", path))
         except Exception as exc:  # noqa: BLE001 - reported to the parent, which redraws
-            conn.send(("error", f"{type(exc).__name__}: {exc}"))
+            reply(("error", f"{type(exc).__name__}: {exc}"))
 
 
 class CornerProcess:
     """A warmed-up process that draws one corner plot at a time (see the module notes).
 
     Use :meth:`start` (``None`` where no second core is available), :meth:`submit`,
-    :meth:`result` and :meth:`close` (or ``with``).
+    :meth:`result` and :meth:`close` (or ``with``).  The process is a fresh interpreter
+    running this module (``python -m polkit._corner_process``), so it never re-runs the
+    caller's own script; it reads pickled requests on its standard input and answers on
+    a pipe of its own.
     """
 
     def __init__(self) -> None:
-        ctx = multiprocessing.get_context("spawn")
-        self._conn, child = ctx.Pipe()
-        self._proc = ctx.Process(target=_serve, args=(child,), daemon=True,
-                                 name="polkit-corner-plot")
-        self._proc.start()
-        child.close()
+        read_fd, write_fd = os.pipe()
+        try:
+            self._proc = subprocess.Popen(
+                [sys.executable, "-m", "polkit._corner_process", str(write_fd)],
+                stdin=subprocess.PIPE, stdout=subprocess.DEVNULL, pass_fds=(write_fd,),
+                close_fds=True)
+        except BaseException:
+            os.close(read_fd)
+            raise
+        finally:
+            os.close(write_fd)
+        self._replies = os.fdopen(read_fd, "rb")
         self._pending: str | None = None
         self._used = False
 
@@ -95,20 +118,25 @@ class CornerProcess:
             return None
         try:
             return cls()
-        except (OSError, ValueError, RuntimeError) as exc:
+        except (OSError, ValueError, subprocess.SubprocessError) as exc:
             log.info("corner plot drawn in the main process (no second process: %s)", exc)
             return None
+
+    def alive(self) -> bool:
+        """Whether the process is still running."""
+        return self._proc.poll() is None
 
     def submit(self, path: str | os.PathLike, data: np.ndarray, labels: Sequence[str]) -> bool:
         """Ask for the corner plot of ``data`` (draws x parameters) written to ``path``.
 
         Returns False when the process cannot take it (then draw it here).
         """
-        if self._pending is not None or not self._proc.is_alive():
+        if self._pending is not None or not self.alive():
             return False
+        message = ("corner", os.fspath(path), np.asarray(data, dtype=float), list(labels))
         try:
-            self._conn.send(("corner", os.fspath(path), np.asarray(data, dtype=float),
-                             list(labels)))
+            pickle.dump(message, self._proc.stdin, protocol=pickle.HIGHEST_PROTOCOL)
+            self._proc.stdin.flush()
         except (OSError, ValueError) as exc:
             log.info("corner plot process unavailable (%s)", exc)
             return False
@@ -122,8 +150,8 @@ class CornerProcess:
             return None
         self._pending = None
         try:
-            status, value = self._conn.recv()
-        except (EOFError, OSError) as exc:
+            status, value = pickle.load(self._replies)
+        except (EOFError, OSError, pickle.UnpicklingError, ValueError) as exc:
             log.info("corner plot process ended early (%s); drawing it here", exc)
             return None
         if status != "ok":
@@ -136,17 +164,24 @@ class CornerProcess:
         if not self._used:  # e.g. the fit failed: no need to wait for its imports
             self._proc.terminate()
         try:
-            self._conn.send(None)
+            pickle.dump(None, self._proc.stdin)
+            self._proc.stdin.close()
         except (OSError, ValueError):
             pass
-        self._proc.join(_JOIN_S)
-        if self._proc.is_alive():
-            self._proc.terminate()
-            self._proc.join(_JOIN_S)
-        self._conn.close()
+        try:
+            self._proc.wait(_JOIN_S)
+        except subprocess.TimeoutExpired:
+            self._proc.kill()
+            self._proc.wait(_JOIN_S)
+        self._replies.close()
 
     def __enter__(self) -> CornerProcess:
         return self
 
     def __exit__(self, *exc) -> None:
         self.close()
+
+
+if __name__ == "__main__":  # the process itself (see CornerProcess)
+    with os.fdopen(int(sys.argv[1]), "wb") as _replies:
+        _serve(sys.stdin.buffer, _replies)

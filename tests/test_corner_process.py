@@ -50,7 +50,7 @@ def test_a_dead_process_is_reported_so_the_caller_draws_the_plot(tmp_path, draws
     # a figure: submit or result says so, and the caller draws the plot itself
     proc = _started()
     proc._proc.terminate()
-    proc._proc.join(10)
+    proc._proc.wait(60)
     taken = proc.submit(tmp_path / "corner.png", draws, LABELS)
     assert not taken or proc.result() is None
     proc.close()
@@ -70,10 +70,34 @@ def test_a_drawing_error_in_the_process_is_not_raised_there(tmp_path, draws):
         assert proc.result() == tmp_path / "corner.png"
 
 
+def test_the_process_does_not_rerun_the_callers_script(tmp_path, draws):
+    # common practice, no published source: a script without a __main__ guard that calls
+    # the command must run once (a spawned multiprocessing child would re-run it)
+    script = tmp_path / "unguarded.py"
+    script.write_text(
+        "import pathlib, sys\n"
+        "import numpy as np\n"
+        "from polkit._corner_process import CornerProcess\n"
+        "runs = pathlib.Path(sys.argv[1])\n"
+        "runs.write_text(runs.read_text() + 'x' if runs.exists() else 'x')\n"
+        "proc = CornerProcess()\n"
+        "assert proc.submit(runs.with_name('c.png'), np.random.default_rng(1)"
+        ".standard_normal((500, 2)), ['a', 'b'])\n"
+        "assert proc.result() is not None\n"
+        "proc.close()\n")
+    import subprocess
+    import sys
+
+    runs = tmp_path / "runs.txt"
+    subprocess.run([sys.executable, str(script), str(runs)], check=True, timeout=600)
+    assert runs.read_text() == "x"
+    assert (tmp_path / "c.png").exists()
+
+
 def test_an_unused_process_ends_at_once():
     # common practice, no published source: a fit that fails early must not wait for the
     # helper process's imports
     proc = _started()
     proc.close()
-    assert not proc._proc.is_alive()
-    assert proc._proc.exitcode == -signal.SIGTERM  # stopped, not awaited
+    assert not proc.alive()
+    assert proc._proc.returncode == -signal.SIGTERM  # stopped, not awaited

@@ -67,14 +67,16 @@ class LogPosterior:
         n_walkers = theta.shape[0]
         self.n_calls += 1
         log_post = self.space.log_prior(theta)
-        extras = np.full((n_walkers, self.n_extras), np.nan)
+        extras = np.full((n_walkers, self.n_extras), np.nan) if self.n_extras else None
         inside = np.isfinite(log_post)
-        if np.any(np.isnan(theta)):
+        n_inside = int(np.count_nonzero(inside))
+        if np.isnan(theta).any():
             bad = int(np.flatnonzero(np.isnan(theta).any(axis=1))[0])
             raise FitError(f"NaN parameter values reached the log posterior: "
                            f"{describe_point(self.space, theta[bad])}")
-        if inside.any():
-            result = self.log_likelihood(theta[inside])
+        if n_inside:
+            every = n_inside == n_walkers  # the usual case: no gathered copy
+            result = self.log_likelihood(theta if every else theta[inside])
             if self.n_extras:
                 if not (isinstance(result, tuple) and len(result) == 2):
                     raise FitError(
@@ -83,7 +85,7 @@ class LogPosterior:
                         f"{type(result).__name__}"
                     )
                 result, side = result
-                side = np.asarray(side, dtype=float).reshape(int(inside.sum()), -1)
+                side = np.asarray(side, dtype=float).reshape(n_inside, -1)
                 if side.shape[1] != self.n_extras:
                     raise FitError(
                         f"the log-likelihood returned {side.shape[1]} extras per walker; "
@@ -91,13 +93,13 @@ class LogPosterior:
                     )
                 extras[inside] = side
             loglike = np.asarray(result, dtype=float)
-            if loglike.shape != (int(inside.sum()),):
+            if loglike.shape != (n_inside,):
                 raise FitError(
-                    f"the log-likelihood returned shape {loglike.shape} for {int(inside.sum())} "
-                    f"walkers; expected ({int(inside.sum())},)"
+                    f"the log-likelihood returned shape {loglike.shape} for {n_inside} "
+                    f"walkers; expected ({n_inside},)"
                 )
-            bad = np.isnan(loglike) | (loglike == np.inf)
-            if bad.any():
+            if not loglike.max() < np.inf:  # a NaN or +inf somewhere (one reduction)
+                bad = np.isnan(loglike) | (loglike == np.inf)
                 rows = theta[inside][bad]
                 shown = "; ".join(describe_point(self.space, r) for r in rows[:3])
                 more = f" (and {len(rows) - 3} more)" if len(rows) > 3 else ""
@@ -106,7 +108,10 @@ class LogPosterior:
                     f"the log-likelihood returned {what} at {shown}{more}; a log-likelihood "
                     f"must be finite or -inf: check the model and the data at these values"
                 )
-            log_post[inside] += loglike
+            if every:
+                log_post += loglike
+            else:
+                log_post[inside] += loglike
         if self.n_extras:
             return np.column_stack([log_post, extras])
         return log_post

@@ -398,6 +398,9 @@ class ParameterSpace:
                                  dtype=bool)
         self._box_norm = float(sum(self._params[j].prior._lognorm for j in box))
         self._other = [j for j in range(len(self._params)) if j not in set(box)]
+        # every column a box prior, in order: theta is used as it is (no gathered copy)
+        self._box_whole = box == list(range(len(self._params)))
+        self._box_any_log = bool(self._box_log.any())
 
     # -- container protocol -----------------------------------------------------------
     def __len__(self) -> int:
@@ -472,11 +475,14 @@ class ParameterSpace:
             )
         total = np.zeros(theta.shape[:-1])
         if self._box.size:
-            x = theta[..., self._box]
+            x = theta if self._box_whole else theta[..., self._box]
             with np.errstate(invalid="ignore", divide="ignore"):
                 inside = np.all((x >= self._box_lo) & (x <= self._box_hi), axis=-1)
-                logs = np.log(np.where(self._box_log & (x > 0), x, 1.0)).sum(axis=-1)
-            total = np.where(inside, self._box_norm - logs, -np.inf)
+                if self._box_any_log:
+                    logs = np.log(np.where(self._box_log & (x > 0), x, 1.0)).sum(axis=-1)
+                    total = np.where(inside, self._box_norm - logs, -np.inf)
+                else:
+                    total = np.where(inside, self._box_norm, -np.inf)
         for j in self._other:
             total = total + self._params[j].prior.logpdf(theta[..., j])
         return total
