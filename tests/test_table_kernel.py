@@ -159,11 +159,7 @@ DEMO_CASES = [
     for model in ("two", "three")
     for profile in ("lorentzian", "voigt")
 ] + [("ds1_p1_reflectance.npz", "two", "lorentzian"),
-     pytest.param("ds1_p2_emission_nm.txt", "weak", "lorentzian", marks=pytest.mark.xfail(
-         strict=True, reason="spectral._poles_flat forms r_lo = (lo - x) / (lo - up) by "
-         "cancellation: at g = 0 its Im r / Re r is rounding noise (up to ~1e8), while the "
-         "compiled path has the exact uncoupled residues 0 and 1; see the weak-coupling "
-         "tests below. Remove this mark once the numpy residues avoid the cancellation."))]
+     ("ds1_p2_emission_nm.txt", "weak", "lorentzian")]
 
 
 @pytest.mark.parametrize(("name", "model", "profile"), DEMO_CASES)
@@ -600,8 +596,7 @@ def test_kernel_poles_and_residues_at_zero_detuning(case, axis):
 def test_kernel_poles_and_residues_along_the_axis(case, axis):
     # Source: closed forms as above (Savona et al., Solid State Commun. 93, 733 (1995));
     # residues checked against an extended-precision evaluation of the same partial
-    # fractions (numpy longdouble), against branch_poles where its float64 cancellation
-    # (absolute error ~ u E / |eps_up - eps_lo|) stays below 1e-13, against the sum rule
+    # fractions (numpy longdouble), against branch_poles, against the sum rule
     # r_lo + r_up = 1, and against the closed-form G_CC of photon_green at a few energies
     grid = np.linspace(-20.0, 20.0, 41) if axis == "angle" else np.linspace(-2.7, 2.7, 41)
     par = POLE_CASES[case]
@@ -627,11 +622,9 @@ def test_kernel_poles_and_residues_along_the_axis(case, axis):
         r_lo = (lo - (x - 1j * ld(par["gamma_x"]) / 2)) / (lo - up)
         np.testing.assert_allclose(res[..., 0], r_lo.astype(complex), rtol=0, atol=1e-13)
         np.testing.assert_allclose(res[..., 1], (1 - r_lo).astype(complex), rtol=0, atol=1e-13)
+    # branch_poles forms the residues without cancellation too: the same to 1e-13
+    np.testing.assert_allclose(ref_res, res, rtol=0, atol=1e-13)
     if par["g"] > 0:
-        # branch_poles: (lo - x) / (lo - up) loses about u |lo| / |lo - up| to cancellation
-        gap = np.abs(ref_poles[..., 1] - ref_poles[..., 0])[..., None]
-        bound = 1e-13 + 8.0 * np.finfo(float).eps * np.abs(ref_poles) / gap
-        assert np.all(np.abs(res - ref_res) <= bound)
         # partial fractions reproduce the closed-form photon Green's function
         kw = {"angle_deg": grid} if axis == "angle" else {"k": grid}
         e_c = cavity_energy(e_c0[:, None], n[:, None], **kw)

@@ -342,11 +342,22 @@ def _poles_flat(e_c, flat):
     if len(ex) == 1:
         x, g, w = ex[0][:, None], gs[0][:, None], gx[0][:, None]
         lo, up = two_mode_eigenvalues(e_c, x, g, gc, w)
-        xt = x - 0.5j * w
+        # r_lo = (lo - E_X + i gamma_X/2) / (lo - up) = (root - half) / (2 root) and
+        # r_up = (root + half) / (2 root), with half the complex half-detuning and root
+        # the square root of two_mode_eigenvalues (the same operations, so the same
+        # bits).  Written that way, and with the smaller factor taken from
+        # (root - half)(root + half) = g^2, no eV-sized energies are subtracted: far from
+        # resonance (and at g = 0) the small residue keeps its full relative precision.
+        half = 0.5 * ((e_c - x) - 0.5j * (gc - w))
+        root = np.sqrt(g * g + half * half)
+        minus, plus = root - half, root + half
+        gg = (g * g).astype(complex)
         with np.errstate(divide="ignore", invalid="ignore"):
-            r_lo = (lo - xt) / (lo - up)
+            plus_larger = np.abs(plus) >= np.abs(minus)
+            minus = np.where(plus_larger, gg / plus, minus)
+            plus = np.where(plus_larger, plus, gg / minus)
+            residues = np.stack([minus / (2.0 * root), plus / (2.0 * root)], axis=-1)
         poles = np.stack([lo, up], axis=-1)
-        residues = np.stack([r_lo, 1.0 - r_lo], axis=-1)
         return poles, residues
     modes = coupled_modes(
         e_c, [x[:, None] for x in ex], [c[:, None] for c in gs], gc, [w[:, None] for w in gx]
