@@ -15,9 +15,9 @@ ignores SIGINT and the parent stops it).
 
 from __future__ import annotations
 
+import json
 import logging
 import os
-import pickle
 import signal
 import subprocess
 import sys
@@ -41,17 +41,43 @@ def _usable_cores() -> int:
         return os.cpu_count() or 1
 
 
-def _serve(requests, replies) -> None:
-    """The process's loop: ``("corner", path, data, labels)`` requests until ``None``.
+def _send(stream, header: dict | None, data: np.ndarray | None = None) -> None:
+    """One message: a JSON line, then the raw little-endian float64 values of ``data``.
 
-    ``requests`` and ``replies`` are binary streams carrying pickles (the parent's pipes).
+    Plain data only (no pickles): the other side never runs code it reads.
+    """
+    if data is not None:
+        data = np.ascontiguousarray(data, dtype="<f8")
+        header = {**header, "shape": list(data.shape)}
+    stream.write(json.dumps(header).encode() + b"\n")
+    if data is not None:
+        stream.write(data.tobytes())
+    stream.flush()
+
+
+def _receive(stream) -> tuple[dict | None, np.ndarray | None]:
+    """The next message of :func:`_send`; raises EOFError at the end of the stream."""
+    line = stream.readline()
+    if not line:
+        raise EOFError("the other process closed the pipe")
+    header = json.loads(line)
+    if header is None or "shape" not in header:
+        return header, None
+    shape = tuple(int(n) for n in header["shape"])
+    n_bytes = 8 * int(np.prod(shape))
+    payload = stream.read(n_bytes)
+    if len(payload) != n_bytes:
+        raise EOFError("the other process closed the pipe within a message")
+    return header, np.frombuffer(payload, dtype="<f8").reshape(shape)
+
+
+def _serve(requests, replies) -> None:
+    """The process's loop: corner-plot requests until ``null`` or the end of the input.
+
+    ``requests`` and ``replies`` are binary streams (the parent's pipes) carrying
+    :func:`_send` messages.
     """
     signal.signal(signal.SIGINT, signal.SIG_IGN)  # Ctrl-C is the parent's to handle
-
-    def reply(message) -> None:
-        pickle.dump(message, replies, protocol=pickle.HIGHEST_PROTOCOL)
-        replies.flush()
-
     try:
         from . import _mpl, io
         from ._arviz import arviz
@@ -65,24 +91,24 @@ def _serve(requests, replies) -> None:
         failure = None
     while True:
         try:
-            message = pickle.load(requests)
-        except (EOFError, OSError, pickle.UnpicklingError):
+            header, data = _receive(requests)
+        except (EOFError, OSError, ValueError):
             return
-        if message is None:
+        if header is None:
             return
         if failure is not None:
-            reply(("error", failure))
+            _send(replies, {"status": "error", "value": failure})
             continue
-        _, path, data, labels = message
+        path = header["path"]
         try:
-            fig = _mpl.corner_figure(data, labels)
+            fig = _mpl.corner_figure(data, header["labels"])
             try:
                 io.save_figure(path, fig)
             finally:
                 plt.close(fig)
-            reply(("ok", path))
+            _send(replies, {"status": "ok", "value": path})
         except Exception as exc:  # noqa: BLE001 - reported to the parent, which redraws
-            reply(("error", f"{type(exc).__name__}: {exc}"))
+            _send(replies, {"status": "error", "value": f"{type(exc).__name__}: {exc}"})
 
 
 class CornerProcess:
@@ -91,8 +117,8 @@ class CornerProcess:
     Use :meth:`start` (``None`` where no second core is available), :meth:`submit`,
     :meth:`result` and :meth:`close` (or ``with``).  The process is a fresh interpreter
     running this module (``python -m polkit._corner_process``), so it never re-runs the
-    caller's own script; it reads pickled requests on its standard input and answers on
-    a pipe of its own.
+    caller's own script; it reads requests (JSON and raw numbers, no pickles) on its
+    standard input and answers on a pipe of its own.
     """
 
     def __init__(self) -> None:
@@ -133,10 +159,9 @@ class CornerProcess:
         """
         if self._pending is not None or not self.alive():
             return False
-        message = ("corner", os.fspath(path), np.asarray(data, dtype=float), list(labels))
         try:
-            pickle.dump(message, self._proc.stdin, protocol=pickle.HIGHEST_PROTOCOL)
-            self._proc.stdin.flush()
+            _send(self._proc.stdin, {"path": os.fspath(path), "labels": [str(v) for v in labels]},
+                  np.asarray(data, dtype=float))
         except (OSError, ValueError) as exc:
             log.info("corner plot process unavailable (%s)", exc)
             return False
@@ -150,8 +175,9 @@ class CornerProcess:
             return None
         self._pending = None
         try:
-            status, value = pickle.load(self._replies)
-        except (EOFError, OSError, pickle.UnpicklingError, ValueError) as exc:
+            reply, _ = _receive(self._replies)
+            status, value = reply["status"], reply["value"]
+        except (EOFError, OSError, ValueError, KeyError, TypeError) as exc:
             log.info("corner plot process ended early (%s); drawing it here", exc)
             return None
         if status != "ok":
@@ -164,7 +190,7 @@ class CornerProcess:
         if not self._used:  # e.g. the fit failed: no need to wait for its imports
             self._proc.terminate()
         try:
-            pickle.dump(None, self._proc.stdin)
+            _send(self._proc.stdin, None)
             self._proc.stdin.close()
         except (OSError, ValueError):
             pass
