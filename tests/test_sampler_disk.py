@@ -28,7 +28,7 @@ import pytest
 
 from polkit import io
 from polkit.errors import ConvergenceWarning, FitError
-from polkit.inference import sampler as sampler_module
+from polkit.inference import checkpoint as checkpoint_module
 
 HANG_GUARD_S = 600.0  # a stuck subprocess fails the test instead of hanging CI
 
@@ -236,7 +236,7 @@ def test_a_failed_hdf5_write_becomes_one_clear_error(tmp_path, raised):
     # the checkpoint, the problem and the way on
     checkpoint = tmp_path / "chains.h5"
     with pytest.raises(OSError) as info:
-        with sampler_module._checkpoint_writes(checkpoint):
+        with checkpoint_module._checkpoint_writes(checkpoint):
             raise raised
     message = str(info.value)
     assert info.value.errno == errno.ENOSPC
@@ -251,7 +251,7 @@ def test_a_failed_hdf5_write_becomes_one_clear_error(tmp_path, raised):
 def test_errors_that_are_not_io_pass_through_unchanged(tmp_path, raised):
     # common practice, no published source: only I/O failures are rewritten
     with pytest.raises(type(raised)) as info:
-        with sampler_module._checkpoint_writes(tmp_path / "chains.h5"):
+        with checkpoint_module._checkpoint_writes(tmp_path / "chains.h5"):
             raise raised
     assert info.value is raised
 
@@ -287,4 +287,4 @@ def test_read_only_folder_for_the_checkpoint_names_the_folder(tmp_path, monkeypa
 def test_chunk_rows_count_whole_chunks(rows, row_bytes, start, stop, expected):
     # Source: HDF5 User's Guide, chunked storage -- a chunk is allocated whole when first
     # written (incremental allocation, the default for chunked datasets without filters)
-    assert sampler_module._ChunkRows(rows, row_bytes).new_bytes(start, stop) == expected
+    assert checkpoint_module._ChunkRows(rows, row_bytes).new_bytes(start, stop) == expected

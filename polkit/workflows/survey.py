@@ -58,7 +58,7 @@ import numpy as np
 import xarray as xr
 
 from ..errors import ConfigError, DataError, PolkitError
-from ..inference.sampler import root_seed
+from ..inference.checkpoint import root_seed
 from ..io import write_json, write_netcdf, write_text
 from .dispersion_model import COUPLED_MODELS as MODELS
 
