@@ -355,7 +355,7 @@ def test_a_nan_branch_gives_nan_on_both_paths():
 
 
 @pytest.mark.parametrize(("n_excitons", "route"), [(1, "two_mode_table_chi2"),
-                                                   (2, "table_chi2")])
+                                                   (2, "table_chi2_prepared")])
 def test_the_switch_chooses_the_path(monkeypatch, switch, n_excitons, route):
     # common practice, no published source: POLKIT_COMPILED=0 (or use_compiled(False))
     # leaves the kernels unused, so the equivalence checks compare different code; with
@@ -371,7 +371,7 @@ def test_the_switch_chooses_the_path(monkeypatch, switch, n_excitons, route):
             return kernel(*args)
         return wrapped
 
-    for name in ("table_chi2", "two_mode_table_chi2"):
+    for name in ("table_chi2", "table_chi2_prepared", "two_mode_table_chi2"):
         monkeypatch.setattr(_kernels, name, spy(name))
     theta = x_true[None]
     switch(None)

@@ -65,6 +65,7 @@ __all__ = [
     "solve_rows",
     "MAX_SOLVE_COLUMNS",
     "table_chi2",
+    "table_chi2_prepared",
     "TWO_MODE_PARAMETERS",
     "in_plane_terms",
     "parameter_map",
@@ -838,10 +839,18 @@ def table_chi2(pole_energy, half_width, residue_ratio, table_energy, table_energ
     ndarray
         Chi-square per walker (NaN where a compared branch was NaN).
     """
-    pole_energy = _f64(pole_energy)
     operands = table_operands(table_energy, table_energy_error, table_width,
                               table_width_error, width_ok, own_response, response, all_found,
                               found)
+    return table_chi2_prepared(pole_energy, half_width, residue_ratio, operands)
+
+
+def table_chi2_prepared(pole_energy, half_width, residue_ratio, operands) -> np.ndarray:
+    """:func:`table_chi2` with the table side already converted by :func:`table_operands`.
+
+    For a likelihood called thousands of times per fit: the table is converted once.
+    """
+    pole_energy = _f64(pole_energy)
     chi2 = np.empty(pole_energy.shape[0])
     _KERNELS["table"](pole_energy, _f64(half_width), _f64(residue_ratio), *operands, chi2)
     return chi2

@@ -381,9 +381,11 @@ class DispersionProblem:
             self._t_wd = t_wd[None, :, :, None]
             self._t_own = None if own is None else self._t_kernel[5][None, :, :, None]
             self._t_nobs = int(self._tfound.sum() + (self._tfound & w_ok).sum())
-            self._t_fused = None
-            if self.n_excitons == 1 and _kernels.available():
-                self._t_fused = self._two_mode_operands()
+            self._t_fused = self._t_operands = None
+            if _kernels.available():  # the table side in the kernels' form, once per fit
+                self._t_operands = _kernels.table_operands(*self._t_kernel)
+                if self.n_excitons == 1:
+                    self._t_fused = self._two_mode_operands()
 
     def _two_mode_operands(self) -> tuple:
         """What the one-exciton compiled peak-table kernel needs, fixed for the fit.
@@ -399,7 +401,7 @@ class DispersionProblem:
              idx["cavity_linewidth"], idx["exciton_linewidth"]],
             [1.0, 1.0, 1.0, 0.5 * MEV, MEV, MEV], len(self.space.names))
         return (parameters, _kernels.in_plane_terms(self.in_plane, self.axis),
-                _kernels.table_operands(*self._t_kernel))
+                self._t_operands)
 
     def set_noise(self, inv_var: np.ndarray, note: str = "") -> None:
         """Set the inverse variance per pixel and precompute the data side of the projection."""
@@ -536,7 +538,7 @@ class DispersionProblem:
             h = -poles.imag
             ratio = np.divide(res.imag, res.real, out=np.zeros_like(h), where=res.real > 0)
             if compiled:
-                chi2 = _kernels.table_chi2(poles.real, h, ratio, *self._t_kernel)
+                chi2 = _kernels.table_chi2_prepared(poles.real, h, ratio, self._t_operands)
             else:
                 chi2 = self._table_chi2_numpy(poles, h, ratio)
         s = self._noise_scale(theta)
