@@ -229,3 +229,16 @@ def test_result_from_a_real_run(tmp_path):
     back = FitResult.load(res.save(tmp_path))
     assert back.summary() == res.summary()
     assert back.posterior["exciton_energy"].attrs["long_name"] == "exciton energy"
+
+
+def test_model_check_is_a_top_level_summary_entry_that_survives_save_and_load(tmp_path):
+    # common practice, no published source
+    check = {"passed": False, "statistic": 3.2, "threshold": 1.3, "advice": "another line?"}
+    out = synthetic_output()
+    res = FitResult.from_samples(out, SPACE, model="m", kind="dispersion",
+                                 provenance={"input_sha256": "ab" * 32},
+                                 extra_attrs={"model_check": check})
+    assert res.summary()["model_check"] == check
+    back = FitResult.load(res.save(tmp_path / "fit"))
+    assert back.model_check == check and back.summary()["model_check"]["passed"] is False
+    assert "model_check" not in make_result().summary()  # absent when no check ran

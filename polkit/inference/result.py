@@ -289,6 +289,18 @@ class FitResult:
         return json.loads(self._tree.attrs["provenance"])
 
     @property
+    def model_check(self) -> dict[str, Any] | None:
+        """The model check (does the model describe the data?), or ``None`` when none ran.
+
+        Stored as JSON text in the root attribute ``model_check`` (pass it through
+        ``extra_attrs={"model_check": {...}}`` of :meth:`from_samples`); at least
+        ``{"passed": bool, ...}``.  It is separate from convergence: a chain can converge
+        to a model that does not describe the data.
+        """
+        text = self._tree.attrs.get("model_check")
+        return None if text is None else json.loads(text)
+
+    @property
     def converged(self) -> bool:
         """Whether the run passed its convergence gate."""
         return bool(int(self._tree.attrs["converged"]))
@@ -344,7 +356,7 @@ class FitResult:
                     "units": str(var.attrs.get("units", "1")),
                     "long_name": str(var.attrs.get("long_name", name)),
                 }
-        return {
+        out = {
             "model": self.model,
             "kind": self.kind,
             "parameters": parameters,
@@ -352,6 +364,10 @@ class FitResult:
             "diagnostics": self.diagnostics,
             "provenance": self.provenance,
         }
+        check = self.model_check
+        if check is not None:
+            out["model_check"] = check
+        return out
 
     def _rows(self) -> list[tuple[str, str, str, str, str, str]]:
         rows = []
