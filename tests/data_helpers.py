@@ -9,7 +9,7 @@ import numpy as np
 
 from polkit.constants import HBARC_EV_UM
 
-# invented sample parameters (GaAs-like, DESIGN section 4 ranges)
+# invented sample parameters (GaAs-like ranges, value from memory)
 E_X = 1.480  # exciton energy, eV
 E_C0 = 1.475  # cavity energy at normal incidence, eV
 N_EFF = 3.5  # effective index

@@ -79,7 +79,8 @@ class Camera:
     adc_max: float | None = None  # clipping level (counts), None: no clipping
     n_spikes: int = 0
     spike_counts: tuple[float, float] = (2000.0, 20000.0)
-    extra_mode: tuple[float, float, float, float] | None = None  # (E eV, FWHM meV, counts, min |angle|)
+    # (E eV, FWHM meV, counts, min |angle|)
+    extra_mode: tuple[float, float, float, float] | None = None
     medium: str = "vacuum"  # wavelengths written as "vacuum" or "air"
     fade_deg: float = 30.0  # occupation fades as exp(-(angle/fade)^2)
     extra: dict = field(default_factory=dict)

@@ -297,7 +297,7 @@ def run_sbc(case_name: str, n_sims: int, n_draws: int, seed: int, settings: Samp
 # the cases (invented samples)
 # ----------------------------------------------------------------------------------------
 def _dispersion_space(gc: tuple[float, float], gx: tuple[float, float]) -> ParameterSpace:
-    """Narrow, proper priors around an invented GaAs-like cavity (DESIGN ranges, from memory)."""
+    """Narrow, proper priors around an invented GaAs-like cavity (typical ranges, from memory)."""
     return ParameterSpace([
         Parameter("exciton_energy", "eV", Prior.normal(1.5450, 0.0005)),
         Parameter("cavity_energy", "eV", Prior.normal(1.5420, 0.0010)),

@@ -102,7 +102,8 @@ def test_worked_example_by_hand(one_draw, tmp_path):
     )
     res = energy_budget(disp, power, device, seed=1, n_draws=5, out=tmp_path / "out",
                         figures=False)
-    # Source: hand arithmetic from E_op = phi gamma A E_LP / (g_LP eta_in) (DESIGN section 4);
+    # Source: hand arithmetic from E_op = phi gamma A E_LP / (g_LP eta_in) (common practice, no
+    # published source);
     # e and h from CODATA via scipy.constants.
     # n = 1e3 x phi x gamma[meV] / g[ueV um^2] = 1e3 x 1 x 0.1 / 1 = 100 polaritons per um^2
     # N = n A = 100 x 10 um^2 = 1000 polaritons
@@ -152,7 +153,7 @@ def test_lifetime_convention_is_two_pi_faster(one_draw):
     disp, power = one_draw
     lw = energy_budget(disp, power, _device(), seed=2, n_draws=3)
     lt = energy_budget(disp, power, _device(rate_convention="lifetime"), seed=2, n_draws=3)
-    # Source: 1/tau = gamma/hbar = 2 pi gamma/h (tau = hbar / gamma, DESIGN section 4)
+    # Source: 1/tau = gamma/hbar = 2 pi gamma/h (tau = hbar / gamma, CODATA via scipy.constants)
     np.testing.assert_allclose(lt.operation_rate, 2 * np.pi * lw.operation_rate, rtol=1e-12)
     # 1/tau = 1e-4 eV / (6.582e-16 eV s) = 151.93 GHz
     np.testing.assert_allclose(lt.operation_rate, 1e-4 / (constants.hbar / constants.e) / 1e9,
@@ -181,7 +182,8 @@ UNCERTAIN = dict(node_area={"value": 8.0, "rel_error": 0.2, "units": "um2"},
 def test_scaling_laws(spread):
     disp, p1, p2 = spread
     base = energy_budget(disp, p1, _device(**UNCERTAIN), seed=7, n_draws=1000)
-    # Source: E_op proportional to A and to 1 / g_LP (DESIGN section 4); same seed, same draws
+    # Source: E_op proportional to A and to 1 / g_LP (common practice, no published source); same
+    # seed, same draws
     big = energy_budget(disp, p1, _device(**{**UNCERTAIN, "node_area": {
         "value": 16.0, "rel_error": 0.2, "units": "um2"}}), seed=7, n_draws=1000)
     np.testing.assert_allclose(big.energy_per_operation, 2 * base.energy_per_operation,
@@ -207,7 +209,8 @@ def test_scaling_laws(spread):
 
 
 def test_exciton_route_matches_polariton_constant(tmp_path):
-    # Source: g_LP = g_X |X|^4 / N_QW (DESIGN section 4): |X|^2 = 0.5, g_X = 8, N = 2 -> g_LP = 1
+    # Source: g_LP = g_X |X|^4 / N_QW (Ciuti et al., Phys. Rev. B 58, 7926 (1998)): |X|^2 = 0.5,
+    # g_X = 8, N = 2 -> g_LP = 1
     disp = _dispersion(tmp_path / "disp", [0.1, 0.2], [1.6, 1.6], x2=0.5)
     pol = _power(tmp_path / "pol", [1.0, 1.0])
     exc = _power(tmp_path / "exc", [8.0, 8.0], name="exciton_interaction_constant",
@@ -491,7 +494,8 @@ def test_bad_device_file_names_the_file(tmp_path):
 def test_power_without_calibration_is_refused(tmp_path):
     disp = _dispersion(tmp_path / "disp", 0.1, 1.6)
     power = _save_result(tmp_path / "power", {"blueshift_per_power": ([0.1], "meV/mW")})
-    # Source: absolute energies need an absolute interaction constant (DESIGN section 4)
+    # Source: absolute energies need an absolute interaction constant (common practice, no
+    # published source)
     with pytest.raises(DataError, match="Absolute energies need a power fit with a density "
                                         "calibration") as info:
         energy_budget(disp, power, _device(), n_draws=3)

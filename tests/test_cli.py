@@ -12,7 +12,9 @@ from polkit.cli import main
 
 ROOT = Path(__file__).resolve().parents[1]
 DEMO = ROOT / "data_examples"
-DEMO_FILES = sorted(p.name for p in DEMO.glob("ds1_*") if p.suffix in {".nc", ".npz", ".txt", ".csv"})
+DEMO_FILES = sorted(
+    p.name for p in DEMO.glob("ds1_*") if p.suffix in {".nc", ".npz", ".txt", ".csv"}
+)
 
 
 @pytest.mark.parametrize("name", DEMO_FILES)
@@ -41,7 +43,8 @@ def test_broken_files_are_refused_in_one_line(name, tmp_path):
     path = tmp_path / name
     path.write_bytes(BROKEN[name])
     proc = subprocess.run(
-        [sys.executable, "-m", "polkit.cli", "inspect", str(path), "--png", str(tmp_path / "x.png")],
+        [sys.executable, "-m", "polkit.cli", "inspect", str(path), "--png",
+         str(tmp_path / "x.png")],
         capture_output=True, text=True, timeout=120,
     )
     assert proc.returncode == 2

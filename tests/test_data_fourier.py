@@ -27,7 +27,8 @@ K_PER_EV_UM = sc.e / (sc.hbar * sc.c) * 1e-6
 
 
 def test_wavevector_constant_and_formula():
-    # Source: DESIGN section 3, k[1/um] = 5.0677 E[eV] sin(theta) (constant from CODATA)
+    # Source: k = E sin(theta) / (hbar c), k[1/um] = 5.0677 E[eV] sin(theta) (CODATA via
+    # scipy.constants)
     assert K_PER_EV_UM == pytest.approx(5.0677, abs=1e-4)
     assert wavevector(30.0, 1.5) == pytest.approx(K_PER_EV_UM * 1.5 * 0.5, rel=1e-12)
     grid = wavevector(np.array([[-10.0], [0.0], [20.0]]), np.array([1.4, 1.6]))

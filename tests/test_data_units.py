@@ -122,7 +122,8 @@ def test_noise_attributes_follow_the_jacobian(tmp_path):
 
 
 def test_reflectance_is_not_jacobian_scaled(tmp_path):
-    # Source: a reflectance is a ratio, not a spectral density (DESIGN section 3)
+    # Source: a reflectance is a ratio, not a spectral density (common practice, no published
+    # source)
     lam = np.linspace(820.0, 880.0, 60)
     angle = np.linspace(-10, 10, 5)
     sig = np.full((lam.size, angle.size), 0.8)
@@ -168,7 +169,7 @@ def test_air_wavelength_shift_at_850_nm_and_round_trip():
     # Source: lambda_vac = n lambda_air with n - 1 ~ 2.7e-4 (Ciddor 1996 [mem])
     assert lam_vac[0] - lam_air[0] == pytest.approx(850.0 * 2.7477e-4, rel=1e-3)
     assert U.vacuum_to_air_nm(lam_vac) == pytest.approx(lam_air, abs=1e-9)
-    # Source: DESIGN section 3 [mem]: the air/vacuum offset is ~0.4 meV at 1.46 eV
+    # value from memory: the air/vacuum offset is ~0.4 meV at 1.46 eV (from Ciddor 1996's n_air)
     e_vac = U.axis_to_ev(lam_air, "wavelength", 1.0, medium="vacuum")[0]
     e_air = U.axis_to_ev(lam_air, "wavelength", 1.0, medium="air")[0]
     assert (e_vac - e_air) * 1e3 == pytest.approx(0.40, abs=0.01)

@@ -95,7 +95,7 @@ def _inside(result, name, value, n_checks=1):
     ids=["gaas-emission", "perovskite-emission", "gaas-reflectance"],
 )
 def test_whole_map_recovers_known_parameters(truth, kind, seed, tmp_path):
-    # Source: simulated data with known truth (the model's own forward map, seeded noise);
+    # Self-consistency check: data from polkit's own forward model (seeded noise);
     # a calibrated posterior holds the truths inside their intervals (family-wise 95 %).
     da = _simulated(truth, kind=kind, seed=seed)
     r = fit_dispersion(da, seed=seed, out=tmp_path / "fit", progress=False, max_steps=12000)
@@ -169,7 +169,7 @@ def test_transfer_matrix_reflectance_gives_the_dip_splitting(tmp_path):
 
 
 def test_peak_table_path_is_fast_and_close(tmp_path):
-    # Source: simulated data with known truth; the peak-table path is an approximation
+    # Self-consistency check (polkit's own forward model); the peak-table path is an approximation
     # (line maxima of fitted Lorentzians), so it is checked at 5 sigma, not 2.
     da = _simulated(GAAS, seed=21)
     r = fit_dispersion(da, peaks_only=True, seed=3, progress=False, max_steps=12000)
@@ -231,7 +231,7 @@ def test_map_without_branch_is_refused():
 
 
 def test_one_visible_branch_warns_that_g_and_detuning_are_degenerate():
-    # Source: DESIGN notes section 4 (a faint upper branch leaves g and delta degenerate)
+    # common practice, no published source (one branch's energy cannot fix both g and delta)
     da = _simulated(GAAS, seed=61, n_angle=15, n_energy=120, upper=0.0, window=(1.532, 1.5435))
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")

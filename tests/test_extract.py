@@ -111,7 +111,8 @@ def pulls(table, truth, slot=0, var="energy"):
 
 @pytest.mark.parametrize("noise", ["poisson-gain", "poisson", "gaussian"])
 def test_centres_and_widths_recovered_with_calibrated_errors(noise):
-    # Source: simulated data with known truth; calibrated errors give pulls of unit standard
+    # Simulated lines (polkit's Lorentzian, checked elsewhere against its formula); calibrated
+    # errors give pulls of unit standard
     # deviation (common practice, no published source)
     da, centre, fwhm = single_line_map(11, noise)
     table = peak_table(da, n_peaks=1, rng=3)

@@ -132,7 +132,7 @@ def test_arviz_ess_of_independent_draws_is_about_the_draw_count():
 
 
 def test_gate_passes_a_long_stable_chain_and_names_what_fails_on_a_short_one():
-    # Source: the gate of DESIGN.md section 5 applied to AR(1) chains with tau = 3
+    # Source: polkit's gate (50 tau, ESS, R-hat) applied to AR(1) chains with tau = 3
     # (Sokal 1997); acceptance is ~1 for continuous AR(1) moves, so the range is widened
     rng = np.random.default_rng(7)
     chain = _ar1(rng, 0.5, 3000, 16)[:, :, None]

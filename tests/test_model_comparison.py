@@ -229,7 +229,8 @@ def test_priors_naming_a_parameter_no_model_has_are_refused():
 # whole comparisons on simulated maps
 # --------------------------------------------------------------------------------------
 def test_a_strongly_coupled_map_rejects_weak_coupling(tmp_path):
-    # Source: simulated data with known truth (a 10 meV Rabi splitting with 0.25 and 0.6 meV
+    # Self-consistency check: polkit's own forward model (a 10 meV Rabi splitting with 0.25 and 0.6
+    # meV
     # linewidths, far in the strong-coupling regime); the comparison must prefer the
     # two-oscillator model by a wide margin and write its files.
     with warnings.catch_warnings():
@@ -250,7 +251,8 @@ def test_a_strongly_coupled_map_rejects_weak_coupling(tmp_path):
 
 @pytest.mark.slow
 def test_an_uncoupled_map_prefers_weak_coupling(tmp_path):
-    # Source: simulated data with known truth (g = 0: a cavity mode crossing a flat exciton
+    # Self-consistency check: polkit's own forward model (g = 0: a cavity mode crossing a flat
+    # exciton
     # line); the two-oscillator model cannot draw an uncoupled exciton line and must lose.
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", DataWarning)

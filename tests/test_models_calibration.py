@@ -157,7 +157,8 @@ def test_draws_follow_the_log_normal_priors_and_respect_efficiency_bound():
     )
     n = 40_000
     draws = cal.draw(np.random.default_rng(7), n)
-    # Source: simulated data with known truth: median = value, std(log) = sigma_log, with
+    # Source: lognormal moments (Monte Carlo of known distributions): median = value, std(log) =
+    # sigma_log, with
     # Monte Carlo tolerances of about 4 standard errors (sigma/sqrt(n), 1.25 sigma/sqrt(n)).
     log_w = np.log(draws["spot_fwhm_um"])
     assert np.median(log_w) == pytest.approx(np.log(3.0), abs=4 * 1.25 * 0.1 / np.sqrt(n))

@@ -34,7 +34,7 @@ def hamiltonian(e_c, e_x, g, gamma_c, gamma_x):
 
 # ---------------------------------------------------------------- cavity dispersion
 def test_angle_and_k_forms_agree():
-    # Source: planar cavity, k = E sin(theta) / (hbar c) (DESIGN notes section 3/4)
+    # Source: planar cavity, k = E sin(theta) / (hbar c) (CODATA via scipy.constants)
     angles = np.linspace(0.0, 40.0, 9)
     e_c = cavity_energy(1.52, 3.3, angle_deg=angles)
     k = e_c * np.sin(np.deg2rad(angles)) * constants.e / (constants.hbar * constants.c) * 1e-6
@@ -42,10 +42,10 @@ def test_angle_and_k_forms_agree():
 
 
 def test_angle_to_k_constant_and_round_trip():
-    # Source: CODATA via scipy.constants; DESIGN notes quote k[1/um] = 5.0677 E[eV] sin(theta)
+    # Source: CODATA via scipy.constants; k[1/um] = 5.0677 E[eV] sin(theta) (value from memory)
     per_ev = constants.e / (constants.hbar * constants.c) * 1e-6
     assert angle_to_k(90.0, 1.0) == pytest.approx(per_ev, rel=1e-12)
-    assert per_ev == pytest.approx(5.0677, abs=1e-4)  # value quoted in the design notes
+    assert per_ev == pytest.approx(5.0677, abs=1e-4)  # value from memory
     angles = np.linspace(-60, 60, 13)
     np.testing.assert_allclose(k_to_angle(angle_to_k(angles, 1.5), 1.5), angles, atol=1e-11)
 
@@ -63,7 +63,8 @@ def test_cavity_energy_needs_exactly_one_axis():
 
 
 def test_photon_mass_matches_codata():
-    # Source: m_C = E_C0 n_eff^2 / c^2 (DESIGN notes section 4), CODATA via scipy.constants
+    # Source: m_C = E_C0 n_eff^2 / c^2 (Kavokin et al., Microcavities, 2nd ed., 2017), CODATA via
+    # scipy.constants
     e_c0, n_eff = 1.527, 3.35
     expected = e_c0 * constants.e * n_eff**2 / constants.c**2 / constants.m_e
     assert photon_mass(e_c0, n_eff) == pytest.approx(expected, rel=1e-12)
@@ -105,7 +106,7 @@ def test_zero_detuning_splitting_and_half_fractions():
 
 
 def test_hermitian_branches_match_closed_form_and_eigvalsh():
-    # Source: DESIGN notes section 4, E = (E_C+E_X)/2 -/+ sqrt(delta^2+4g^2)/2;
+    # Source: Hopfield, Phys. Rev. 112, 1555 (1958), E = (E_C+E_X)/2 -/+ sqrt(delta^2+4g^2)/2;
     # numpy.linalg.eigvalsh as an independent solver
     e_c = np.linspace(1.50, 1.56, 31)
     lo, up = two_mode_eigenvalues(e_c, E_X, G)
@@ -145,7 +146,8 @@ def test_non_hermitian_matches_eig_and_reduces_to_hermitian():
 
 
 def test_exceptional_point():
-    # Source: DESIGN notes section 4: at zero detuning the real parts split only if
+    # Source: Savona et al., Solid State Commun. 93, 733 (1995) [mem]: at zero detuning the real
+    # parts split only if
     # g > |gamma_C - gamma_X| / 4, by 2 sqrt(g^2 - (gamma_C - gamma_X)^2 / 16)
     gc, gx = 0.004, 0.0004
     g_ep = abs(gc - gx) / 4
@@ -205,7 +207,7 @@ def test_hopfield_fractions_match_eigenvectors():
 
 # ---------------------------------------------------------------- N coupled modes
 def test_coupled_modes_one_exciton_matches_closed_form():
-    # Source: closed-form two-mode eigenvalues (DESIGN notes section 4)
+    # Source: closed-form two-mode eigenvalues (Hopfield, Phys. Rev. 112, 1555 (1958))
     e_c = np.linspace(1.52, 1.54, 21)[:, None]
     modes = coupled_modes(e_c, E_X, G, 0.0008, 0.0005)
     lo, up = two_mode_eigenvalues(e_c, E_X, G, 0.0008, 0.0005)
@@ -282,6 +284,6 @@ def test_lifetime_and_quality_factor():
     # Source: tau = hbar / gamma with CODATA hbar via scipy.constants (1 meV <-> 0.658 ps)
     hbar_mev_ps = constants.hbar / constants.e * 1e15
     assert lifetime_ps(1.0) == pytest.approx(hbar_mev_ps, rel=1e-12)
-    assert lifetime_ps(1.0) == pytest.approx(0.658, abs=5e-4)  # value quoted in DESIGN
+    assert lifetime_ps(1.0) == pytest.approx(0.658, abs=5e-4)  # value from memory
     # Source: Q = E / gamma
     assert quality_factor(1.5, 0.15) == pytest.approx(1.0e4, rel=1e-12)

@@ -37,7 +37,8 @@ def test_worked_example_by_hand():
 
 def test_metamorphic_relations():
     base = energy_per_operation(**DRAW)
-    # Source: the formula's scaling, E_op proportional to phi A / g_LP (DESIGN section 4)
+    # Source: the formula's scaling, E_op proportional to phi A / g_LP (common practice, no
+    # published source)
     assert energy_per_operation(**{**DRAW, "area_um2": 6.0}) == pytest.approx(2 * base, rel=1e-14)
     assert energy_per_operation(**{**DRAW, "g_lp_ueV_um2": 6.0}) == pytest.approx(
         base / 2, rel=1e-14
@@ -64,7 +65,8 @@ def test_lognormal_product_matches_monte_carlo():
     x = np.exp(np.log(medians) + sigmas * rng.standard_normal((n, 3)))
     y = np.prod(x**powers, axis=1)
     median, sigma = lognormal_product(medians, sigmas, powers)
-    # Source: simulated data with known truth (Monte Carlo); tolerances are 4 standard errors:
+    # Source: lognormal moments (Monte Carlo of known distributions); tolerances are 4 standard
+    # errors:
     # sqrt(pi/2) sigma/sqrt(n) for a median of a normal, sigma/sqrt(2n) for its std.
     assert median == pytest.approx(2.0 / 0.5 * np.sqrt(7.0), rel=1e-14)
     assert sigma == pytest.approx(np.sqrt(0.09 + 0.01 + 0.04), rel=1e-14)
@@ -83,13 +85,14 @@ def test_energy_per_operation_propagation_matches_closed_form():
     e = energy_per_operation(1.0, *draws.T)
     median, sigma = lognormal_product(medians, sigmas, powers=[1, 1, 1, -1, -1])
     median_J = 1e3 * median * constants.e
-    # Source: simulated data with known truth (Monte Carlo), 4 standard errors as above
+    # Source: lognormal moments (Monte Carlo of known distributions), 4 standard errors as above
     assert np.log(np.median(e)) == pytest.approx(np.log(median_J), abs=4 * 1.2533 * sigma / n**0.5)
     assert np.std(np.log(e)) == pytest.approx(sigma, abs=4 * sigma / (2 * n) ** 0.5)
 
 
 def test_carnot_figure_at_4K():
-    # Source: Carnot bound (T_hot - T_cold)/T_cold: (300 - 4)/4 = 74 W per W (DESIGN section 4)
+    # Source: Carnot bound (T_hot - T_cold)/T_cold: (300 - 4)/4 = 74 W per W (common practice, no
+    # published source)
     assert carnot_work_per_heat(4.0) == pytest.approx(74.0, rel=1e-15)
     assert carnot_work_per_heat(77.0, 295.0) == pytest.approx(218 / 77, rel=1e-15)
     with pytest.raises(DataError, match="t_hot_K"):

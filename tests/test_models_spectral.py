@@ -164,7 +164,7 @@ def test_disorder_tends_to_lorentzian_model():
 
 @pytest.mark.parametrize("excitons", [1, 2])
 def test_emission_branches_sum_to_photon_spectral_function(excitons):
-    # Source: A_C = -Im G_CC / pi = sum_b B_b (partial fractions; DESIGN notes section 4)
+    # Source: A_C = -Im G_CC / pi = sum_b B_b (partial fractions of the resolvent)
     truth = dict(TRUTH)
     if excitons == 2:
         truth.update(e_x=[1.530, 1.537], g=[0.0017, 0.0011], gamma_x=[0.0004, 0.0008])
@@ -287,7 +287,7 @@ def test_model_and_chi2_are_consistent():
 
 
 def test_known_amplitudes_are_recovered_from_a_synthetic_map():
-    # Source: simulated data with known truth (noiseless): per-angle occupations that
+    # Self-consistency check (polkit's own forward model, noiseless): per-angle occupations that
     # vary with angle, a dimmer upper branch and a background per angle
     occ = np.column_stack([1.0 + 0.05 * ANGLES, 0.2 + 0.01 * np.abs(ANGLES)])
     bg = 0.5 + 0.02 * ANGLES
@@ -301,7 +301,7 @@ def test_known_amplitudes_are_recovered_from_a_synthetic_map():
 
 
 def test_physics_parameters_are_recovered_by_minimising_projected_chi2():
-    # Source: simulated data with known truth (noiseless): minimising the projected
+    # Self-consistency check (polkit's own forward model, noiseless): minimising the projected
     # chi^2 over the six physics parameters alone (scipy.optimize.minimize, Nelder-Mead)
     # from a start 0.05-0.5 meV away must land on the truth
     occ = np.column_stack([1.0 + 0.02 * ANGLES, 0.3 + 0.01 * np.abs(ANGLES)])
@@ -323,7 +323,7 @@ def test_physics_parameters_are_recovered_by_minimising_projected_chi2():
 
 
 def test_reflectance_scale_and_offset_are_recovered():
-    # Source: simulated data with known truth (noiseless reflectance)
+    # Self-consistency check (polkit's own forward model, noiseless reflectance)
     scale = np.linspace(0.9, 0.95, ANGLES.size)
     sim = simulate_map(ANGLES, ENERGIES, kind="reflectance", **TRUTH, kappa=0.00025,
                        amplitudes=scale, background=0.01)

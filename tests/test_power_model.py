@@ -230,7 +230,8 @@ def test_exciton_constant_from_hopfield_fraction_and_ciuti_estimate():
     out, notes = _coherent_constants(_cw(), exciton_fraction=np.full(50, x2), n_wells=4,
                                      exciton_binding_meV=10.0, bohr_radius_nm=10.0)
     g = out["interaction_constant"][0]
-    # Source: g_LP = g_X |X|^4 / N_QW (DESIGN section 4), inverted per draw
+    # Source: g_LP = g_X |X|^4 / N_QW (Ciuti et al., Phys. Rev. B 58, 7926 (1998)), inverted per
+    # draw
     np.testing.assert_allclose(out["exciton_interaction_constant"][0], g * 4 / x2**2, rtol=1e-12)
     # Source: Ciuti et al., PRB 58, 7926 (1998): 6 E_b a_B^2 = 6 x 10 meV x (0.01 um)^2
     # = 6e-3 meV um^2 = 6 ueV um^2

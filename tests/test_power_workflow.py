@@ -186,7 +186,8 @@ def test_units_survive_save_and_load(coherent_fit, tmp_path):
 def test_exciton_constant_uses_dispersion_draws_and_wells(coherent_fit):
     g = coherent_fit.draws("interaction_constant")
     x2 = coherent_fit.draws("exciton_fraction_k0")
-    # Source: g_LP = g_X |X|^4 / N_QW (DESIGN section 4), per draw with N = 4
+    # Source: g_LP = g_X |X|^4 / N_QW (Ciuti et al., Phys. Rev. B 58, 7926 (1998)), per draw with N
+    # = 4
     np.testing.assert_allclose(coherent_fit.draws("exciton_interaction_constant"),
                                g * 4 / x2**2, rtol=1e-12)
     # paired at random from the dispersion draws: their spread, not a single value

@@ -159,7 +159,7 @@ def test_compiled_chi2_equals_numpy_chi2(numpy_path, kind, excitons, disorder, m
 
 
 def test_realistic_map_log_likelihood_differences_are_unchanged(numpy_path):
-    # Source: simulated data with known truth (an 80 x 600 emission map with CCD noise,
+    # Self-consistency check: compiled against numpy path (an 80 x 600 emission map with CCD noise,
     # the size of the hot-path benchmark); what the sampler sees are differences of the
     # log-likelihood -chi2/2 between walkers, which must agree to far below 0.01
     angles = np.linspace(-24.0, 24.0, 80)

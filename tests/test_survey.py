@@ -100,7 +100,8 @@ def surveyed(tmp_path_factory):
 # the survey end to end (one shared run on an embedded two-worker cluster)
 # ------------------------------------------------------------------------------------------
 def test_known_gradient_and_zero_line_lie_within_their_intervals(surveyed):
-    # Source: simulated data with known truth -- detuning(x) = -1.5 meV + 0.30 meV/mm * x,
+    # Self-consistency check (maps from polkit's own forward model) -- detuning(x) = -1.5 meV +
+    # 0.30 meV/mm * x,
     # nothing along y; the zero-detuning line is x = 5 mm.
     # The maps peak at 600 counts, where the statistical error of a quick-mode detuning
     # (about 0.03 meV) exceeds the offset of the peak-table path (0.01-0.02 meV, measured
@@ -224,7 +225,7 @@ def test_an_existing_survey_folder_refuses_another_seed_or_mode(surveyed):
 
 def test_a_position_short_of_its_gate_is_not_converged(tmp_path):
     # the task itself, in this process: a chain far shorter than 50 autocorrelation times
-    # cannot pass the gate of the design notes (section 5)
+    # cannot pass the convergence gate (50 autocorrelation times and more)
     path = tmp_path / "m.nc"
     _save(_map(0.0, np.random.default_rng(3)), path)
     seed = np.random.SeedSequence(5).spawn(1)[0]
@@ -389,7 +390,7 @@ def test_surface_covariance_matches_an_independent_least_squares_library():
 
 
 def test_surface_gradient_intervals_cover_the_truth_at_their_level():
-    # Source: simulated data with known truth; Gaussian errors of known size, so the 95 %
+    # common practice, no published source: simulated Gaussian errors of known size, so the 95 %
     # intervals must cover the true gradient in about 95 % of 400 wafers (binomial sd 1.1 %;
     # the scale factor can only widen them).
     rng = np.random.default_rng(21)

@@ -358,7 +358,7 @@ def coupled_modes(
 
     solved with :func:`numpy.linalg.eig` on a ``(..., N+1, N+1)`` stack and sorted by the
     real part of the eigenvalues.  Source: the N-oscillator generalisation of
-    Hopfield, Phys. Rev. 112, 1555 (1958); see DESIGN notes section 4.
+    Hopfield, Phys. Rev. 112, 1555 (1958).
 
     Fractions in the non-Hermitian case: each right eigenvector ``v_b`` is scaled to
     unit Euclidean norm and the fractions are ``|v_b[i]|^2`` (they sum to 1 per branch

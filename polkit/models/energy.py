@@ -79,7 +79,8 @@ def required_density(phase: ArrayLike, gamma_meV: ArrayLike, g_lp_ueV_um2: Array
     """Polariton density (1/um^2) whose blueshift ``g_LP n`` equals ``phase x gamma``.
 
     ``n = phi gamma / g_LP``; with gamma in meV and g_LP in ueV um^2,
-    ``n = 1e3 phi gamma / g_LP`` (DESIGN section 4; mean-field blueshift ``g_LP n``).
+    ``n = 1e3 phi gamma / g_LP`` (mean-field blueshift ``g_LP n``; common practice, no published
+    source).
     """
     phi = _checked("phase", phase)
     gamma = _checked("gamma_meV", gamma_meV)

@@ -176,7 +176,8 @@ def photon_green(
 
     with ``S_j`` from :func:`exciton_propagator`.  For one Lorentzian exciton this is
     evaluated in the closed form ``(E - E_X + i gamma_X/2) /
-    ((E - E_C + i gamma_C/2)(E - E_X + i gamma_X/2) - g^2)`` (DESIGN notes section 4).
+    ((E - E_C + i gamma_C/2)(E - E_X + i gamma_X/2) - g^2)`` (the photon element of the resolvent
+    ``(E - H)^-1`` of the coupled-oscillator matrix, by Cramer's rule).
     Source: resolvent of the two-level (N-level) Hamiltonian by the Schur complement,
     e.g. Savona et al., Solid State Commun. 93, 733 (1995).
 
@@ -546,7 +547,8 @@ def emission_basis(
     so that emission ``= sum_b n_b(theta) B_b + background`` with a free occupation per
     branch and angle.  Each ``B_b`` integrates to ``Re r_b`` (its photon weight) over
     energy.  Source: partial fractions of the resolvent; the photon spectral function
-    is ``A_C = -Im G_CC / pi`` (DESIGN notes section 4).
+    is ``A_C = -Im G_CC / pi`` (the spectral function of a retarded Green's function, normalised
+    to unit area; e.g. Mahan, Many-Particle Physics, 3rd ed., 2000, ch. 2).
 
     With exciton disorder (``sigma_x``) the Green's function has no discrete poles;
     then each branch is *defined* as its share of the photon spectral weight in the
@@ -631,7 +633,8 @@ def reflectance_basis(
 
     The reflection amplitude of a cavity seen through its top mirror is
     ``r = r_bg (1 - i kappa G_CC)`` (input-output theory for a single-sided cavity,
-    DESIGN notes section 4), so ``R = s(theta) |1 - i kappa G_CC|^2 + b(theta)`` with a
+    Walls and Milburn, Quantum Optics, 2nd ed., 2008, ch. 7), so
+    ``R = s(theta) |1 - i kappa G_CC|^2 + b(theta)`` with a
     scale ``s = |r_bg|^2`` and an offset ``b`` that are solved linearly per angle.
     ``kappa`` (eV) is the top-mirror part of the cavity FWHM: for a bare cavity the
     dip at resonance reaches ``(1 - 2 kappa / gamma_C)^2`` (zero at critical coupling
