@@ -6,14 +6,19 @@ carries the uncertainties into every derived number (detuning, Hopfield fraction
 masses, lifetimes, interaction constants, energy per operation).  It leaves
 sampling to emcee, diagnostics to ArviZ, labelled arrays to xarray, corner plots to
 corner and batch scheduling to dask.distributed.  It controls no hardware.
+
+The main verbs are importable from here (``polkit.fit_dispersion``, ``polkit.fit_power``,
+...); they are loaded on first use, so ``import polkit`` (and ``polkit --version``) stays
+fast.
 """
 
 from __future__ import annotations
 
+import importlib
+
 __version__ = "0.1.0"
 
-from .data import load_map, load_series  # noqa: E402,F401
-from .errors import (  # noqa: F401
+from .errors import (  # noqa: E402
     ConfigError,
     ConvergenceWarning,
     DataError,
@@ -22,5 +27,41 @@ from .errors import (  # noqa: F401
     PolkitError,
     PolkitWarning,
 )
-from .inference import FitResult  # noqa: E402,F401
-from .workflows.dispersion import fit_dispersion  # noqa: E402,F401
+
+#: public name -> module that defines it (imported on first access)
+_LAZY = {
+    "load_map": "polkit.data",
+    "load_series": "polkit.data",
+    "FitResult": "polkit.inference",
+    "fit_dispersion": "polkit.workflows.dispersion",
+    "compare_dispersion_models": "polkit.workflows.dispersion_compare",
+    "fit_power": "polkit.workflows.power",
+    "energy_budget": "polkit.workflows.budget",
+    "run_survey": "polkit.workflows.survey",
+}
+
+__all__ = [
+    "__version__",
+    *_LAZY,
+    "PolkitError",
+    "DataError",
+    "ConfigError",
+    "FitError",
+    "PolkitWarning",
+    "DataWarning",
+    "ConvergenceWarning",
+]
+
+
+def __getattr__(name: str):
+    """Load a main verb on first access (PEP 562)."""
+    module = _LAZY.get(name)
+    if module is None:
+        raise AttributeError(f"module 'polkit' has no attribute {name!r}")
+    value = getattr(importlib.import_module(module), name)
+    globals()[name] = value
+    return value
+
+
+def __dir__() -> list[str]:
+    return sorted(set(globals()) | set(_LAZY))

@@ -19,6 +19,7 @@ from pathlib import Path
 
 from . import __version__
 from .errors import ConvergenceWarning, PolkitError, PolkitWarning
+from .safety import POWER_NOTE, SAFETY_NOTE
 
 EXIT_OK = 0
 EXIT_WRITE = 1
@@ -42,6 +43,7 @@ def build_parser() -> argparse.ArgumentParser:
         prog="polkit",
         description="Characterise exciton-polariton microcavity samples: dispersion, power "
         "series and energy budgets with honest uncertainties.",
+        epilog=SAFETY_NOTE,
     )
     parser.add_argument("--version", action="version", version=f"polkit {__version__}")
     parser.add_argument("--debug", action="store_true", help="show tracebacks on errors")
@@ -89,7 +91,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--figures", action="store_true", help="also write each model's figures")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
 
-    p = sub.add_parser("power", help="fit a mean-field model to a pump-power series")
+    p = sub.add_parser("power", help="fit a mean-field model to a pump-power series",
+                       epilog=POWER_NOTE + " " + SAFETY_NOTE)
     p.add_argument("series", type=Path, help="observable table (CSV, netCDF) or spectra cube")
     p.add_argument("--model", choices=["coherent", "reservoir"], required=True)
     p.add_argument("--calibration", type=Path, default=None, help="TOML density calibration")

@@ -12,6 +12,7 @@ import warnings
 from pathlib import Path
 
 from .errors import ConvergenceWarning
+from .safety import SAFETY_LINE
 
 log = logging.getLogger(__name__)
 
@@ -65,10 +66,7 @@ def run_demo(
     not_converged: list[str] = []
     t_start = time.perf_counter()
     _say("polkit demo on the invented sample DS-1 (simulated data; see data_examples/README.md)")
-    _say(
-        "Safety: the measurements analysed here use class 3B/4 lasers and cryogens; follow your "
-        "laser-safety officer and local rules. polkit gives no safety advice."
-    )
+    _say(SAFETY_LINE)
 
     _say("\n== 1. data stage: load, validate, quick-look ==")
     for name in [*MAP_FILES, *SERIES_FILES]:
