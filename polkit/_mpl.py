@@ -54,12 +54,33 @@ def posterior_matrix(result, max_draws: int | None = None, seed: int = 0) -> np.
     return theta
 
 
+def readable(result, name: str) -> tuple[np.ndarray, str]:
+    """Draws of ``name`` for a figure axis, and the axis label.
+
+    Levels in eV (exciton and cavity energies) are shown in meV as offsets from a stated
+    reference (the median rounded to 0.1 meV), so tick labels read ``-0.2, 0, 0.2`` rather
+    than ``1e-5 + 1.545``; the label names the reference.  Other quantities keep their
+    units.  The label uses the variable's ``long_name`` when it has one.
+    """
+    var = result.posterior[name]
+    values = np.asarray(result.draws(name), dtype=float)
+    units = str(var.attrs.get("units", ""))
+    long = str(var.attrs.get("long_name", name)) or name
+    long = long if len(long) <= 34 else name.replace("_", " ")
+    if units == "eV":
+        finite = values[np.isfinite(values)]
+        ref = round(float(np.median(finite)) * 1e4) / 10.0 if finite.size else 0.0  # meV
+        return values * 1e3 - ref, f"{long}\n[meV, minus {ref:.1f} meV]"
+    return values, f"{long}\n[{units}]" if units and units != "1" else long
+
+
 def corner_data(result, names: Sequence[str]) -> tuple[np.ndarray, list[str]]:
-    """Draws of ``names`` (shape ``(draws, len(names))``) and labels with their units."""
-    data = np.stack([result.draws(n) for n in names], axis=-1)
-    units = [result.posterior[n].attrs.get("units", "") for n in names]
-    labels = [f"{n}\n[{u}]" if u and u != "1" else n for n, u in zip(names, units, strict=True)]
-    return data, labels
+    """Draws of ``names`` (shape ``(draws, len(names))``) and readable labels with units.
+
+    Energies in eV are shown as meV offsets from a stated reference (:func:`readable`).
+    """
+    pairs = [readable(result, n) for n in names]
+    return np.stack([v for v, _ in pairs], axis=-1), [lab for _, lab in pairs]
 
 
 class _NoContourNotes(logging.Filter):
@@ -99,8 +120,10 @@ def trace_figure(result):
     fig, axes = plt.subplots(len(names), 1, figsize=(7, 1.3 * len(names)), sharex=True,
                              squeeze=False)
     for ax, n in zip(axes[:, 0], names, strict=True):
-        ax.plot(result.posterior[n].values.T, lw=0.4, alpha=0.5)
-        ax.set_ylabel(n, fontsize=7)
+        values, label = readable(result, n)
+        shaped = values.reshape(result.posterior[n].transpose("chain", "draw").shape)
+        ax.plot(shaped.T, lw=0.4, alpha=0.5)
+        ax.set_ylabel(label, fontsize=6)
     axes[-1, 0].set_xlabel("stored draw (after burn-in and thinning)")
     return fig
 

@@ -20,6 +20,12 @@ __all__ = ["dispersion_figures", "fit_figure", "corner_figure", "trace_figure", 
 _BAND = (16.0, 84.0)
 
 
+def _patheffects():
+    from matplotlib import patheffects
+
+    return patheffects
+
+
 def problem_from_result(result):
     """Rebuild the :class:`DispersionProblem` of a dispersion result (data, noise, space)."""
     from .workflows.dispersion_model import DispersionProblem, in_plane_axis
@@ -56,13 +62,14 @@ def fit_figure(result, *, ax=None, log_scale: bool = True, n_draws: int = 300):
         floor = np.nanpercentile(z, 5)
         z = np.log10(np.clip(z - floor + 1.0, 1.0, None)) if result.kind == "emission" else z
     mesh = ax.pcolormesh(problem.in_plane, problem.energy, z.T, shading="nearest", cmap="magma")
+    units = str(da.attrs.get("units", "")) or "arbitrary units"
     fig.colorbar(
         mesh,
         ax=ax,
         label=(
-            "log10 counts above floor"
+            f"{result.kind} signal: log10(signal above its 5th percentile + 1) [{units}]"
             if log_scale and result.kind == "emission"
-            else da.attrs.get("units", "")
+            else f"{result.kind} [{units}]"
         ),
     )
     for b in range(branches.shape[-1]):
@@ -75,16 +82,25 @@ def fit_figure(result, *, ax=None, log_scale: bool = True, n_draws: int = 300):
             lw=1.2,
             label="polariton branches (median, 68 %)" if b == 0 else None,
         )
-    ax.plot(grid, np.median(cav, axis=0), "w--", lw=1, label="bare cavity")
+    # bare modes drawn with a dark outline so they show on pale (reflectance) and dark maps
+    halo = [_patheffects().withStroke(linewidth=2.4, foreground="0.1")]
+    ax.plot(grid, np.median(cav, axis=0), "--", color="w", lw=1, label="bare cavity",
+            path_effects=halo)
     for i in range(exs.shape[-1]):
         ax.axhline(
-            np.median(exs[:, i]), color="w", ls=":", lw=1, label="bare exciton" if i == 0 else None
+            np.median(exs[:, i]), color="w", ls=":", lw=1, label="bare exciton" if i == 0 else None,
+            path_effects=halo,
         )
     ax.set_xlabel(f"{problem.axis} [{'degree' if problem.axis == 'angle' else '1/um'}]")
     ax.set_ylabel("energy [eV]")
     ax.set_ylim(problem.energy.min(), problem.energy.max())
-    ax.legend(loc="upper center", fontsize=8, framealpha=0.6)
-    ax.set_title(f"{result.model}, {result.kind}: fit of the map")
+    # the legend sits below the axes, outside the data
+    ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.13), ncol=3, fontsize=7,
+              frameon=False)
+    route = {"whole_map": "whole-map fit", "peak_table": "peak-table fit"}.get(
+        str(result.tree.attrs.get("fit_path", "")), "fit")
+    ax.set_title(f"{result.model}, {result.kind}: {route} of the map", fontsize=9)
+    fig.tight_layout()
     return fig
 
 
@@ -132,7 +148,7 @@ def corner_figure(result, names: list[str] | None = None):
 
 def dispersion_figures(result, folder: str | os.PathLike, *,
                        corner_process=None) -> list[Path]:
-    """Write fit.png, residuals.png, corner.png and traces.png into ``folder``.
+    """Write fit.png, residuals.png, corner.png, traces.png and spectra.png into ``folder``.
 
     With ``corner_process`` (a :class:`polkit._corner_process.CornerProcess`), the corner
     plot is drawn there while the other figures are drawn here; where that fails it is
@@ -141,10 +157,12 @@ def dispersion_figures(result, folder: str | os.PathLike, *,
     folder = Path(folder)
     in_process = corner_process is not None and corner_process.submit(
         folder / "corner.png", *corner_data(result, _corner_names(result)))
-    fit, residuals, traces = write_figures(result, folder, (("fit.png", fit_figure),
-                                                           ("residuals.png", residual_figure),
-                                                           ("traces.png", trace_figure)))
+    from .plots_spectra import spectra_figure
+
+    fit, residuals, traces, spectra = write_figures(
+        result, folder, (("fit.png", fit_figure), ("residuals.png", residual_figure),
+                         ("traces.png", trace_figure), ("spectra.png", spectra_figure)))
     corner = corner_process.result() if in_process else None
     if corner is None:
         corner = write_figures(result, folder, (("corner.png", corner_figure),))[0]
-    return [fit, residuals, corner, traces]
+    return [fit, residuals, corner, traces, spectra]

@@ -15,7 +15,7 @@ import numpy as np
 
 from . import io
 
-__all__ = ["waterfall_figure", "sensitivity_figure", "budget_figures"]
+__all__ = ["breakdown_figure", "waterfall_figure", "sensitivity_figure", "budget_figures"]
 
 # (budget line, label); the subtotal after the first three is energy_per_activation
 _STEPS = (
@@ -34,66 +34,64 @@ def _cumulative(result) -> tuple[list[str], np.ndarray, np.ndarray]:
     return [name for name, _ in _STEPS], np.cumsum(lines, axis=0), lines
 
 
-def waterfall_figure(result, *, ax=None):
-    """Waterfall of one array activation: each line added in turn, on a log energy axis.
+def breakdown_figure(result, *, ax=None):
+    """What one array activation costs, line by line, on a linear energy axis.
 
-    Bar ``k`` runs from the median of the running sum before line ``k`` to the median after
-    it (per-draw running sums, so the last bar ends at the median of
-    ``wall_energy_per_activation``); the black whiskers are 95 % intervals of the running
-    sum.  Two summary bars show ``energy_per_activation`` (control + modulators +
-    detectors) and the total with every declared line.  Lines that are not counted are
-    labelled so.
+    Top panel: one bar per budget line whose length is the median contribution (fJ) on a
+    linear axis, so bar lengths are proportional to contributions; black whiskers are 95 %
+    intervals of each line; the label gives the median and its share of the median total.
+    Bottom panel: the same medians stacked as shares of their sum (100 %).  Lines that are
+    not counted are labelled so.
     """
     import matplotlib
 
-    names, cum, lines = _cumulative(result)
+    names, _, lines = _cumulative(result)
     counted = result.counted
     if ax is None:
-        fig = _figure((8.0, 4.6))
-        ax = fig.subplots()
+        fig = _figure((8.0, 5.2))
+        ax, share_ax = fig.subplots(2, 1, gridspec_kw={"height_ratios": [4, 1]})
     else:
-        fig = ax.figure
-    med = np.median(cum, axis=1)
-    lo, hi = np.percentile(cum, [2.5, 97.5], axis=1)
-    positive = med[med > 0]
-    floor = 0.3 * positive.min() if positive.size else 1e-3
-    labels, y = [], 0
+        fig, share_ax = ax.figure, None
     colours = matplotlib.rcParams["axes.prop_cycle"].by_key()["color"]
-    start = floor
+    med = np.median(lines, axis=1)
+    lo, hi = np.percentile(lines, [2.5, 97.5], axis=1)
+    total = float(np.sum(med)) or 1.0
+    labels = []
     for k, (name, label) in enumerate(_STEPS):
-        end = max(med[k], floor)
-        line_med = float(np.median(lines[k]))
         not_counted = counted.get(name, "").startswith("not counted")
-        ax.barh(y, end - start, left=start, color=colours[k % len(colours)], alpha=0.85)
-        ax.plot([lo[k], hi[k]], [y, y], color="black", lw=1.0)
-        text = "not counted" if not_counted else f"+{line_med:.3g} fJ"
-        ax.annotate(text, (max(end, hi[k]), y), xytext=(4, 0), textcoords="offset points",
+        ax.barh(k, med[k], color=colours[k % len(colours)], alpha=0.85)
+        ax.plot([lo[k], hi[k]], [k, k], color="black", lw=1.0)
+        text = ("not counted" if not_counted
+                else f"{med[k]:.3g} fJ ({100.0 * med[k] / total:.3g} %)")
+        ax.annotate(text, (max(med[k], hi[k]), k), xytext=(4, 0), textcoords="offset points",
                     va="center", fontsize=8)
         labels.append(label)
-        start = end
-        y += 1
-        if name == "detectors":
-            sub = np.asarray(result.draws("energy_per_activation"), dtype=float)
-            m = float(np.median(sub))
-            ax.barh(y, m - floor, left=floor, color="0.35")
-            ax.annotate(f"{m:.3g} fJ", (m, y), xytext=(4, 0), textcoords="offset points",
-                        va="center", fontsize=8)
-            labels.append("= energy per activation")
-            y += 1
-    total = np.asarray(result.draws("wall_energy_per_activation"), dtype=float)
-    m = float(np.median(total))
-    ax.barh(y, m - floor, left=floor, color="0.15")
-    ax.annotate(f"{m:.3g} fJ", (m, y), xytext=(4, 0), textcoords="offset points", va="center",
-                fontsize=8)
-    labels.append("= with every declared line")
-    ax.set_xscale("log")
-    ax.set_xlim(floor, 5 * max(hi.max(), m))
     ax.set_yticks(range(len(labels)), labels)
     ax.invert_yaxis()
-    ax.set_xlabel("energy per activation (fJ), running sum; whiskers: 95 % interval")
-    ax.set_title("What one activation costs (an estimate under stated assumptions)", fontsize=10)
+    ax.set_xlim(0.0, 1.35 * max(float(hi.max()), float(med.max()), 1e-30))
+    epa = float(np.median(np.asarray(result.draws("energy_per_activation"), dtype=float)))
+    wall = float(np.median(np.asarray(result.draws("wall_energy_per_activation"), dtype=float)))
+    ax.set_xlabel("contribution to one activation [fJ] (median; whiskers: 95 % interval)")
+    ax.set_title(f"What one activation costs: {epa:.3g} fJ (control, modulators, detectors), "
+                 f"{wall:.3g} fJ with every declared line", fontsize=9)
+    if share_ax is not None:
+        left = 0.0
+        for k in range(len(_STEPS)):
+            share = 100.0 * med[k] / total
+            share_ax.barh(0, share, left=left, color=colours[k % len(colours)], alpha=0.85)
+            if share >= 6.0:
+                share_ax.annotate(f"{share:.0f} %", (left + share / 2, 0), ha="center",
+                                  va="center", fontsize=7)
+            left += share
+        share_ax.set_xlim(0.0, 100.0)
+        share_ax.set_yticks([])
+        share_ax.set_xlabel("share of the sum of the medians [%]")
     fig.tight_layout()
     return fig
+
+
+#: the former name of :func:`breakdown_figure` (kept for the 0.x series)
+waterfall_figure = breakdown_figure
 
 
 def sensitivity_figure(result):
@@ -132,10 +130,10 @@ def sensitivity_figure(result):
 
 
 def budget_figures(result, folder: str | os.PathLike) -> list[Path]:
-    """Write ``budget_waterfall.png`` and ``budget_sensitivity.png`` into ``folder``."""
+    """Write ``energy_per_activation_breakdown.png`` and ``budget_sensitivity.png``."""
     folder = Path(folder)
     return [io.save_figure(folder / name, make(result))
-            for name, make in (("budget_waterfall.png", waterfall_figure),
+            for name, make in (("energy_per_activation_breakdown.png", breakdown_figure),
                                ("budget_sensitivity.png", sensitivity_figure))]
 
 

@@ -127,6 +127,7 @@ def test_whole_map_recovers_known_parameters(truth, kind, seed, tmp_path):
         "residuals.png",
         "corner.png",
         "traces.png",
+        "spectra.png",
     ):
         assert (tmp_path / "fit" / name).is_file(), name
     again = FitResult.load(tmp_path / "fit")

@@ -176,8 +176,8 @@ def test_background_sampling_stops_on_request_and_saves_what_the_cli_saves(refin
     panel.out_folder.value = str(out)
     panel.save_button.click()
     names = sorted(p.name for p in out.iterdir())
-    assert names == ["corner.png", "fit.png", "posterior.nc", "residuals.png", "summary.json",
-                     "traces.png"]
+    assert names == ["corner.png", "fit.png", "posterior.nc", "residuals.png", "spectra.png",
+                     "summary.json", "traces.png"]
     back = FitResult.load(out)
     summary = json.loads((out / "summary.json").read_text())
     assert summary["parameters"]["rabi_splitting"]["units"] == "meV"

@@ -291,7 +291,8 @@ class FitPanel:
 
     def save(self, folder: str | os.PathLike | None = None) -> list[Path]:
         """Write the result as the command line does: ``posterior.nc``, ``summary.json``,
-        ``fit.png``, ``residuals.png``, ``corner.png``, ``traces.png``.
+        ``fit.png``, ``residuals.png``, ``corner.png``, ``traces.png`` (and ``spectra.png`` for a
+        dispersion fit).
 
         Returns
         -------

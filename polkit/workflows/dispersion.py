@@ -83,7 +83,7 @@ class DispersionFit(FitResult):
     """A dispersion result: a :class:`~polkit.inference.FitResult` that can redraw its figures."""
 
     def figures(self, folder: str | os.PathLike, *, corner_process=None) -> list[Path]:
-        """Write fit.png, residuals.png, corner.png and traces.png into ``folder``.
+        """Write fit.png, residuals.png, corner.png, traces.png and spectra.png into ``folder``.
 
         ``corner_process``: a :class:`polkit._corner_process.CornerProcess` that draws the
         corner plot alongside (the ``polkit`` command passes one).
