@@ -322,10 +322,33 @@ def _one_line(exc: BaseException) -> str:
     return " ".join(str(exc).split())
 
 
+#: commands whose runs draw random numbers from ``--seed`` (the survey keeps its own root)
+_SEEDED = ("dispersion", "compare", "power", "budget")
+
+
+def _choose_seed(args) -> None:
+    """Give a run without ``--seed`` a recorded seed, printed so the run can be repeated.
+
+    A resumed run keeps the seed stored with its checkpoint, so nothing is chosen then.
+    """
+    if args.command not in _SEEDED or getattr(args, "seed", 0) is not None:
+        return
+    if getattr(args, "resume", False):
+        return
+    import secrets
+
+    args.seed = secrets.randbits(63)
+    print(f"polkit: no --seed given; this run uses --seed {args.seed} (recorded in the "
+          "results; pass it again to repeat the run)", file=sys.stderr)
+
+
 def main(argv: list[str] | None = None) -> int:
     """Entry point of the ``polkit`` command; returns the exit status."""
     parser = build_parser()
-    args = parser.parse_args(argv)
+    args, extra = parser.parse_known_args(argv)
+    if extra:  # a typo in a subcommand's option: show that subcommand's usage
+        sub = next(a for a in parser._actions if a.dest == "command").choices[args.command]
+        sub.error(f"unrecognized arguments: {' '.join(extra)}")
     logging.basicConfig(
         level=logging.DEBUG if args.debug else logging.WARNING,
         format="polkit: %(levelname)s: %(message)s",
@@ -341,6 +364,12 @@ def main(argv: list[str] | None = None) -> int:
             )
 
     warnings.showwarning = _show_warning
+    out = getattr(args, "out", None)
+    if out is not None and Path(out).exists() and not Path(out).is_dir():
+        print(f"polkit: error: --out {out} is an existing file, not a folder; give the name of "
+              "a folder (new or existing) for the results.", file=sys.stderr)
+        return EXIT_INPUT
+    _choose_seed(args)
     try:
         status = _COMMANDS[args.command](args)
     except PolkitError as exc:

@@ -1,0 +1,43 @@
+"""Command-line behaviour a new user meets in the first hour (no fitting needed)."""
+
+from __future__ import annotations
+
+import re
+
+import pytest
+
+from polkit.cli import EXIT_INPUT, main
+
+
+def test_a_typo_in_a_subcommand_option_shows_that_subcommands_usage(capsys):
+    # common practice, no published source
+    with pytest.raises(SystemExit) as info:
+        main(["dispersion", "map.nc", "--mdoel", "two"])
+    assert info.value.code == 2
+    err = capsys.readouterr().err
+    assert "usage: polkit dispersion" in err and "unrecognized arguments: --mdoel" in err
+
+
+def test_out_pointing_at_an_existing_file_is_refused_at_once(tmp_path, capsys):
+    # common practice, no published source
+    target = tmp_path / "results.txt"
+    target.write_text("not a folder")
+    status = main(["dispersion", str(tmp_path / "missing.nc"), "--out", str(target)])
+    assert status == EXIT_INPUT
+    err = capsys.readouterr().err
+    assert "is an existing file, not a folder" in err and "File exists" not in err
+    assert target.read_text() == "not a folder"
+
+
+def test_a_run_without_seed_prints_the_seed_it_uses(tmp_path, capsys):
+    # common practice, no published source: a recorded seed makes a run repeatable
+    status = main(["power", str(tmp_path / "missing.csv"), "--model", "coherent",
+                   "--out", str(tmp_path / "o")])
+    assert status == EXIT_INPUT  # the file is missing; the seed was still chosen first
+    m = re.search(r"this run uses --seed (\d+)", capsys.readouterr().err)
+    assert m and int(m.group(1)) >= 0
+    main(["power", str(tmp_path / "missing.csv"), "--model", "coherent", "--seed", "5"])
+    assert "this run uses --seed" not in capsys.readouterr().err
+    main(["power", str(tmp_path / "missing.csv"), "--model", "coherent", "--resume",
+          "--out", str(tmp_path / "o")])
+    assert "this run uses --seed" not in capsys.readouterr().err  # resume keeps its own
