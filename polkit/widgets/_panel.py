@@ -47,7 +47,7 @@ class FitPanel:
 
     #: the job's sampler defaults (``max_steps``, ``min_steps``, ``check_every``)
     default_steps: dict[str, int] = {}
-    #: decimals of the log posterior in the status line after *Refine*
+    #: decimals of the log posterior in the status line after *Most probable point*
     _log_post_digits = 2
     #: show warnings recorded during sampling in the status line
     _status_warnings = False
@@ -71,12 +71,13 @@ class FitPanel:
         import ipywidgets as w
 
         tips = {
-            "refine": {"tooltip": "maximum a posteriori from the slider values"},
+            "refine": {"tooltip": "move to the most probable point (maximum a posteriori), "
+                                  "starting from the sliders"},
             "sample": {"tooltip": "emcee from the refined point, in the background"},
             "stop": {"tooltip": "end sampling after the current step"},
             "save": {"tooltip": "posterior.nc, summary.json and figures"},
         } if tooltips else {}
-        self.refine_button = w.Button(description="Refine (MAP)", icon="crosshairs",
+        self.refine_button = w.Button(description="Most probable point", icon="crosshairs",
                                       **tips.get("refine", {}))
         self.sample_button = w.Button(description="Sample (MCMC)", icon="play",
                                       button_style="primary", **tips.get("sample", {}))
@@ -106,7 +107,8 @@ class FitPanel:
         raise NotImplementedError
 
     def _find_mode(self):
-        """The :class:`~polkit.inference.MapResult` that *Refine* moves the sliders to."""
+        """The :class:`~polkit.inference.MapResult` that *Most probable point* moved the
+        sliders to."""
         raise NotImplementedError
 
     def _current_problem(self):

@@ -14,7 +14,7 @@ What each control does (and the decision it supports):
   move redraws the polariton branches, the bare cavity and the bare exciton(s) over the
   map and updates a readout of detuning, Hopfield fractions, lower-polariton energy and
   linewidth at k = 0 and the strong-coupling criterion;
-* *Refine*: the maximum a posteriori point from the slider values (as in
+* *Most probable point*: the maximum a posteriori point from the slider values (as in
   :func:`~polkit.workflows.dispersion.fit_dispersion`: MAP, noise model calibrated on its
   residuals, MAP again), sliders moved there, normalised residuals shown;
 * *Sample*: emcee from that point in a background thread, with a progress bar and
@@ -103,7 +103,7 @@ class DispersionPanel(FitPanel):
         Draw the corner plot after sampling (a few seconds for many parameters; set
         ``False`` while iterating quickly).
     map_result
-        The last :class:`~polkit.inference.MapResult` of *Refine* (``None`` before).
+        The last :class:`~polkit.inference.MapResult` of *Most probable point* (``None`` before).
     result
         The last :class:`~polkit.workflows.dispersion.DispersionFit` (``None`` before).
     job
@@ -178,7 +178,8 @@ class DispersionPanel(FitPanel):
         self._init_actions(
             max_steps=max_steps,
             out_folder=str(out) if out is not None else "polkit-out/dispersion",
-            ready="ready: move the sliders until the branches follow the map, then Refine",
+            ready="ready: move the sliders until the branches follow the map, then press Most "
+                  "probable point",
             tooltips=True)
 
         # -- figure -------------------------------------------------------------------------

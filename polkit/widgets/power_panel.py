@@ -9,10 +9,10 @@ read ``panel.curve_data()`` and ``panel.result``).
   on the upper one), so the hysteresis loop is drawn as the data show it;
 * nonresonant drive (reservoir model): emission on log-log axes, with the blueshift and
   the linewidth against power where the series has them;
-* sliders for the physics parameters (the noise parameters are left to *Refine*); the
+* sliders for the physics parameters (the noise parameters are left to *Most probable point*); the
   readout shows the bistability criterion and turning-point powers (coherent) or the
   threshold and the occupation at the largest power (reservoir);
-* *Refine*, *Sample* (background thread, progress bar, *Stop*) and *Save* as in the
+* *Most probable point*, *Sample* (background thread, progress bar, *Stop*) and *Save* as in the
   dispersion panel; the result is the one :func:`~polkit.workflows.power.fit_power` makes
   (calibration and dispersion inputs propagated per draw), started from the refined point.
 """
@@ -100,7 +100,8 @@ class PowerPanel(FitPanel):
 
         self._init_actions(
             max_steps=max_steps, out_folder=str(out) if out is not None else f"polkit-out/{model}",
-            ready="ready: move the sliders until the curves follow the data, then Refine")
+            ready="ready: move the sliders until the curves follow the data, then press Most "
+                  "probable point")
 
         names = list(problem.channels)
         self.live = LiveFigure(figsize=(4.4 * len(names), 3.6), ncols=len(names))
