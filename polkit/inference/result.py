@@ -21,7 +21,8 @@ A :class:`FitResult` wraps one :class:`xarray.DataTree` laid out as ArviZ expect
      "probabilities": {name: {"value", "units", "long_name"}},
      "diagnostics": {"converged", "steps", "walkers", "max_autocorr_time",
                      "min_ess_bulk", "max_rhat", "acceptance_fraction", ...},
-     "provenance": {"polkit_version", "input_sha256", "seed", "created", ...}}
+     "provenance": {"polkit_version", "input_sha256", "seed", "created", ...},
+     "model_check": {...}}   # only where the job stored one (root attribute, JSON text)
 
 ``parameters`` lists sampled parameters and derived quantities; ``probabilities``
 lists flags (the fraction of draws where the flag holds) and the 0-d
@@ -344,7 +345,7 @@ class FitResult:
                     "units": str(var.attrs.get("units", "1")),
                     "long_name": str(var.attrs.get("long_name", name)),
                 }
-        return {
+        out = {
             "model": self.model,
             "kind": self.kind,
             "parameters": parameters,
@@ -352,6 +353,9 @@ class FitResult:
             "diagnostics": self.diagnostics,
             "provenance": self.provenance,
         }
+        if "model_check" in self._tree.attrs:  # stored as JSON text by the job that made it
+            out["model_check"] = json.loads(self._tree.attrs["model_check"])
+        return out
 
     def _rows(self) -> list[tuple[str, str, str, str, str, str]]:
         rows = []
