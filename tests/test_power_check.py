@@ -13,15 +13,13 @@ import warnings
 
 import numpy as np
 import pytest
+from coherent_loops import centre_thresholds, gaussian_loop, loop_powers, noisy_series, point_loop
 
 from polkit.cli import EXIT_MODEL_CHECK, main
 from polkit.errors import ConvergenceWarning
 from polkit.workflows.power import fit_power
 from polkit.workflows.power_check import _runs, noise_floor
 from polkit.workflows.power_model import PowerProblem
-
-from coherent_loops import (centre_thresholds, gaussian_loop, loop_powers, noisy_series,
-                            point_loop)
 
 # invented sample: Delta = 0.5 meV, gamma = 0.2 meV (Delta/gamma = 2.5), alpha kappa = 0.006
 # meV^3/mW, 2000 counts per meV of blueshift

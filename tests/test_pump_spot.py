@@ -9,14 +9,13 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from coherent_loops import centre_thresholds, loop_powers, noisy_series, point_loop
 from scipy.integrate import quad
 
 from polkit.errors import ConfigError, DataError
 from polkit.models import pump_spot
 from polkit.workflows.power_model import PowerProblem
 from polkit.workflows.power_stages import prepare_power
-
-from coherent_loops import centre_thresholds, loop_powers, noisy_series, point_loop
 
 
 def _branch(delta, drive, upper):

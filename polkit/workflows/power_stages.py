@@ -26,8 +26,8 @@ from typing import Any
 import numpy as np
 import xarray as xr
 
-from ..errors import ConfigError, DataError
 from ..config_entries import read_table
+from ..errors import ConfigError, DataError
 from ..inference import FitResult, LogPosterior, MapResult, Prior, apply_priors, find_map
 from ..models.calibration import DensityCalibration, load_calibration
 from ..models.pump_spot import SPOTS
