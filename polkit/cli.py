@@ -5,7 +5,10 @@ and the command exits non-zero; ``--debug`` shows the traceback instead.
 
 Exit status: 0 success; 1 an error writing results (disk full, read-only folder);
 2 bad input, bad options or a fit that could not run; 3 a fit that ran but did not
-converge (its results are written and marked ``"converged": false``).
+converge (its results are written and marked ``"converged": false``); 4 (``power``) a
+converged fit whose model check failed: the model does not describe the data (results
+written, ``"model_check": {"passed": false, ...}``).  3 takes precedence over 4: an
+unconverged fit is not judged by its residuals.
 """
 
 from __future__ import annotations
@@ -25,6 +28,7 @@ EXIT_OK = 0
 EXIT_WRITE = 1
 EXIT_INPUT = 2
 EXIT_NOT_CONVERGED = 3
+EXIT_MODEL_CHECK = 4
 
 
 def _add_common_fit_options(p: argparse.ArgumentParser) -> None:
@@ -99,6 +103,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--dispersion", type=Path, default=None, help="dispersion result folder")
     p.add_argument("--priors", type=Path, default=None, help="TOML file of priors")
     p.add_argument("--strict", action="store_true", help="4 ensembles, nested R-hat gate")
+    p.add_argument("--spot", choices=["point", "gaussian", "flat"], default=None,
+                   help="pump-spot profile of the coherent model (default: the calibration "
+                        "file's spot key, else point)")
     _add_common_fit_options(p)
 
     p = sub.add_parser("budget", help="energy per operation of a device built from the sample")
@@ -215,11 +222,21 @@ def _cmd_power(args) -> int:
         model=args.model,
         calibration=args.calibration,
         dispersion=args.dispersion,
+        spot=args.spot,
         **_fit_options(args, out),
     )
     print(result.table())
     print(f"results written to {out}")
-    return EXIT_OK if result.converged else EXIT_NOT_CONVERGED
+    check = result.model_check
+    failed = check is not None and not check["passed"]
+    if failed:
+        from .workflows.power_check import check_line
+
+        print(f"polkit: warning: {args.series}: {_one_line(check_line(check))}",
+              file=sys.stderr)
+    if not result.converged:
+        return EXIT_NOT_CONVERGED
+    return EXIT_MODEL_CHECK if failed else EXIT_OK
 
 
 def _cmd_budget(args) -> int:

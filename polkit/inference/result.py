@@ -21,7 +21,8 @@ A :class:`FitResult` wraps one :class:`xarray.DataTree` laid out as ArviZ expect
      "probabilities": {name: {"value", "units", "long_name"}},
      "diagnostics": {"converged", "steps", "walkers", "max_autocorr_time",
                      "min_ess_bulk", "max_rhat", "acceptance_fraction", ...},
-     "provenance": {"polkit_version", "input_sha256", "seed", "created", ...}}
+     "provenance": {"polkit_version", "input_sha256", "seed", "created", ...},
+     "model_check": {...}}   # only where the job stored one (root attribute, JSON text)
 
 ``parameters`` lists sampled parameters and derived quantities; ``probabilities``
 lists flags (the fraction of draws where the flag holds) and the 0-d

@@ -16,7 +16,9 @@ takes them in order:
 2. :func:`power_start` and :func:`refine_mode`: an automatic starting point, the MAP;
 3. :func:`sample_problem`: emcee until the convergence gate passes, checkpointed in HDF5;
 4. :func:`build_power_result`: derived quantities per posterior draw; calibration inputs
-   propagated per draw; the result with notes; then files and figures.
+   propagated per draw; the model check against a noise floor that owes nothing to the fit
+   (:func:`polkit.workflows.power_check.model_check`, the ``model_check`` entry of
+   summary.json); the result with notes; then files and figures.
 """
 
 from __future__ import annotations
@@ -37,6 +39,7 @@ from ..errors import ConfigError, DataWarning
 from ..inference import FitResult, SamplerOutput
 from ..models.calibration import DensityCalibration
 from ._steps import CHECKPOINT, checkpoint_file, posterior_theta, sample_problem, step_limits
+from .power_check import check_line, model_check, observed_jumps
 from .power_model import PowerProblem, calibrated_quantities, ciuti_estimate
 from .power_stages import (
     EXTRACTION_FIGURE,
@@ -79,6 +82,11 @@ class PowerFit(FitResult):
         return plots_power.power_figures(self, folder)
 
     @property
+    def spot(self) -> str:
+        """Pump-spot profile of the fitted model (``"point"`` for results made before it)."""
+        return str(self.tree.attrs.get("spot", "point"))
+
+    @property
     def notes(self) -> list[str]:
         """Sentences on what the result can and cannot say (calibration, priors, data)."""
         return list(self.provenance.get("notes", []))
@@ -88,7 +96,8 @@ class PowerFit(FitResult):
         obs = self.tree["observed_data"].to_dataset()
         with warnings.catch_warnings():  # said once when the fit ran
             warnings.simplefilter("ignore", DataWarning)
-            problem = PowerProblem.from_series(obs, self.model, path=obs.attrs.get("source"))
+            problem = PowerProblem.from_series(obs, self.model, path=obs.attrs.get("source"),
+                                               spot=self.spot)
         problem.space = self.space
         return problem
 
@@ -143,6 +152,9 @@ def build_power_result(
         reservoir_lifetime=opts.get("reservoir_lifetime"))
     derived.update(extra)
     notes = [*setup.notes, *cal_notes]
+    check = model_check(problem, flat)
+    if not check["passed"]:
+        notes.append("model check failed: " + check["advice"])
     if cal is not None:
         notes.append("calibration inputs propagated per draw: each posterior draw paired with "
                      "an independent draw of the calibration's log-normal inputs (the "
@@ -157,6 +169,9 @@ def build_power_result(
                             "derived_stream_spawn_key": [*output.seed_spawn_key,
                                                          _DERIVED_STREAM],
                             **(provenance or {})}
+    if problem.model == "coherent":
+        prov["spot"] = problem.spot
+        prov["observed_jumps"] = observed_jumps(problem)
     prov.update(setup.calibration_info)
     prov.update(setup.dispersion_info)
     for key, option in (("n_wells", "n_wells"), ("exciton_binding_meV", "exciton_binding_meV"),
@@ -168,7 +183,9 @@ def build_power_result(
     if e_b is not None and a_b is not None:
         prov["exciton_interaction_estimate_ueV_um2"] = ciuti_estimate(float(e_b), float(a_b))
     attrs = {"notes": json.dumps(notes), "calibrated": int(cal is not None),
-             "intensity_units": problem.intensity_units}
+             "intensity_units": problem.intensity_units, "model_check": check}
+    if problem.model == "coherent":
+        attrs["spot"] = problem.spot
     return PowerFit.from_samples(output, space, derived=derived, model=setup.model,
                                  kind="power", observed=setup.table, provenance=prov,
                                  extra_attrs=attrs)
@@ -200,6 +217,7 @@ def fit_power(
     bohr_radius_nm: float | None = None,
     reservoir_lifetime_ps: float | tuple[float, float] | None = None,
     min_steps: int | None = None,
+    spot: str | None = None,
 ) -> PowerFit:
     """Fit a mean-field nonlinear model to a pump-power series.
 
@@ -250,11 +268,18 @@ def fit_power(
     reservoir_lifetime_ps
         Reservoir lifetime (ps), or ``(value, relative_error)``: with a cw calibration it
         gives the reservoir density at threshold and ``reservoir_interaction_constant``.
+    spot
+        Pump-spot profile of the coherent model: ``"point"`` (one mode, the default),
+        ``"gaussian"`` (the steady state averaged over a Gaussian spot that the camera
+        integrates, :mod:`polkit.models.pump_spot`) or ``"flat"`` (a flat top: the
+        single-mode loop).  ``None`` takes the calibration file's ``spot`` key, else
+        ``"point"``.
 
     Returns
     -------
     PowerFit
-        Posterior, derived quantities, diagnostics, provenance and notes.
+        Posterior, derived quantities, diagnostics, provenance, notes and the model check
+        (``result.model_check``; a failed check is logged and noted in ``result.notes``).
 
     Raises
     ------
@@ -268,7 +293,7 @@ def fit_power(
         source, model=model, calibration=calibration, dispersion=dispersion, priors=priors,
         energy_window=energy_window, angle_window=angle_window, n_wells=n_wells,
         exciton_binding_meV=exciton_binding_meV, bohr_radius_nm=bohr_radius_nm,
-        reservoir_lifetime_ps=reservoir_lifetime_ps)
+        reservoir_lifetime_ps=reservoir_lifetime_ps, spot=spot)
     checkpoint = checkpoint_file(out, resume, refusal=ConfigError(
         "resume needs the output folder that holds the checkpoint; pass out=", key="resume"))
     steps = step_limits(DEFAULT_STEPS, max_steps, min_steps)
@@ -283,6 +308,9 @@ def fit_power(
     result = build_power_result(problem, output, setup)
     for note in result.notes:
         log.info("%s", note)
+    check = result.model_check
+    if not check["passed"]:  # the command line turns this into a warning line and status 4
+        log.warning("%s: %s", setup.source_name, check_line(check))
     if out is not None:
         out_dir = Path(out)
         result.save(out_dir)

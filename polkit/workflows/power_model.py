@@ -61,6 +61,7 @@ Calibration (see :func:`calibrated_quantities`)
 
 from __future__ import annotations
 
+import dataclasses
 import logging
 import math
 import warnings
@@ -73,7 +74,7 @@ import xarray as xr
 from ..constants import HBAR_MEV_PS
 from ..errors import DataError, DataWarning, FitError
 from ..inference.priors import Parameter, ParameterSpace, Prior
-from ..models import coherent, reservoir
+from ..models import coherent, pump_spot, reservoir
 from ..models.calibration import DensityCalibration, cw_density, pulsed_density
 
 __all__ = [
@@ -263,6 +264,14 @@ class PowerProblem:
         Reference energy (eV) of the peak-energy channel (its smallest value), or None.
     space
         The parameter space (set by :meth:`default_space` or by the caller).
+    ignored
+        Observables in the table that the model does not use.
+    spot
+        Pump-spot profile of the coherent model (:data:`polkit.models.pump_spot.SPOTS`):
+        ``"point"`` and ``"flat"`` (a flat top over the imaged area) follow the
+        single-mode loop; ``"gaussian"`` averages the single-mode steady state over a
+        Gaussian spot integrated by the camera
+        (:func:`polkit.models.pump_spot.gaussian_spot_sweep`).
     """
 
     model: str
@@ -273,9 +282,11 @@ class PowerProblem:
     e_ref: float | None = None
     space: ParameterSpace | None = None
     ignored: list[str] = field(default_factory=list)
+    spot: str = "point"
 
     @classmethod
-    def from_series(cls, series: xr.Dataset, model: str, *, path=None) -> PowerProblem:
+    def from_series(cls, series: xr.Dataset, model: str, *, path=None,
+                    spot: str = "point") -> PowerProblem:
         """Turn a checked canonical series table into a problem (no parameter space yet).
 
         Parameters
@@ -287,9 +298,18 @@ class PowerProblem:
             ``"coherent"`` or ``"reservoir"``.
         path
             The source, for messages.
+        spot
+            Pump-spot profile (coherent model only; the reservoir model takes ``"point"``).
         """
         if model not in MODELS:
             raise DataError(f"expected model one of {MODELS}, found {model!r}", field="model")
+        if spot not in pump_spot.SPOTS:
+            raise DataError(f"expected spot one of {pump_spot.SPOTS}, found {spot!r}",
+                            field="spot")
+        if model != "coherent" and spot != "point":
+            raise DataError(f"the pump-spot profile applies to the coherent model only; found "
+                            f"spot {spot!r} with model {model!r}. Fix: drop the spot option",
+                            field="spot")
         power = np.asarray(series["power"].values, dtype=float).reshape(-1)
         segments = sweep_segments(series)
         units = str(series["intensity"].attrs.get("units", "1"))
@@ -325,7 +345,7 @@ class PowerProblem:
                 path=path,
                 field="intensity",
             )
-        return cls(model, power, segments, channels, units, e_ref, None, ignored)
+        return cls(model, power, segments, channels, units, e_ref, None, ignored, spot)
 
     # -- parameters ----------------------------------------------------------------------
     def _noise_parameter(self, ch: Channel) -> Parameter:
@@ -413,7 +433,13 @@ class PowerProblem:
 
     # -- model ---------------------------------------------------------------------------
     def reduced_blueshift(self, d, phi, power=None, segments=None) -> np.ndarray:
-        """Coherent model: ``u = y / gamma`` along each sweep run, shape ``(W, N)``."""
+        """Coherent model: ``u = y / gamma`` along each sweep run, shape ``(W, N)``.
+
+        With a Gaussian spot, ``u`` is the spot-integrated blueshift in units of the spot
+        area ``pi w^2 / 2`` (:func:`polkit.models.pump_spot.gaussian_spot_sweep`); a down
+        run is preceded by a ramp up to the largest power measured before it (or its
+        first power), an up run starts from an empty mode.
+        """
         power = self.power if power is None else np.asarray(power, dtype=float)
         segments = self.segments if segments is None else segments
         d = np.asarray(d, dtype=float).reshape(-1, 1)
@@ -421,7 +447,12 @@ class PowerProblem:
         out = np.empty((d.shape[0], power.size))
         for start, stop, direction in segments:
             drive = phi * power[None, start:stop]
-            out[:, start:stop] = coherent.steady_state_sweep(d, 1.0, drive, direction)
+            if self.spot == "gaussian":
+                before = float(np.max(power[:start + 1]))
+                out[:, start:stop] = pump_spot.gaussian_spot_sweep(
+                    d, 1.0, drive, direction, drive_before=phi * before)
+            else:
+                out[:, start:stop] = coherent.steady_state_sweep(d, 1.0, drive, direction)
         return out
 
     def occupation(self, p_th, n_s, power=None) -> tuple[np.ndarray, np.ndarray]:
@@ -506,12 +537,18 @@ class PowerProblem:
         g: dict[str, float] = {}
         if self.model == "coherent":
             b = self.space["reduced_drive_per_power"].prior.bounds
-            d_grid = np.linspace(-2.0, 8.0, 81)
+            # the spot average costs ~36 single-mode solutions per point: a coarser grid
+            n_d, n_phi = (81, 97) if self.spot != "gaussian" else (41, 49)
+            d_grid = np.linspace(-2.0, 8.0, n_d)
             phi_grid = np.geomspace(max(b[0], 1e-3 / self.power.max()),
                                     min(b[1], 1e3 / max(self.power[self.power > 0].min(), 1e-12)),
-                                    97)
+                                    n_phi)
             dd, pp = (a.reshape(-1) for a in np.meshgrid(d_grid, phi_grid, indexing="ij"))
-            u = self.reduced_blueshift(dd, pp)[:, u_mask]
+            if self.spot != "gaussian":
+                u = self.reduced_blueshift(dd, pp)[:, u_mask]
+            else:
+                u = np.concatenate([self.reduced_blueshift(dd[i:i + 256], pp[i:i + 256])[:, u_mask]
+                                    for i in range(0, dd.size, 256)])
             s = np.sum(w * u * y, axis=1) / np.maximum(np.sum(w * u * u, axis=1), 1e-300)
             chi2 = np.sum(w * (y - s[:, None] * u) ** 2, axis=1)
             k = int(np.nanargmin(np.where(s > 0, chi2, np.inf)))
@@ -618,14 +655,17 @@ class PowerProblem:
                                           "blueshift per unit power at low power")
             tp = coherent.turning_points(d, np.ones_like(d))
             up, down = tp.drive_up / phi, tp.drive_down / phi
-            out["power_up_threshold"] = (up, "mW",
-                                         "power where an up sweep jumps up (bistable draws only)")
-            out["power_down_threshold"] = (down, "mW", "power where a down sweep falls "
+            where = "" if self.spot != "gaussian" else " at the spot centre"
+            out["power_up_threshold"] = (up, "mW", f"power where an up sweep jumps up{where} "
+                                         "(bistable draws only)")
+            out["power_down_threshold"] = (down, "mW", f"power where a down sweep falls{where} "
                                            "(bistable draws only)")
-            out["hysteresis_width"] = (up - down, "mW", "width of the hysteresis loop in power")
-            u = self.reduced_blueshift(d, phi)
+            out["hysteresis_width"] = (up - down, "mW", "width of the hysteresis loop in power"
+                                       + where)
+            centre = self if self.spot != "gaussian" else dataclasses.replace(self, spot="point")
+            u = centre.reduced_blueshift(d, phi)
             out["max_blueshift"] = (gam * np.max(u, axis=1), "meV",
-                                    "largest blueshift reached in the series")
+                                    "largest blueshift reached in the series" + where)
             bist = d > coherent.BISTABILITY_RATIO
             out["bistable_probability"] = (
                 np.asarray(float(np.mean(bist))), "1",

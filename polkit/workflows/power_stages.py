@@ -26,9 +26,11 @@ from typing import Any
 import numpy as np
 import xarray as xr
 
+from ..config_entries import read_table
 from ..errors import ConfigError, DataError
 from ..inference import FitResult, LogPosterior, MapResult, Prior, apply_priors, find_map
 from ..models.calibration import DensityCalibration, load_calibration
+from ..models.pump_spot import SPOTS
 from ._steps import clip_into, file_sha256
 from .power_model import (
     MIN_POINTS,
@@ -152,19 +154,57 @@ def _table(series: xr.Dataset) -> xr.Dataset:
     return out
 
 
-def _calibration(calibration) -> tuple[DensityCalibration | None, dict[str, Any]]:
+#: calibration-file key of the pump-spot profile (read here: the density calibration
+#: itself does not depend on it)
+SPOT_KEY = "spot"
+
+
+def _calibration(calibration) -> tuple[DensityCalibration | None, dict[str, Any], str | None]:
+    """(calibration, its provenance, the spot profile it names or None)."""
     if calibration is None:
-        return None, {}
+        return None, {}, None
+    spot = None
     if isinstance(calibration, DensityCalibration):
         cal = calibration
         info = {"calibration": cal.to_dict()}
     else:
-        cal = load_calibration(calibration)
+        table, path = read_table(calibration, what="calibration")
+        if SPOT_KEY in table:
+            spot = table.pop(SPOT_KEY)
+            if spot not in SPOTS:
+                raise ConfigError(f"expected one of {', '.join(map(repr, SPOTS))}, found "
+                                  f"{spot!r}; e.g. spot = \"gaussian\"", path=path,
+                                  key=SPOT_KEY)
+            try:
+                cal = load_calibration(table)
+            except ConfigError as exc:  # the rest of the file, refused with its path
+                raise ConfigError(exc.reason, path=path, key=exc.key) from None
+        else:
+            cal = load_calibration(calibration)
         info = {"calibration": cal.to_dict()}
+        if spot is not None:
+            info["calibration"][SPOT_KEY] = spot
         if isinstance(calibration, (str, os.PathLike)):
             info["calibration_file"] = str(calibration)
             info["calibration_sha256"] = file_sha256(calibration)
-    return cal, info
+    return cal, info, spot
+
+
+def _resolve_spot(spot, from_calibration, model) -> str:
+    """The pump-spot profile: the option, else the calibration's key, else ``"point"``."""
+    if spot is not None and spot not in SPOTS:
+        raise ConfigError(f"expected spot one of {', '.join(map(repr, SPOTS))}, found "
+                          f"{spot!r}. Fix: --spot point|gaussian|flat", key="spot")
+    if spot is not None and from_calibration is not None and spot != from_calibration:
+        raise ConfigError(f"the option asks for spot {spot!r} but the calibration file says "
+                          f"spot = {from_calibration!r}. Fix: drop one of them or make them "
+                          "agree", key="spot")
+    chosen = spot if spot is not None else (from_calibration or "point")
+    if model != "coherent" and chosen != "point":
+        raise ConfigError(f"the pump-spot profile applies to the coherent model only, found "
+                          f"spot {chosen!r} with model {model!r}. Fix: drop --spot (or the "
+                          "calibration's spot key) for the reservoir model", key="spot")
+    return chosen
 
 
 def _dispersion(dispersion) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
@@ -275,6 +315,8 @@ class PowerSetup:
         ``reservoir_lifetime`` (``(value_ps, relative_error)`` or ``None``).
     cube, extraction
         For a spectra cube: the cube and the extracted observables (else ``None``).
+    spot
+        Pump-spot profile of the coherent model (``"point"``, ``"gaussian"``, ``"flat"``).
     """
 
     table: xr.Dataset
@@ -291,6 +333,7 @@ class PowerSetup:
     options: dict[str, Any] = field(default_factory=dict)
     cube: xr.Dataset | None = None
     extraction: xr.Dataset | None = None
+    spot: str = "point"
 
 
 def prepare_power(
@@ -307,6 +350,7 @@ def prepare_power(
     bohr_radius_nm: float | None = None,
     reservoir_lifetime_ps: float | tuple[float, float] | None = None,
     cube_refusal: str | None = None,
+    spot: str | None = None,
 ) -> tuple[PowerProblem, PowerSetup]:
     """Check the options, load and check the series, read the calibration and priors.
 
@@ -316,6 +360,9 @@ def prepare_power(
         Refuse a spectra cube with this message (a :class:`~polkit.errors.DataError` on
         ``intensity``); ``None`` reduces a cube with
         :func:`polkit.extract.extract_observables`.
+    spot
+        Pump-spot profile of the coherent model; ``None`` takes the calibration file's
+        ``spot`` key, else ``"point"``.
 
     Returns
     -------
@@ -355,11 +402,21 @@ def prepare_power(
     else:
         series = raw
     check_series(series, model, path=where)
-    cal, cal_info = _calibration(calibration)
+    cal, cal_info, cal_spot = _calibration(calibration)
+    spot = _resolve_spot(spot, cal_spot, model)
     disp_draws, disp_info = _dispersion(dispersion)
 
     table = _table(series)
-    problem = PowerProblem.from_series(table, model, path=where)
+    problem = PowerProblem.from_series(table, model, path=where, spot=spot)
+    if spot == "gaussian":
+        notes.append("Gaussian pump spot integrated by the camera: the single-mode steady "
+                     "state is averaged over the spot, each radius on its own hysteresis "
+                     "branch; the thresholds are the powers where the spot centre switches "
+                     "(the integrated signal has no true jump: the switched area grows from "
+                     "the centre, so the largest steps of the data need not sit there)")
+    elif spot == "flat":
+        notes.append("flat-top pump spot: every point of the imaged area sees the same "
+                     "drive, so the single-mode loop applies")
     if problem.ignored:
         notes.append(f"not used by the {model} model: {', '.join(problem.ignored)}")
     space = problem.default_space()
@@ -381,7 +438,7 @@ def prepare_power(
                        calibration=cal, calibration_info=cal_info, dispersion_draws=disp_draws,
                        dispersion_info=disp_info, linewidth_prior=lw_prior,
                        linewidth_note=lw_note, notes=notes, options=options,
-                       cube=raw if cube else None, extraction=extraction)
+                       cube=raw if cube else None, extraction=extraction, spot=spot)
     return problem, setup
 
 
