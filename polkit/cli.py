@@ -93,6 +93,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--max-steps", type=int, default=None, help="MCMC step limit per model")
     p.add_argument("--walkers", type=int, default=None, help="walkers per ensemble")
     p.add_argument("--figures", action="store_true", help="also write each model's figures")
+    p.add_argument("--resume", action="store_true",
+                   help="continue each model's fit from its checkpoint in --out")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
 
     p = sub.add_parser("power", help="fit a mean-field model to a pump-power series",
@@ -317,6 +319,7 @@ def _cmd_compare(args) -> int:
         progress=not args.quiet,
         wavelength_medium=args.wavelength_medium,
         figures=args.figures,
+        resume=args.resume,
     )
     print(result.table())
     print(f"results written to {out}")

@@ -236,6 +236,9 @@ class ModelScore:
     converged: bool
     elpd_i: np.ndarray = field(repr=False)
     pareto_k: np.ndarray = field(repr=False)
+    #: False when the data do not identify what the model adds (it is then "not needed")
+    identified: bool = True
+    identification: str = ""
 
 
 _UNITS = {"elpd_loo": "nat", "elpd_loo_se": "nat", "p_loo": "1", "elpd_waic": "nat",
@@ -277,8 +280,14 @@ class ModelComparison:
 
     @property
     def converged(self) -> bool:
-        """Every model's fit converged."""
-        return all(s.converged for s in self.scores.values())
+        """Every identified model's fit converged.
+
+        A model whose addition the data do not identify (a second exciton that cannot be
+        told apart from none) is reported as not needed; its sampler may wander along the
+        unidentified direction without converging, which does not make the comparison
+        unreliable.
+        """
+        return all(s.converged for s in self.scores.values() if s.identified)
 
     def difference(self, model: str, other: str | None = None) -> tuple[float, float]:
         """``elpd(model) - elpd(other)`` and its standard error (paired over spectra).
@@ -297,7 +306,10 @@ class ModelComparison:
         ``MIN_DIFFERENCE_NATS`` and by more than ``MIN_DIFFERENCE_SE`` standard errors.
         """
         best = self.ranking[0]
-        ties = [m for m in self.scores if not self._clearly_worse(m, best)]
+        ties = [m for m in self.scores if not self._clearly_worse(m, best)
+                and self.scores[m].identified]
+        if not ties:
+            ties = [m for m in self.scores if self.scores[m].identified] or list(self.scores)
         return min(ties, key=lambda m: _SIMPLICITY.get(m, 9))
 
     def _clearly_worse(self, model: str, best: str) -> bool:
@@ -317,6 +329,8 @@ class ModelComparison:
             clear = -d > MIN_DIFFERENCE_NATS and -d > MIN_DIFFERENCE_SE * se
             word = "clearly worse" if clear else (
                 "better, but not clearly" if d > 0 else "not distinguishable")
+            if not self.scores[m].identified:
+                word = f"not needed: {self.scores[m].identification}"
             others.append(f"{m}: {d:+.1f} +/- {se:.1f} nat ({word})")
         text = f"preferred: {pick}" + (f"; against it, {'; '.join(others)}" if others else "")
         flags = []
@@ -338,6 +352,8 @@ class ModelComparison:
             models[m] = {
                 **{k: {"value": v, "units": _UNITS[k]} for k, v in row.items()},
                 "converged": s.converged,
+                "identified": s.identified,
+                "identification": s.identification,
                 "fit_model": self.fits[m].model if m in self.fits else m,
             }
         return json_safe({
@@ -368,7 +384,8 @@ class ModelComparison:
             rows.append((m, f"{s.elpd_loo:.1f}", f"{s.elpd_loo_se:.1f}", f"{d:.1f}", f"{se:.1f}",
                          f"{s.p_loo:.1f}", f"{s.linear_per_spectrum:.2f}",
                          f"{s.max_pareto_k:.2f}", str(s.n_high_k),
-                         "yes" if s.converged else "NO"))
+                         "yes" if s.converged else
+                         ("no (not needed)" if not s.identified else "NO")))
         widths = [max(len(r[i]) for r in rows) for i in range(len(head))]
         lines = ["  ".join(c.rjust(w) if i else c.ljust(w) for i, (c, w) in
                            enumerate(zip(r, widths, strict=True))) for r in rows]
@@ -389,7 +406,7 @@ class ModelComparison:
                 f"<tr><td>{html.escape(m)}</td><td>{s.elpd_loo:.1f} &plusmn; {s.elpd_loo_se:.1f}"
                 f"</td><td>{d:.1f} &plusmn; {se:.1f}</td><td>{s.p_loo:.1f}</td>"
                 f"<td>{s.max_pareto_k:.2f} ({s.n_high_k})</td>"
-                f"<td>{'yes' if s.converged else '<b>no</b>'}</td></tr>")
+                f"<td>{_converged_cell(s)}</td></tr>")
         caveats = "".join(f"<li>{html.escape(c)}</li>" for c in CAVEATS)
         return (
             "<div><b>Dispersion model comparison</b> (PSIS-LOO over spectra, nat)"
@@ -431,6 +448,50 @@ class ModelComparison:
 # --------------------------------------------------------------------------------------
 # the job
 # --------------------------------------------------------------------------------------
+def _converged_cell(s: ModelScore) -> str:
+    if s.converged:
+        return "yes"
+    return "no (not needed)" if not s.identified else "<b>no</b>"
+
+
+#: posterior probability below which the second exciton is "not identified" as strongly
+#: coupled (common practice, no published source)
+IDENTIFIED_PROBABILITY = 0.95
+
+
+def _mark_unidentified(scores: dict[str, ModelScore], fits: Mapping[str, Any]) -> None:
+    """Mark a three-oscillator fit whose second exciton the map does not identify.
+
+    When the three-oscillator fit did not converge, is not clearly better than the
+    two-oscillator fit, and its second exciton is not shown to be strongly coupled (the
+    posterior probability that ``2 g_2 > (gamma_C + gamma_X2)/2``, the visibility
+    condition of a splitting, Savona et al., Solid State Commun. 93, 733 (1995), is below
+    ``IDENTIFIED_PROBABILITY``), the second exciton is not needed: its coupling, energy
+    and width trade off along directions the data do not constrain, which is why the
+    sampler did not converge.  The score is kept and marked; the comparison's
+    convergence is judged on the identified models.
+    """
+    three, two = scores.get("three"), scores.get("two")
+    if three is None or two is None or three.converged or "three" not in fits:
+        return
+    fit = fits["three"]
+    try:
+        r2 = fit.draws("rabi_splitting2")
+        visible = 0.5 * (fit.draws("cavity_linewidth") + fit.draws("exciton2_linewidth"))
+    except Exception:  # noqa: BLE001 - a fit without these draws is left as it is
+        return
+    p_strong = float(np.mean(r2 > visible))
+    d, se = _total(three.elpd_i - two.elpd_i)
+    clearly_better = d > MIN_DIFFERENCE_NATS and d > MIN_DIFFERENCE_SE * se
+    if p_strong < IDENTIFIED_PROBABILITY and not clearly_better:
+        three.identified = False
+        three.identification = (
+            f"the map does not identify a second exciton (P(2g2 > (gamma_C + gamma_X2)/2) = "
+            f"{p_strong:.2f}; elpd {d:+.1f} +/- {se:.1f} nat against two oscillators), so its "
+            "fit could not converge; the data do not need it")
+        log.info("comparison: %s", three.identification)
+
+
 def _split_priors(priors, spaces: Mapping[str, Any]) -> dict[str, dict | None]:
     """One prior dict per model: the tables naming that model's parameters."""
     if priors is None:
@@ -496,6 +557,7 @@ def compare_dispersion_models(
     energy_window: tuple[float, float] | None = None,
     load_options: dict | None = None,
     figures: bool = False,
+    resume: bool = False,
 ) -> ModelComparison:
     """Fit several dispersion models to one map and rank them by PSIS-LOO.
 
@@ -521,6 +583,9 @@ def compare_dispersion_models(
         Progress bars.
     figures
         Also write each model's figures.
+    resume
+        Continue each model's fit from its checkpoint in ``out/<model>/chains.h5`` (same
+        map, priors, seed and limits as the interrupted run).
 
     Returns
     -------
@@ -533,6 +598,10 @@ def compare_dispersion_models(
     DataWarning
         When some spectra have Pareto k above 0.7 (PSIS-LOO unreliable there).
     """
+    if resume and seed is None:
+        raise ConfigError("resuming a comparison needs the seed of the interrupted run (it "
+                          "was printed when the run started); pass --seed N with --resume.",
+                          key="seed")
     models = list(dict.fromkeys(models))
     bad = [m for m in models if m not in MODELS]
     if bad or len(models) < 2:
@@ -561,8 +630,10 @@ def compare_dispersion_models(
         problem, begin = prepared[m]
         problem.set_noise(ref_problem.inv_var, noise_note)
         start = refine_mode(problem, modes[m])
-        ckpt = checkpoint_file(Path(out) / m if out is not None else None, False,
-                               refusal=ConfigError("unused: no resume in a comparison"))
+        ckpt = checkpoint_file(Path(out) / m if out is not None else None, resume,
+                               refusal=ConfigError("resume needs the output folder of the "
+                                                   "comparison; pass out= (--out).",
+                                                   key="resume"))
         if ckpt is not None:
             ckpt.parent.mkdir(parents=True, exist_ok=True)
         log.info("comparison: sampling the %s model", m)
@@ -570,7 +641,7 @@ def compare_dispersion_models(
             warnings.simplefilter("ignore", ConvergenceWarning)  # summarised below
             output = sample_problem(problem, start, steps=steps, n_walkers=n_walkers,
                                     seed=children[m], pre_burn=True, checkpoint=ckpt,
-                                    progress=progress)
+                                    progress=progress, resume=resume)
             fit = build_dispersion_result(problem, output, begin.source, noise_note=noise_note,
                                           table=begin.table,
                                           provenance={"model_comparison": ", ".join(models)})
@@ -583,12 +654,13 @@ def compare_dispersion_models(
         scores[m] = ModelScore(model=m, n_parameters=len(problem.space),
                                converged=bool(output.converged), **crit)
         fits[m] = fit
+    _mark_unidentified(scores, fits)
     axis = prepared[models[0]][0].axis
     comparison = ModelComparison(scores, fits, reference, noise_note, axis,
                                  np.asarray(prepared[models[0]][0].in_plane),
                                  source=str(prepared[models[0]][1].source.source_name))
     if not comparison.converged:
-        which = [m for m, s in scores.items() if not s.converged]
+        which = [m for m, s in scores.items() if not s.converged and s.identified]
         warnings.warn(f"model comparison: the {', '.join(which)} fit did not converge; its "
                       "elpd is not reliable (rerun with a larger max_steps).",
                       ConvergenceWarning, stacklevel=2)
