@@ -242,3 +242,22 @@ def test_model_check_is_a_top_level_summary_entry_that_survives_save_and_load(tm
     back = FitResult.load(res.save(tmp_path / "fit"))
     assert back.model_check == check and back.summary()["model_check"]["passed"] is False
     assert "model_check" not in make_result().summary()  # absent when no check ran
+
+
+def test_shared_files_name_inputs_by_file_name_not_absolute_path(tmp_path):
+    # common practice, no published source: results travel; a machine's folders do not
+    out = synthetic_output()
+    observed = xr.Dataset({"map": (("angle",), np.arange(3.0),
+                                   {"units": "counts", "source": "/home/someone/maps/p1.nc",
+                                    "history": "loaded /home/someone/maps/p1.nc: nm -> eV"})},
+                          attrs={"source": "/home/someone/maps/p1.nc"})
+    res = FitResult.from_samples(out, SPACE, model="m", kind="dispersion", observed=observed,
+                                 provenance={"input_sha256": "ab" * 32,
+                                             "input": "/home/someone/maps/p1.nc"})
+    folder = res.save(tmp_path / "fit")
+    text = (folder / "summary.json").read_text() + str(FitResult.load(folder).tree)
+    assert "/home/someone" not in text and "someone" not in text
+    assert res.provenance["input"] == "p1.nc"
+    obs = res.tree["observed_data"]
+    assert obs.attrs["source"] == "p1.nc" and obs["map"].attrs["history"] == "loaded p1.nc: nm -> eV"
+    assert observed.attrs["source"] == "/home/someone/maps/p1.nc"  # the caller's data untouched

@@ -46,6 +46,7 @@ from typing import Any
 import numpy as np
 import xarray as xr
 
+from .._paths import shareable_attrs
 from ..errors import ConfigError, DataError
 from ..io import json_safe, write_json, write_netcdf
 from .priors import ParameterSpace
@@ -242,6 +243,13 @@ class FitResult:
             if key in attrs:
                 raise ConfigError(f"extra attribute {key!r} would overwrite polkit's", key=key)
             attrs[str(key)] = _attr_value(key, value)
+        # shared files name inputs by file name and SHA-256, not by a machine's paths
+        attrs = shareable_attrs(attrs)
+        if observed is not None:
+            observed = observed.copy(deep=False)
+            observed.attrs = shareable_attrs(dict(observed.attrs))
+            for name in list(observed.variables):
+                observed[name].attrs = shareable_attrs(dict(observed[name].attrs))
         tree = xr.DataTree.from_dict(
             {
                 "/": xr.Dataset(attrs=attrs),

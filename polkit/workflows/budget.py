@@ -67,6 +67,7 @@ import xarray as xr
 from scipy import constants as _c
 from scipy import stats
 
+from .._paths import shareable
 from ..config_entries import quantity, read_table, refuse_unknown, require_quantity
 from ..errors import ConfigError, ConvergenceWarning, DataError, DataWarning
 from ..inference import FitResult
@@ -915,7 +916,7 @@ def energy_budget(
 
 def _input_record(result: FitResult, where: str) -> dict[str, Any]:
     prov = result.provenance
-    return {"folder": where, "model": result.model, "kind": result.kind,
+    return {"folder": shareable(str(where)), "model": result.model, "kind": result.kind,
             "input_sha256": prov.get("input_sha256"), "input": prov.get("input"),
             "seed": prov.get("seed"), "sample": _recorded_sample(result),
             "position": _recorded_position(result), "converged": bool(result.converged)}
