@@ -108,6 +108,7 @@ def make_maps(seeds) -> dict:
         "# invented demo sample DS-1, position P2; simulated, not a measurement",
         "# rows: wavelength [nm]; columns: angle [degree]; signal: intensity [counts]",
         "# kind: emission; wavelength_medium: air; temperature: 4; gain: 1.0; read_noise: 4.0",
+        "# sample: DS-1 (invented demo sample); position: P2",
     ]
     header = "nan " + " ".join(f"{a:.3f}" for a in angles2)
     rows = [f"{w:.5f} " + " ".join(f"{v:.2f}" for v in sig2[:, i]) for i, w in enumerate(wl_air)]
@@ -199,6 +200,7 @@ def make_series(seeds) -> dict:
     lw = 0.30 * np.where(power < p_th, 1.0, 0.4) + rng.normal(0, 0.01, power.size)
     rows = [
         "# invented demo sample DS-1, position P1: nonresonant pump power series (simulated)",
+        "# sample: DS-1 (invented demo sample); position: P1",
         "power [mW],intensity [counts],intensity_error [counts],peak_energy [eV],"
         "peak_energy_error [eV],linewidth [meV],linewidth_error [meV]",
     ]
@@ -223,6 +225,7 @@ def make_series(seeds) -> dict:
     counts_per_mev = 5000.0
     rows = [
         "# invented demo sample DS-1, position P1: coherent drive, up then down sweep (simulated)",
+        "# sample: DS-1 (invented demo sample); position: P1",
         "# pump 0.94 meV above the lower polariton at k = 0",
         "power [mW],intensity [counts],intensity_error [counts],sweep",
     ]
