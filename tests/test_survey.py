@@ -204,8 +204,8 @@ def test_rerun_refits_only_interrupted_positions_identically_on_one_worker(surve
 
     failed = [p for p, s in zip(ids, first.dataset["status"].values, strict=True)
               if s == "failed"]
-    with LocalCluster(n_workers=1, threads_per_worker=1, processes=True,
-                      dashboard_address=":0") as cluster:
+    with LocalCluster(n_workers=1, threads_per_worker=1, processes=True, host="127.0.0.1",
+                      dashboard_address=None) as cluster:
         third = run_survey(manifest, out=out2, scheduler=cluster.scheduler_address,
                            progress=False, figures=False, retry_failed=True)
         assert sorted(third.fitted) == sorted(failed)
@@ -279,7 +279,7 @@ def test_manifest_units_options_and_relative_paths(tmp_path):
          r"field 'x \[mm\]': row 2 \(line 3\), column 'x \[mm\]': expected a number; found 'abc'"),
         ("file,x [mm],y [mm]\na.nc,1,\n", r"row 1 \(line 2\), column 'y \[mm\]'.*empty cell"),
         ('file,x [mm],y [mm]\na.nc,"1,5",2\n', r"decimal comma"),
-        ("file,x [mm],y [mm]\na.nc,1,2\na.nc,3,4\n", r"row 2 .*listed again \(first in row 1\)"),
+        ("file,x [mm],y [mm]\na.nc,1,2\na.nc,3,4\n", r"row 2 .*'a.nc' is the same map as 'a.nc' in row 1 \(line 2\)"),
         ("file,x [mm],y [mm],kind\na.nc,1,2,absorption\n",
          r"field 'kind': row 1 \(line 2\), column 'kind': expected one of emission"),
         ("file,x [mm],y [mm],energy_min [eV],energy_max [eV]\na.nc,1,2,1.56,1.53\n",

@@ -303,7 +303,7 @@ def _read_csv_manifest(path: Path) -> list[PositionSpec]:
     header_of = {name: h for name, h, _ in columns}
 
     specs: list[PositionSpec] = []
-    files_seen: dict[str, int] = {}
+    files_seen: dict[str, tuple[int, int, str]] = {}
     for row, (line, text_line) in enumerate(lines[1:], start=1):
         values = _split_row(text_line, delimiter, path, line)
         if len(values) != len(columns):
@@ -328,15 +328,19 @@ def _read_csv_manifest(path: Path) -> list[PositionSpec]:
         file_path = Path(cell["file"])
         if not file_path.is_absolute():
             file_path = path.parent / file_path
-        key = os.path.normpath(str(file_path))
+        # the same map under two names (relative and absolute, a symbolic link, '..'):
+        # compared after resolving every link
+        key = os.path.realpath(file_path)
         if key in files_seen:
+            first_row, first_line, first_name = files_seen[key]
             raise DataError(
-                f"{where('file')}: the file {cell['file']!r} is listed again (first in row "
-                f"{files_seen[key]}); each map is one position. Fix: remove the duplicate",
+                f"{where('file')}: {cell['file']!r} is the same map as {first_name!r} in row "
+                f"{first_row} (line {first_line}) (both are {key}); each map is one "
+                "position. Fix: remove one of the two rows",
                 path=path,
                 field="file",
             )
-        files_seen[key] = row
+        files_seen[key] = (row, line, cell["file"])
         x = _cell_number(cell["x"], where("x"), path, header_of["x"], required=True)
         y = _cell_number(cell["y"], where("y"), path, header_of["y"], required=True)
         options: dict[str, Any] = {}
@@ -1436,6 +1440,25 @@ def _default_workers() -> int:
         return max(1, os.cpu_count() or 1)
 
 
+def _local_cluster_options() -> dict[str, Any]:
+    """Where the embedded cluster listens and keeps its scratch files.
+
+    The scheduler and the workers listen on the loopback interface only (127.0.0.1) and
+    the dask dashboard is off: nothing of a survey is reachable from the network.  Worker
+    scratch space (spilled data, worker files) goes to dask's ``temporary-directory``
+    setting when it is set, else to the system's temporary folder
+    (:func:`tempfile.gettempdir`, e.g. ``/tmp``, or ``$TMPDIR`` when set), in a
+    ``dask-scratch-space`` folder that dask removes when the workers close.
+    """
+    import tempfile
+
+    import dask
+
+    scratch = dask.config.get("temporary-directory", default=None) or tempfile.gettempdir()
+    log.info("survey: dask scratch space in %s", scratch)
+    return {"host": "127.0.0.1", "dashboard_address": None, "local_directory": scratch}
+
+
 @contextlib.contextmanager
 def _client(scheduler, workers: int | None):
     """A dask client: an embedded LocalCluster, or one on an existing scheduler."""
@@ -1467,7 +1490,7 @@ def _client(scheduler, workers: int | None):
         return
     n = workers or _default_workers()
     cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
-                           dashboard_address=":0", silence_logs=logging.WARNING)
+                           **_local_cluster_options(), silence_logs=logging.WARNING)
     try:
         client = Client(cluster)
         try:
