@@ -59,7 +59,9 @@ import xarray as xr
 
 from ..errors import ConfigError, DataError, PolkitError
 from ..inference.checkpoint import root_seed
+from ..inference.identity import CheckpointMismatch
 from ..io import write_json, write_netcdf, write_text
+from ._steps import locks_output
 from .dispersion_model import COUPLED_MODELS as MODELS
 
 __all__ = [
@@ -626,7 +628,7 @@ def fit_position(task: dict[str, Any]) -> dict[str, Any]:
             if task["mode"] == "full":
                 try:
                     result = fit_dispersion(task["file"], out=folder, resume=resume, **options)
-                except ConfigError:
+                except (ConfigError, CheckpointMismatch):
                     if not resume:
                         raise
                     log.warning("%s: checkpoint not resumable; starting afresh",
@@ -1501,6 +1503,7 @@ def _client(scheduler, workers: int | None):
         cluster.close()
 
 
+@locks_output
 def run_survey(
     manifest: str | os.PathLike,
     *,
