@@ -517,7 +517,6 @@ def run_ensemble(
     KeyboardInterrupt
         Passed on after the finished steps are safely in the checkpoint.
     """
-    from tqdm.auto import tqdm
 
     n_ens = n_ensembles if n_ensembles is not None else (4 if strict else 1)
     _validate(n_walkers, max_steps, min_steps, check_every, autocorr_factor, n_ens, strict,

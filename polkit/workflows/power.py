@@ -36,8 +36,15 @@ import xarray as xr
 from ..errors import ConfigError, DataWarning
 from ..inference import FitResult, SamplerOutput
 from ..models.calibration import DensityCalibration
-from ._steps import (CHECKPOINT, checkpoint_file, job_identity, locks_output, posterior_theta,
-                     sample_problem, step_limits)
+from ._steps import (
+    CHECKPOINT,
+    checkpoint_file,
+    job_identity,
+    locks_output,
+    posterior_theta,
+    sample_problem,
+    step_limits,
+)
 from .power_model import PowerProblem, calibrated_quantities, ciuti_estimate
 from .power_stages import (
     EXTRACTION_FIGURE,
