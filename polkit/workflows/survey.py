@@ -58,10 +58,10 @@ import numpy as np
 import xarray as xr
 
 from ..errors import ConfigError, DataError, PolkitError
+from ..folder_lock import folder_lock
 from ..inference.checkpoint import root_seed
 from ..inference.identity import CheckpointMismatch
 from ..io import write_json, write_netcdf, write_text
-from ._steps import locks_output
 from .dispersion_model import COUPLED_MODELS as MODELS
 
 __all__ = [
@@ -1503,7 +1503,6 @@ def _client(scheduler, workers: int | None):
         cluster.close()
 
 
-@locks_output
 def run_survey(
     manifest: str | os.PathLike,
     *,
@@ -1597,49 +1596,51 @@ def run_survey(
     specs = read_manifest(manifest)
     out = Path(out).resolve()
     out.mkdir(parents=True, exist_ok=True)
-    priors_key = _priors_key(priors)
-    priors_arg = str(Path(priors).resolve()) if isinstance(priors, (str, os.PathLike)) else priors
-    root = _state(out, mode, model, seed, priors_key)
-    children = root.spawn(len(specs))
-    tasks = [_task(s, c, out, mode, model, priors_arg, priors_key, max_steps)
-             for s, c in zip(specs, children, strict=True)]
-    todo = [t for t in tasks if not _finished(t, retry_failed)]
-    todo_ids = {t["position_id"] for t in todo}
-    reused = [t["position_id"] for t in tasks if t["position_id"] not in todo_ids]
-    log.info("survey of %d positions: %d to fit, %d finished earlier", len(tasks), len(todo),
-             len(reused))
-    fitted: list[str] = []
-    if todo:
-        fitted = _run_tasks(todo, scheduler, workers, progress)
+    with folder_lock(out):  # one survey per output folder, after the manifest is read
+        priors_key = _priors_key(priors)
+        priors_arg = (str(Path(priors).resolve()) if isinstance(priors, (str, os.PathLike))
+                      else priors)
+        root = _state(out, mode, model, seed, priors_key)
+        children = root.spawn(len(specs))
+        tasks = [_task(s, c, out, mode, model, priors_arg, priors_key, max_steps)
+                 for s, c in zip(specs, children, strict=True)]
+        todo = [t for t in tasks if not _finished(t, retry_failed)]
+        todo_ids = {t["position_id"] for t in todo}
+        reused = [t["position_id"] for t in tasks if t["position_id"] not in todo_ids]
+        log.info("survey of %d positions: %d to fit, %d finished earlier", len(tasks), len(todo),
+                 len(reused))
+        fitted: list[str] = []
+        if todo:
+            fitted = _run_tasks(todo, scheduler, workers, progress)
 
-    attrs = {
-        "mode": mode,
-        "model": model,
-        "seed_entropy": str(int(root.entropy)),
-        "seed_spawn_key": json.dumps([int(k) for k in root.spawn_key]),
-        "manifest": str(Path(manifest)),
-        "polkit_version": _polkit_version(),
-        "created": datetime.now(UTC).isoformat(timespec="seconds"),
-        "comment": "per-position results in positions/<position>/ (posterior.nc, "
-                   "summary.json, done.json)",
-    }
-    ds = assemble_survey(out, specs, attrs=attrs)
-    surface, note = _surface_from(ds, surface_degree)
-    surf_dict = surface.to_dict() if surface is not None else {"degree": None, "note": note}
-    ds.attrs["detuning_surface"] = json.dumps(_json_ready(surf_dict))
-    files = [
-        write_netcdf(out / SURVEY_NC, ds),
-        write_text(out / SURVEY_CSV, _csv_text(ds)),
-        write_json(out / SURFACE_JSON, surf_dict),
-    ]
-    result = SurveyResult(dataset=ds, surface=surface, out=out, fitted=fitted, reused=reused,
-                          surface_note=note, files=files)
-    if figures:
-        from .. import plots_survey
+        attrs = {
+            "mode": mode,
+            "model": model,
+            "seed_entropy": str(int(root.entropy)),
+            "seed_spawn_key": json.dumps([int(k) for k in root.spawn_key]),
+            "manifest": str(Path(manifest)),
+            "polkit_version": _polkit_version(),
+            "created": datetime.now(UTC).isoformat(timespec="seconds"),
+            "comment": "per-position results in positions/<position>/ (posterior.nc, "
+                       "summary.json, done.json)",
+        }
+        ds = assemble_survey(out, specs, attrs=attrs)
+        surface, note = _surface_from(ds, surface_degree)
+        surf_dict = surface.to_dict() if surface is not None else {"degree": None, "note": note}
+        ds.attrs["detuning_surface"] = json.dumps(_json_ready(surf_dict))
+        files = [
+            write_netcdf(out / SURVEY_NC, ds),
+            write_text(out / SURVEY_CSV, _csv_text(ds)),
+            write_json(out / SURFACE_JSON, surf_dict),
+        ]
+        result = SurveyResult(dataset=ds, surface=surface, out=out, fitted=fitted, reused=reused,
+                              surface_note=note, files=files)
+        if figures:
+            from .. import plots_survey
 
-        result.files.extend(plots_survey.survey_figures(ds, surface, out))
-    log.info("%s", result.table())
-    return result
+            result.files.extend(plots_survey.survey_figures(ds, surface, out))
+        log.info("%s", result.table())
+        return result
 
 
 def _json_ready(obj):
