@@ -143,14 +143,21 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--retry-failed", action="store_true", help="refit positions that failed")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
 
-    p = sub.add_parser("report", help="execute a notebook into a self-contained HTML report")
+    p = sub.add_parser(
+        "report", help="execute a notebook into a self-contained HTML report",
+        description="Execute NOTEBOOK top to bottom in a fresh Jupyter kernel and write its "
+        "HTML report, the executed notebook and its results to --out. The notebook's code "
+        "runs with your rights, like any Python script: run only notebooks you trust. "
+        "--param values are passed exactly as given; the kernel runs in the notebook's "
+        "folder, so relative paths are read from there.")
     p.add_argument("notebook", type=Path)
     p.add_argument(
         "--param",
         action="append",
         default=[],
         metavar="NAME=VALUE",
-        help="override a name of the notebook's parameters cell (Python literal)",
+        help="override a name of the notebook's parameters cell (Python literal; a bare "
+        "word is text, passed as given)",
     )
     p.add_argument("--out", type=Path, default=None, help="report folder")
 

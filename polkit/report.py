@@ -1,6 +1,7 @@
 """Executed notebooks as shareable reports: parameters in; HTML, notebook, results out.
 
-:func:`make_report` runs a notebook top to bottom in a fresh kernel (nbclient) with the
+:func:`make_report` EXECUTES the notebook's code: run only notebooks you trust, as you would
+run a Python script.  It runs the notebook top to bottom in a fresh kernel (nbclient) with the
 values of ``params`` injected after its cell tagged ``parameters`` (a new cell tagged
 ``injected-parameters`` that re-assigns them, so the notebook's own defaults stay visible),
 then writes into ``out``::
@@ -16,9 +17,10 @@ then writes into ``out``::
 
 Convention with the notebooks: a parameter named ``out_dir`` is the folder the notebook
 writes its results to; ``make_report`` points it at ``out/results`` unless ``params``
-sets it.  String parameters naming an existing file or folder relative to the current
-directory are passed to the kernel as absolute paths (the kernel runs in the notebook's
-own folder, so the notebook's relative defaults keep working).
+sets it.  Every parameter is passed to the kernel exactly as given: text is never
+rewritten, also when it looks like a path.  The kernel runs in the notebook's own folder,
+so a relative path is read relative to the notebook (as its own defaults are); pass an
+absolute path to name a file elsewhere.
 
 Every file is written atomically (:mod:`polkit.io`) and only after the notebook ran
 without error; a failing cell raises :class:`~polkit.errors.DataError` naming the cell, and
@@ -162,15 +164,6 @@ def parse_params(items: list[str] | tuple[str, ...]) -> dict[str, Any]:
             out[name] = ast.literal_eval(text.strip())
         except (ValueError, SyntaxError):
             out[name] = text.strip()
-    return out
-
-
-def _resolve_paths(params: dict[str, Any]) -> dict[str, Any]:
-    out = {}
-    for k, v in params.items():
-        if isinstance(v, str) and v and not os.path.isabs(v) and Path(v).exists():
-            v = str(Path(v).resolve())
-        out[k] = v
     return out
 
 
@@ -355,6 +348,9 @@ def make_report(
 ) -> ReportPaths:
     """Execute ``notebook`` with ``params`` and write a shareable report into ``out``.
 
+    The notebook's code runs with your rights, like any Python script: run only
+    notebooks you trust.
+
     Parameters
     ----------
     notebook
@@ -362,6 +358,8 @@ def make_report(
     params
         ``{name: value}`` of Python literals to inject after the parameters cell.  Names
         must be assigned in the parameters cell.  ``out_dir`` defaults to ``out/results``.
+        Values are passed exactly as given; relative paths are read by the notebook from
+        its own folder.
     out
         The report folder (created; files in it are replaced atomically).
     kernel_name
@@ -402,7 +400,6 @@ def make_report(
     if unknown:
         raise ConfigError(f"unknown parameters {unknown}; the parameters cell sets "
                           f"{sorted(defaults)}", path=nb_path, key=unknown[0])
-    params = _resolve_paths(params)
     if params:
         lines = ["# Parameters injected by polkit report"]
         lines += [f"{k} = {_literal(k, v, nb_path)}" for k, v in params.items()]

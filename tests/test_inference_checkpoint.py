@@ -179,7 +179,7 @@ def test_checkpoint_of_another_run_is_refused(tmp_path):
     with pytest.warns(ConvergenceWarning):
         run_ensemble(loglike, SPACE, START, seed=1, checkpoint=path, **{**SETTINGS,
                      "max_steps": 10})
-    with pytest.raises(ConfigError, match="already exists") as info:
+    with pytest.raises(ConfigError, match="checkpoint of an earlier run is here") as info:
         run_ensemble(loglike, SPACE, START, seed=1, checkpoint=path, **SETTINGS)
     assert str(path) in str(info.value)
     other = ParameterSpace([Parameter("a", "meV", Prior.uniform(-10, 10)),

@@ -205,8 +205,8 @@ def test_rerun_refits_only_interrupted_positions_identically_on_one_worker(surve
 
     failed = [p for p, s in zip(ids, first.dataset["status"].values, strict=True)
               if s == "failed"]
-    with LocalCluster(n_workers=1, threads_per_worker=1, processes=True,
-                      dashboard_address=":0") as cluster:
+    with LocalCluster(n_workers=1, threads_per_worker=1, processes=True, host="127.0.0.1",
+                      dashboard_address=None) as cluster:
         third = run_survey(manifest, out=out2, scheduler=cluster.scheduler_address,
                            progress=False, figures=False, retry_failed=True)
         assert sorted(third.fitted) == sorted(failed)
@@ -280,7 +280,8 @@ def test_manifest_units_options_and_relative_paths(tmp_path):
          r"field 'x \[mm\]': row 2 \(line 3\), column 'x \[mm\]': expected a number; found 'abc'"),
         ("file,x [mm],y [mm]\na.nc,1,\n", r"row 1 \(line 2\), column 'y \[mm\]'.*empty cell"),
         ('file,x [mm],y [mm]\na.nc,"1,5",2\n', r"decimal comma"),
-        ("file,x [mm],y [mm]\na.nc,1,2\na.nc,3,4\n", r"row 2 .*listed again \(first in row 1\)"),
+        ("file,x [mm],y [mm]\na.nc,1,2\na.nc,3,4\n",
+         r"row 2 .*'a.nc' is the same map as 'a.nc' in row 1 \(line 2\)"),
         ("file,x [mm],y [mm],kind\na.nc,1,2,absorption\n",
          r"field 'kind': row 1 \(line 2\), column 'kind': expected one of emission"),
         ("file,x [mm],y [mm],energy_min [eV],energy_max [eV]\na.nc,1,2,1.56,1.53\n",
@@ -438,3 +439,52 @@ def test_no_worker_pool_is_needed_to_read_the_demo_manifest():
     assert len(specs) == 9
     assert sorted({s.x_mm for s in specs}) == [-12.0, 0.0, 12.0]
     assert all(s.file.is_file() for s in specs)
+
+
+@pytest.mark.parametrize("second", ["absolute", "dotdot", "symlink"])
+def test_the_same_map_under_two_names_is_refused_naming_both_rows(tmp_path, second):
+    # common practice, no published source: one map is one position, however it is named
+    (tmp_path / "maps").mkdir()
+    (tmp_path / "maps" / "a.nc").write_bytes(b"invented")
+    (tmp_path / "other").mkdir()
+    name = {"absolute": str(tmp_path / "maps" / "a.nc"),
+            "dotdot": "other/../maps/a.nc",
+            "symlink": "link.nc"}[second]
+    if second == "symlink":
+        os.symlink(tmp_path / "maps" / "a.nc", tmp_path / "link.nc")
+    path = _manifest(tmp_path, f"file,x [mm],y [mm]\nmaps/a.nc,1,2\n{name},3,4\n")
+    with pytest.raises(DataError, match=r"row 2 \(line 3\).*is the same map as 'maps/a.nc' "
+                       r"in row 1 \(line 2\)"):
+        read_manifest(path)
+
+
+def test_embedded_cluster_listens_on_loopback_without_dashboard(monkeypatch):
+    # common practice, no published source: a survey's cluster is not reachable from the
+    # network (no 0.0.0.0, no dashboard) and its scratch folder is stated
+    import dask.distributed
+
+    from polkit.workflows import survey
+
+    seen = {}
+
+    class FakeCluster:
+        def __init__(self, **kwargs):
+            seen.update(kwargs)
+
+        def close(self):
+            seen["closed"] = True
+
+    class FakeClient:
+        def __init__(self, cluster):
+            pass
+
+        def close(self):
+            pass
+
+    monkeypatch.setattr(dask.distributed, "LocalCluster", FakeCluster)
+    monkeypatch.setattr(dask.distributed, "Client", FakeClient)
+    with survey._client(None, 1):
+        pass
+    assert seen["host"] == "127.0.0.1" and seen["dashboard_address"] is None
+    assert seen["closed"] and os.path.isdir(seen["local_directory"])
+    assert "0.0.0.0" not in json.dumps({k: str(v) for k, v in seen.items()})

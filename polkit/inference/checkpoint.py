@@ -32,8 +32,9 @@ import numpy as np
 
 from ..errors import ConfigError, PolkitError
 from ..io import check_room, write_error
+from .identity import IDENTITY_ATTR, compare_identity, fit_identity
 
-__all__ = ["root_seed"]
+__all__ = ["root_seed", "prepare_checkpoint", "start_stored"]
 
 log = logging.getLogger(__name__)
 
@@ -94,14 +95,21 @@ def _checkpoint_meta(space, n_walkers, seed_seq) -> dict[str, str]:
     }
 
 
-def _open_checkpoint(path: Path, space, n_walkers, seed, resume) -> np.random.SeedSequence:
-    """Prepare the checkpoint file; returns the root seed sequence to use."""
+def _open_checkpoint(path: Path, space, n_walkers, seed, resume,
+                     identity: dict[str, str] | None = None) -> np.random.SeedSequence:
+    """Prepare the checkpoint file; returns the root seed sequence to use.
+
+    A new checkpoint is written whole to a temporary file in the same folder and then
+    renamed into place, so a kill while it is created leaves either no checkpoint or a
+    complete one.  The caller holds the output folder's lock
+    (:mod:`polkit.folder_lock`), so no other run is using an existing file.
+    """
     import h5py
 
     if path.exists() and not resume:
         raise ConfigError(
-            "a checkpoint already exists here; pass resume=True to continue it, or remove "
-            "the file to start afresh",
+            "a checkpoint of an earlier run is here; pass resume=True (--resume) to continue "
+            "it, or write this run to another folder",
             path=path,
         )
     if not path.exists():
@@ -109,16 +117,33 @@ def _open_checkpoint(path: Path, space, n_walkers, seed, resume) -> np.random.Se
         check_room(path, _CHECKPOINT_METADATA_BYTES, purpose="a new checkpoint")
         with _checkpoint_writes(path):
             path.parent.mkdir(parents=True, exist_ok=True)
-            with h5py.File(path, "w") as fh:
-                fh.attrs.update(_checkpoint_meta(space, n_walkers, seed_seq))
+            tmp = path.with_name(f".{path.name}.{os.getpid()}.new")
+            try:
+                with h5py.File(tmp, "w") as fh:
+                    fh.attrs.update(_checkpoint_meta(space, n_walkers, seed_seq))
+                    if identity is not None:
+                        fh.attrs[IDENTITY_ATTR] = json.dumps(identity)
+                with open(tmp, "rb+") as fh:
+                    os.fsync(fh.fileno())
+                os.replace(tmp, path)
+            finally:
+                with contextlib.suppress(OSError):
+                    tmp.unlink()
         return seed_seq
     try:
         with h5py.File(path, "r") as fh:
             attrs = {k: fh.attrs[k] for k in fh.attrs}
     except OSError as exc:
+        if "lock" in str(exc).lower():
+            raise ConfigError(
+                f"cannot open the checkpoint: another program has it open ({exc}); let it "
+                "finish, or write this run to another folder",
+                path=path,
+            ) from None
         raise ConfigError(
-            f"cannot read the checkpoint ({exc}); it may have been damaged by a crash "
-            "during a write -- remove it to start afresh",
+            f"cannot read the checkpoint ({exc}); no polkit run holds this folder, so it was "
+            "damaged by a crash during a write: write this run to another folder, or remove "
+            "the damaged checkpoint to start afresh",
             path=path,
         ) from None
     if "polkit_parameter_names" not in attrs:
@@ -161,7 +186,66 @@ def _open_checkpoint(path: Path, space, n_walkers, seed, resume) -> np.random.Se
                 path=path,
                 key="polkit_seed_entropy",
             )
+    if identity is not None:
+        compare_identity(path, text(IDENTITY_ATTR) if IDENTITY_ATTR in attrs else None,
+                         identity)
     return stored
+
+
+#: the group holding each ensemble's starting positions, stored before its first step
+_START_GROUP = "polkit_start"
+
+
+def _stored_start(path: Path | None, name: str) -> np.ndarray | None:
+    """The starting ensemble stored for ensemble ``name`` (None when there is none)."""
+    if path is None or not path.exists():
+        return None
+    import h5py
+
+    with h5py.File(path, "r") as fh:
+        g = fh.get(_START_GROUP)
+        return None if g is None or name not in g else g[name][()]
+
+
+def _store_start(path: Path, name: str, p0: np.ndarray) -> None:
+    """Keep ensemble ``name``'s starting positions before its first step is taken."""
+    import h5py
+
+    check_room(path, _CHECKPOINT_METADATA_BYTES + p0.nbytes, purpose="the starting ensemble",
+               fix=_ROOM_FIX)
+    with _checkpoint_writes(path), h5py.File(path, "a") as fh:
+        g = fh.require_group(_START_GROUP)
+        if name in g:
+            del g[name]
+        g.create_dataset(name, data=np.asarray(p0, dtype=float))
+        fh.flush()
+
+
+def prepare_checkpoint(path: Path, space, n_walkers: int, seed, resume: bool,
+                       identity=None) -> np.random.SeedSequence:
+    """Create the checkpoint (or check an existing one on resume) before a run starts.
+
+    ``identity`` is the job's part of the fit identity (see
+    :func:`polkit.inference.identity.fit_identity`); the effective priors and versions are
+    added here.  Returns the run's root seed, which is stored in the checkpoint: a job
+    that does something random before the run (a pre-burn) takes it from here, so a run
+    killed before its first step resumes to the same start.
+    """
+    full = fit_identity(space, identity) if identity is not None else None
+    return _open_checkpoint(Path(path), space, n_walkers, seed, resume, full)
+
+
+def start_stored(path: Path | None) -> bool:
+    """Whether the checkpoint holds the run's starting ensembles (or steps already)."""
+    if path is None or not Path(path).exists():
+        return False
+    import h5py
+
+    with h5py.File(path, "r") as fh:
+        if _START_GROUP in fh and "ensemble0" in fh[_START_GROUP]:
+            return True
+        g = fh.get("ensemble0")
+        return g is not None and int(g.attrs.get("iteration", 0)) > 0
 
 
 def _group_attr(path: Path | None, group: str, key: str, value=None):
@@ -189,7 +273,7 @@ _ROOM_FIX = (
 _FAILED_WRITE_NOTE = (
     "the disk filled up while a step was being written, so the last step may not have "
     "been stored; once there is room, continue the run with resume=True (--resume on the "
-    "command line), and if the checkpoint can no longer be read, remove it and start afresh"
+    "command line); if this run's checkpoint can no longer be read, remove it and start afresh"
 )
 
 

@@ -37,6 +37,7 @@ import numpy as np
 import xarray as xr
 
 from ..errors import ConfigError, ConvergenceWarning, FitError
+from ..folder_lock import folder_lock
 from ..io import check_room
 from . import diagnostics as diag
 from .checkpoint import (
@@ -47,9 +48,12 @@ from .checkpoint import (
     _group_attr,
     _growth,
     _open_checkpoint,
+    _store_start,
+    _stored_start,
     _with_margin,
     root_seed,
 )
+from .identity import fit_identity
 from .optimize import MapResult, check_ensemble, initial_ball
 from .posterior import LogPosterior, describe_point
 from .priors import ParameterSpace
@@ -237,12 +241,25 @@ class _Ensemble:
     def steps(self) -> int:
         return int(self.backend.iteration) if self.backend.initialized else 0
 
-    def start(self, p0: np.ndarray, space: ParameterSpace):
+    def start(self, p0, space: ParameterSpace):
+        """The state before the next step: the last stored one, or the starting ensemble.
+
+        ``p0`` is a callable giving the starting positions.  With a checkpoint they are
+        stored before the first step and a resumed run that finds them starts from them,
+        so a run killed before its first step resumes to the same chain.
+        """
         import emcee
 
         if self.steps > 0:
             self.state = self.sampler.get_last_sample()
             return
+        stored = _stored_start(self.checkpoint, self.name)
+        if stored is not None and stored.shape == (self.n_walkers, self.ndim):
+            p0 = stored
+        else:
+            p0 = p0()
+            if self.checkpoint is not None:
+                _store_start(self.checkpoint, self.name, p0)
         log_prob, blobs = self.sampler.compute_log_prob(p0)
         bad = np.flatnonzero(~np.isfinite(log_prob))
         if bad.size:
@@ -400,6 +417,8 @@ def run_ensemble(
     acceptance_range: tuple[float, float] = (0.15, 0.7),
     nested_rhat_max: float = 1.01,
     ess_rhat: bool = True,
+    identity: Mapping[str, Any] | None = None,
+    progress_label: str = "MCMC",
 ) -> SamplerOutput:
     """Sample the posterior with emcee until the convergence gate passes.
 
@@ -460,6 +479,16 @@ def run_ensemble(
     ess_rhat
         Compute ArviZ's bulk/tail ESS and R-hat for the diagnostics (``False`` leaves
         them NaN: for a short preliminary run whose draws are not reported).
+    identity
+        ``{field: value}`` of what decides the posterior beyond the parameter space (input
+        SHA-256, model, route, likelihood and preprocessing settings); with the effective
+        priors and library versions it is stored in the checkpoint and must match on
+        resume (see :mod:`polkit.inference.identity`).  Without a checkpoint it is unused.
+    progress_label
+        Label of the progress bar.
+
+    The checkpoint's folder is locked for the run (:mod:`polkit.folder_lock`): a second
+    run into the same folder is refused while this one is alive.
 
     Returns
     -------
@@ -481,10 +510,13 @@ def run_ensemble(
         NaN log-likelihood, degenerate or zero-posterior starting ensemble.
     ConfigError
         Bad settings, or a checkpoint that belongs to another run.
+    DataError
+        The checkpoint's fit identity differs from this run's
+        (:class:`~polkit.inference.identity.CheckpointMismatch`), or another run holds the
+        folder (:class:`~polkit.folder_lock.FolderLockedError`).
     KeyboardInterrupt
         Passed on after the finished steps are safely in the checkpoint.
     """
-    from tqdm.auto import tqdm
 
     n_ens = n_ensembles if n_ensembles is not None else (4 if strict else 1)
     _validate(n_walkers, max_steps, min_steps, check_every, autocorr_factor, n_ens, strict,
@@ -501,8 +533,22 @@ def run_ensemble(
     moves = default_moves() if moves is None else moves
 
     path = Path(checkpoint) if checkpoint is not None else None
+    with folder_lock(path.parent if path is not None else None):
+        return _run(log_likelihood, space, x0, path, n_walkers, seed, max_steps, min_steps,
+                    check_every, resume, progress, strict, n_ens, moves, autocorr_factor,
+                    extras_units, stop_event, tau_rtol, acceptance_range, nested_rhat_max,
+                    ess_rhat, identity, progress_label)
+
+
+def _run(log_likelihood, space, x0, path, n_walkers, seed, max_steps, min_steps, check_every,
+         resume, progress, strict, n_ens, moves, autocorr_factor, extras_units, stop_event,
+         tau_rtol, acceptance_range, nested_rhat_max, ess_rhat, identity,
+         progress_label) -> SamplerOutput:
+    from tqdm.auto import tqdm
+
     if path is not None:
-        root = _open_checkpoint(path, space, n_walkers, seed, resume)
+        full = fit_identity(space, identity) if identity is not None else None
+        root = _open_checkpoint(path, space, n_walkers, seed, resume, full)
     else:
         if resume:
             raise ConfigError("resume=True needs a checkpoint path", key="resume")
@@ -515,11 +561,15 @@ def run_ensemble(
                   n_extras=len(extras_units))
         for e in range(n_ens)
     ]
+    if path is not None:  # every starting ensemble is stored before the first step
+        for ens in ensembles:
+            if ens.steps == 0 and _stored_start(path, ens.name) is None:
+                _store_start(path, ens.name, positions(ens.index, ens.ball_rng))
 
     gate: dict[int, diag.GateCheck] = {}
     length = 0
     stopped = False
-    pbar = tqdm(total=max_steps * n_ens, disable=not progress, desc="MCMC", unit="step",
+    pbar = tqdm(total=max_steps * n_ens, disable=not progress, desc=progress_label, unit="step",
                 dynamic_ncols=True)
     try:
         # -- phase 1: each ensemble to its own gate ----------------------------------------
@@ -536,7 +586,7 @@ def run_ensemble(
                 # stopped at an earlier, smaller step limit without converging: a resume
                 # with a larger max_steps continues it exactly as an uninterrupted run would
                 log.info("%s: continuing a run stopped unconverged at %d steps", ens.name, done)
-            ens.start(positions(ens.index, ens.ball_rng) if steps == 0 else None, space)
+            ens.start(lambda ens=ens: positions(ens.index, ens.ball_rng), space)
             while True:
                 n = ens.steps
                 at_check = n > 0 and (
@@ -722,6 +772,6 @@ def _collect(ensembles, gate, length, space, root, stopped, strict, n_walkers, e
                  diagnostics["max_autocorr_time"], diagnostics["min_ess_bulk"])
     else:
         warnings.warn(
-            "MCMC did not converge: " + "; ".join(reasons), ConvergenceWarning, stacklevel=3
+            "MCMC did not converge: " + "; ".join(reasons), ConvergenceWarning, stacklevel=4
         )
     return output

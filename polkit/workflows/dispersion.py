@@ -39,9 +39,12 @@ from ._steps import (
     CHECKPOINT,
     checkpoint_file,
     file_sha256,
+    job_identity,
+    locks_output,
     posterior_theta,
     sample_problem,
     step_limits,
+    warn_large_map,
 )
 from .dispersion_model import DispersionProblem
 from .dispersion_noise import calibrate_noise
@@ -120,6 +123,7 @@ def prepare_dispersion(
     """
     src = open_map(source, model=model, kind=kind, wavelength_medium=wavelength_medium,
                    load_options=load_options).cropped(angle_window, energy_window)
+    warn_large_map(src.data)
     table, guess, space = peak_start(src.data, n_excitons=src.n_excitons, kind=src.kind,
                                      priors=priors, profile=profile, coupling=src.coupling)
     x0 = start_vector(space, guess)
@@ -215,6 +219,7 @@ def build_dispersion_result(
 # --------------------------------------------------------------------------------------
 # the job
 # --------------------------------------------------------------------------------------
+@locks_output
 def fit_dispersion(
     source: str | os.PathLike | xr.DataArray,
     *,
@@ -301,9 +306,14 @@ def fit_dispersion(
         noise_note = calibrate_problem_noise(problem, start.x, begin.source.data.attrs)
         start = refine_mode(problem, start.x)
 
+    identity = job_identity(begin.source.sha256, f"{model} {begin.source.kind}", path_used,
+                            noise_note, dict(angle_window=angle_window, energy_window=energy_window,
+                                             profile=profile, wavelength_medium=wavelength_medium,
+                                             load_options=load_options))
     output = sample_problem(problem, start, steps=steps, log_likelihood=like, n_walkers=n_walkers,
                             seed=seed, pre_burn=True, checkpoint=checkpoint, resume=resume,
-                            progress=progress, strict=strict, stop_event=stop_event)
+                            progress=progress, strict=strict, stop_event=stop_event,
+                            identity=identity)
     result = build_dispersion_result(problem, output, begin.source, path=path_used,
                                      noise_note=noise_note, profile=profile, table=begin.table)
     if out is not None:

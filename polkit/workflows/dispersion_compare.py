@@ -51,7 +51,7 @@ from ..errors import ConfigError, ConvergenceWarning, DataWarning
 from ..inference.priors import read_prior_file
 from ..io import json_safe, write_json, write_netcdf
 from ..models import spectral
-from ._steps import checkpoint_file, posterior_theta, sample_problem, step_limits
+from ._steps import checkpoint_file, locks_output, posterior_theta, sample_problem, step_limits
 from .dispersion import DEFAULT_STEPS, DispersionFit, build_dispersion_result, prepare_dispersion
 from .dispersion_model import MODELS, DispersionProblem
 from .dispersion_stages import calibrate_problem_noise, refine_mode, whole_map_start
@@ -539,6 +539,7 @@ def _cross_started_modes(prepared: Mapping[str, tuple]) -> dict[str, np.ndarray]
     return {m: r.x for m, r in best.items()}
 
 
+@locks_output
 def compare_dispersion_models(
     source: str | os.PathLike | xr.DataArray,
     *,

@@ -38,7 +38,15 @@ import xarray as xr
 from ..errors import ConfigError, DataWarning
 from ..inference import FitResult, SamplerOutput
 from ..models.calibration import DensityCalibration
-from ._steps import CHECKPOINT, checkpoint_file, posterior_theta, sample_problem, step_limits
+from ._steps import (
+    CHECKPOINT,
+    checkpoint_file,
+    job_identity,
+    locks_output,
+    posterior_theta,
+    sample_problem,
+    step_limits,
+)
 from .power_check import check_line, model_check, observed_jumps
 from .power_model import PowerProblem, calibrated_quantities, ciuti_estimate
 from .power_stages import (
@@ -194,6 +202,7 @@ def build_power_result(
 # --------------------------------------------------------------------------------------
 # the job
 # --------------------------------------------------------------------------------------
+@locks_output
 def fit_power(
     source: str | os.PathLike | xr.Dataset,
     *,
@@ -304,7 +313,12 @@ def fit_power(
              dict(zip(problem.space.names, np.round(start.x, 6), strict=True)))
     output = sample_problem(problem, start, steps=steps, n_walkers=n_walkers, seed=seed,
                             checkpoint=checkpoint, resume=resume, progress=progress,
-                            strict=strict, stop_event=stop_event)
+                            strict=strict, stop_event=stop_event, identity=job_identity(
+                                setup.sha256, model, "series", setup.linewidth_note, dict(
+                                    energy_window=energy_window, angle_window=angle_window,
+                                    calibration=setup.calibration_info,
+                                    dispersion=setup.dispersion_info, options=setup.options,
+                                    spot=problem.spot)))
     result = build_power_result(problem, output, setup)
     for note in result.notes:
         log.info("%s", note)

@@ -58,7 +58,9 @@ import numpy as np
 import xarray as xr
 
 from ..errors import ConfigError, DataError, PolkitError
+from ..folder_lock import folder_lock
 from ..inference.checkpoint import root_seed
+from ..inference.identity import CheckpointMismatch
 from ..io import write_json, write_netcdf, write_text
 from .dispersion_model import COUPLED_MODELS as MODELS
 
@@ -303,7 +305,7 @@ def _read_csv_manifest(path: Path) -> list[PositionSpec]:
     header_of = {name: h for name, h, _ in columns}
 
     specs: list[PositionSpec] = []
-    files_seen: dict[str, int] = {}
+    files_seen: dict[str, tuple[int, int, str]] = {}
     for row, (line, text_line) in enumerate(lines[1:], start=1):
         values = _split_row(text_line, delimiter, path, line)
         if len(values) != len(columns):
@@ -328,15 +330,19 @@ def _read_csv_manifest(path: Path) -> list[PositionSpec]:
         file_path = Path(cell["file"])
         if not file_path.is_absolute():
             file_path = path.parent / file_path
-        key = os.path.normpath(str(file_path))
+        # the same map under two names (relative and absolute, a symbolic link, '..'):
+        # compared after resolving every link
+        key = os.path.realpath(file_path)
         if key in files_seen:
+            first_row, first_line, first_name = files_seen[key]
             raise DataError(
-                f"{where('file')}: the file {cell['file']!r} is listed again (first in row "
-                f"{files_seen[key]}); each map is one position. Fix: remove the duplicate",
+                f"{where('file')}: {cell['file']!r} is the same map as {first_name!r} in row "
+                f"{first_row} (line {first_line}) (both are {key}); each map is one "
+                "position. Fix: remove one of the two rows",
                 path=path,
                 field="file",
             )
-        files_seen[key] = row
+        files_seen[key] = (row, line, cell["file"])
         x = _cell_number(cell["x"], where("x"), path, header_of["x"], required=True)
         y = _cell_number(cell["y"], where("y"), path, header_of["y"], required=True)
         options: dict[str, Any] = {}
@@ -622,7 +628,7 @@ def fit_position(task: dict[str, Any]) -> dict[str, Any]:
             if task["mode"] == "full":
                 try:
                     result = fit_dispersion(task["file"], out=folder, resume=resume, **options)
-                except ConfigError:
+                except (ConfigError, CheckpointMismatch):
                     if not resume:
                         raise
                     log.warning("%s: checkpoint not resumable; starting afresh",
@@ -1436,6 +1442,25 @@ def _default_workers() -> int:
         return max(1, os.cpu_count() or 1)
 
 
+def _local_cluster_options() -> dict[str, Any]:
+    """Where the embedded cluster listens and keeps its scratch files.
+
+    The scheduler and the workers listen on the loopback interface only (127.0.0.1) and
+    the dask dashboard is off: nothing of a survey is reachable from the network.  Worker
+    scratch space (spilled data, worker files) goes to dask's ``temporary-directory``
+    setting when it is set, else to the system's temporary folder
+    (:func:`tempfile.gettempdir`, e.g. ``/tmp``, or ``$TMPDIR`` when set), in a
+    ``dask-scratch-space`` folder that dask removes when the workers close.
+    """
+    import tempfile
+
+    import dask
+
+    scratch = dask.config.get("temporary-directory", default=None) or tempfile.gettempdir()
+    log.info("survey: dask scratch space in %s", scratch)
+    return {"host": "127.0.0.1", "dashboard_address": None, "local_directory": scratch}
+
+
 @contextlib.contextmanager
 def _client(scheduler, workers: int | None):
     """A dask client: an embedded LocalCluster, or one on an existing scheduler."""
@@ -1467,7 +1492,7 @@ def _client(scheduler, workers: int | None):
         return
     n = workers or _default_workers()
     cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
-                           dashboard_address=":0", silence_logs=logging.WARNING)
+                           **_local_cluster_options(), silence_logs=logging.WARNING)
     try:
         client = Client(cluster)
         try:
@@ -1571,49 +1596,51 @@ def run_survey(
     specs = read_manifest(manifest)
     out = Path(out).resolve()
     out.mkdir(parents=True, exist_ok=True)
-    priors_key = _priors_key(priors)
-    priors_arg = str(Path(priors).resolve()) if isinstance(priors, (str, os.PathLike)) else priors
-    root = _state(out, mode, model, seed, priors_key)
-    children = root.spawn(len(specs))
-    tasks = [_task(s, c, out, mode, model, priors_arg, priors_key, max_steps)
-             for s, c in zip(specs, children, strict=True)]
-    todo = [t for t in tasks if not _finished(t, retry_failed)]
-    todo_ids = {t["position_id"] for t in todo}
-    reused = [t["position_id"] for t in tasks if t["position_id"] not in todo_ids]
-    log.info("survey of %d positions: %d to fit, %d finished earlier", len(tasks), len(todo),
-             len(reused))
-    fitted: list[str] = []
-    if todo:
-        fitted = _run_tasks(todo, scheduler, workers, progress)
+    with folder_lock(out):  # one survey per output folder, after the manifest is read
+        priors_key = _priors_key(priors)
+        priors_arg = (str(Path(priors).resolve()) if isinstance(priors, (str, os.PathLike))
+                      else priors)
+        root = _state(out, mode, model, seed, priors_key)
+        children = root.spawn(len(specs))
+        tasks = [_task(s, c, out, mode, model, priors_arg, priors_key, max_steps)
+                 for s, c in zip(specs, children, strict=True)]
+        todo = [t for t in tasks if not _finished(t, retry_failed)]
+        todo_ids = {t["position_id"] for t in todo}
+        reused = [t["position_id"] for t in tasks if t["position_id"] not in todo_ids]
+        log.info("survey of %d positions: %d to fit, %d finished earlier", len(tasks), len(todo),
+                 len(reused))
+        fitted: list[str] = []
+        if todo:
+            fitted = _run_tasks(todo, scheduler, workers, progress)
 
-    attrs = {
-        "mode": mode,
-        "model": model,
-        "seed_entropy": str(int(root.entropy)),
-        "seed_spawn_key": json.dumps([int(k) for k in root.spawn_key]),
-        "manifest": str(Path(manifest)),
-        "polkit_version": _polkit_version(),
-        "created": datetime.now(UTC).isoformat(timespec="seconds"),
-        "comment": "per-position results in positions/<position>/ (posterior.nc, "
-                   "summary.json, done.json)",
-    }
-    ds = assemble_survey(out, specs, attrs=attrs)
-    surface, note = _surface_from(ds, surface_degree)
-    surf_dict = surface.to_dict() if surface is not None else {"degree": None, "note": note}
-    ds.attrs["detuning_surface"] = json.dumps(_json_ready(surf_dict))
-    files = [
-        write_netcdf(out / SURVEY_NC, ds),
-        write_text(out / SURVEY_CSV, _csv_text(ds)),
-        write_json(out / SURFACE_JSON, surf_dict),
-    ]
-    result = SurveyResult(dataset=ds, surface=surface, out=out, fitted=fitted, reused=reused,
-                          surface_note=note, files=files)
-    if figures:
-        from .. import plots_survey
+        attrs = {
+            "mode": mode,
+            "model": model,
+            "seed_entropy": str(int(root.entropy)),
+            "seed_spawn_key": json.dumps([int(k) for k in root.spawn_key]),
+            "manifest": str(Path(manifest)),
+            "polkit_version": _polkit_version(),
+            "created": datetime.now(UTC).isoformat(timespec="seconds"),
+            "comment": "per-position results in positions/<position>/ (posterior.nc, "
+                       "summary.json, done.json)",
+        }
+        ds = assemble_survey(out, specs, attrs=attrs)
+        surface, note = _surface_from(ds, surface_degree)
+        surf_dict = surface.to_dict() if surface is not None else {"degree": None, "note": note}
+        ds.attrs["detuning_surface"] = json.dumps(_json_ready(surf_dict))
+        files = [
+            write_netcdf(out / SURVEY_NC, ds),
+            write_text(out / SURVEY_CSV, _csv_text(ds)),
+            write_json(out / SURFACE_JSON, surf_dict),
+        ]
+        result = SurveyResult(dataset=ds, surface=surface, out=out, fitted=fitted, reused=reused,
+                              surface_note=note, files=files)
+        if figures:
+            from .. import plots_survey
 
-        result.files.extend(plots_survey.survey_figures(ds, surface, out))
-    log.info("%s", result.table())
-    return result
+            result.files.extend(plots_survey.survey_figures(ds, surface, out))
+        log.info("%s", result.table())
+        return result
 
 
 def _json_ready(obj):
