@@ -259,5 +259,6 @@ def test_shared_files_name_inputs_by_file_name_not_absolute_path(tmp_path):
     assert "/home/someone" not in text and "someone" not in text
     assert res.provenance["input"] == "p1.nc"
     obs = res.tree["observed_data"]
-    assert obs.attrs["source"] == "p1.nc" and obs["map"].attrs["history"] == "loaded p1.nc: nm -> eV"
+    assert obs.attrs["source"] == "p1.nc"
+    assert obs["map"].attrs["history"] == "loaded p1.nc: nm -> eV"
     assert observed.attrs["source"] == "/home/someone/maps/p1.nc"  # the caller's data untouched

@@ -51,7 +51,14 @@ from ..errors import ConfigError, ConvergenceWarning, DataWarning
 from ..inference.priors import read_prior_file
 from ..io import json_safe, write_json, write_netcdf
 from ..models import spectral
-from ._steps import checkpoint_file, locks_output, posterior_theta, sample_problem, step_limits
+from ._steps import (
+    checkpoint_file,
+    job_identity,
+    locks_output,
+    posterior_theta,
+    sample_problem,
+    step_limits,
+)
 from .dispersion import DEFAULT_STEPS, DispersionFit, build_dispersion_result, prepare_dispersion
 from .dispersion_model import MODELS, DispersionProblem
 from .dispersion_stages import calibrate_problem_noise, refine_mode, whole_map_start
@@ -642,7 +649,11 @@ def compare_dispersion_models(
             warnings.simplefilter("ignore", ConvergenceWarning)  # summarised below
             output = sample_problem(problem, start, steps=steps, n_walkers=n_walkers,
                                     seed=children[m], pre_burn=True, checkpoint=ckpt,
-                                    progress=progress, resume=resume)
+                                    progress=progress, resume=resume,
+                                    identity=job_identity(
+                                        begin.source.sha256, f"{m} {begin.source.kind}",
+                                        "whole_map", noise_note,
+                                        dict(opts, models=list(models))))
             fit = build_dispersion_result(problem, output, begin.source, noise_note=noise_note,
                                           table=begin.table,
                                           provenance={"model_comparison": ", ".join(models)})
