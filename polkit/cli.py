@@ -51,6 +51,8 @@ def build_parser() -> argparse.ArgumentParser:
     )
     parser.add_argument("--version", action="version", version=f"polkit {__version__}")
     parser.add_argument("--debug", action="store_true", help="show tracebacks on errors")
+    parser.add_argument("--verbose", action="store_true",
+                        help="show the library's progress messages (and the survey scheduler's)")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     sub.required = True
 
@@ -174,7 +176,7 @@ def _cmd_survey(args) -> int:
         scheduler=args.scheduler,
         out=args.out,
         seed=args.seed,
-        progress=not args.quiet,
+        progress=_progress(args),
         max_steps=args.max_steps,
         retry_failed=args.retry_failed,
     )
@@ -215,11 +217,16 @@ def _cmd_report(args) -> int:
     return EXIT_OK
 
 
+def _progress(args) -> bool:
+    """Progress bars only on a terminal: a log file would get one line per update."""
+    return not args.quiet and sys.stderr.isatty()
+
+
 def _fit_options(args, out: Path) -> dict:
     """The options every fitting command shares (priors, seed, resume, limits, output)."""
     return dict(priors=args.priors, seed=args.seed, resume=args.resume, strict=args.strict,
                 out=out, max_steps=args.max_steps, n_walkers=args.walkers,
-                progress=not args.quiet)
+                progress=_progress(args))
 
 
 def _cmd_power(args) -> int:
@@ -279,7 +286,7 @@ def _cmd_demo(args) -> int:
     from .demo import run_demo
 
     return run_demo(
-        data=args.data, out=args.out, seed=args.seed, quick=args.quick, progress=not args.quiet
+        data=args.data, out=args.out, seed=args.seed, quick=args.quick, progress=_progress(args)
     )
 
 
@@ -323,7 +330,7 @@ def _cmd_compare(args) -> int:
         out=out,
         max_steps=args.max_steps,
         n_walkers=args.walkers,
-        progress=not args.quiet,
+        progress=_progress(args),
         wavelength_medium=args.wavelength_medium,
         figures=args.figures,
         resume=args.resume,
@@ -377,7 +384,7 @@ def main(argv: list[str] | None = None) -> int:
         sub = next(a for a in parser._actions if a.dest == "command").choices[args.command]
         sub.error(f"unrecognized arguments: {' '.join(extra)}")
     logging.basicConfig(
-        level=logging.DEBUG if args.debug else logging.WARNING,
+        level=logging.DEBUG if args.debug else logging.INFO if args.verbose else logging.WARNING,
         format="polkit: %(levelname)s: %(message)s",
     )
 

@@ -44,7 +44,9 @@ from pathlib import Path
 from typing import Any
 
 from . import io
+from ._paths import shareable
 from .errors import ConfigError, DataError
+from .safety import safety_markdown
 
 __all__ = ["make_report", "parse_params", "ReportPaths", "PARAMETERS_TAG", "INJECTED_TAG",
            "PROVENANCE_TAG"]
@@ -431,6 +433,11 @@ def make_report(
                 for f in sorted(results.rglob("*")) if f.is_file() and not f.name.endswith(
                     ".part")]
     prov = _provenance(nb_path, params, defaults, results, manifest)
+    # a report travels: name files by name and SHA-256, not by this machine's folders
+    prov = json.loads(shareable(json.dumps(prov)))
+    safety = nbformat.v4.new_markdown_cell("## Safety\n\n" + safety_markdown())
+    safety.metadata["tags"] = ["safety"]
+    nb.cells.append(safety)
     cell = nbformat.v4.new_markdown_cell(_provenance_markdown(prov))
     cell.metadata["tags"] = [PROVENANCE_TAG]
     nb.cells.append(cell)

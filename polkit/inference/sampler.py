@@ -4,7 +4,7 @@ Scope: this module drives :class:`emcee.EnsembleSampler`; it knows nothing of ph
 or input files.  A caller hands it a :class:`~polkit.inference.priors.ParameterSpace`
 and a vectorised log-likelihood ``theta[W, P] -> [W]``; the runner adds the log
 prior, seeds everything from one :class:`numpy.random.SeedSequence`, stops when the
-convergence gate of the design notes is passed (or at ``max_steps``), and returns a
+convergence gate is passed (or at ``max_steps``), and returns a
 :class:`SamplerOutput`.
 
 Run plan (a pure function of the stored chains, so a resumed run takes the same

@@ -1492,7 +1492,7 @@ def _client(scheduler, workers: int | None):
         return
     n = workers or _default_workers()
     cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
-                           **_local_cluster_options(), silence_logs=logging.WARNING)
+                           **_local_cluster_options(), silence_logs=_scheduler_log_level())
     try:
         client = Client(cluster)
         try:
@@ -1501,6 +1501,12 @@ def _client(scheduler, workers: int | None):
             client.close()
     finally:
         cluster.close()
+
+
+def _scheduler_log_level() -> int:
+    """The embedded cluster's own log level: errors only, unless polkit logs at INFO or below
+    (``polkit --verbose`` / ``--debug``), so its lines do not reach the terminal by default."""
+    return logging.INFO if logging.getLogger().isEnabledFor(logging.INFO) else logging.ERROR
 
 
 def run_survey(
