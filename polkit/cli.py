@@ -372,8 +372,8 @@ def _choose_seed(args) -> None:
     import secrets
 
     args.seed = secrets.randbits(63)
-    print(f"polkit: no --seed given; this run uses --seed {args.seed} (recorded in the "
-          "results; pass it again to repeat the run)", file=sys.stderr)
+    print(f"no --seed given; this run uses --seed {args.seed} (recorded in the results; pass "
+          "it again to repeat the run)", flush=True)
 
 
 def main(argv: list[str] | None = None) -> int:

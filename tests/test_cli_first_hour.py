@@ -34,10 +34,10 @@ def test_a_run_without_seed_prints_the_seed_it_uses(tmp_path, capsys):
     status = main(["power", str(tmp_path / "missing.csv"), "--model", "coherent",
                    "--out", str(tmp_path / "o")])
     assert status == EXIT_INPUT  # the file is missing; the seed was still chosen first
-    m = re.search(r"this run uses --seed (\d+)", capsys.readouterr().err)
+    m = re.search(r"this run uses --seed (\d+)", capsys.readouterr().out)
     assert m and int(m.group(1)) >= 0
     main(["power", str(tmp_path / "missing.csv"), "--model", "coherent", "--seed", "5"])
-    assert "this run uses --seed" not in capsys.readouterr().err
+    assert "this run uses --seed" not in capsys.readouterr().out
     main(["power", str(tmp_path / "missing.csv"), "--model", "coherent", "--resume",
           "--out", str(tmp_path / "o")])
-    assert "this run uses --seed" not in capsys.readouterr().err  # resume keeps its own
+    assert "this run uses --seed" not in capsys.readouterr().out  # resume keeps its own
