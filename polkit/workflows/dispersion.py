@@ -44,7 +44,7 @@ from ._steps import (
     step_limits,
 )
 from .dispersion_model import DispersionProblem
-from .dispersion_noise import calibrate_noise
+from .dispersion_noise import calibrate_noise, premask_spikes
 from .dispersion_stages import (
     DispersionStart,
     MapInput,
@@ -297,9 +297,11 @@ def fit_dispersion(
         noise_note = PEAK_TABLE_NOISE
     else:
         path_used, like = "whole_map", problem.log_likelihood
+        premask_spikes(problem, begin.source.data)  # spikes would pull the mode search
         start = whole_map_start(problem, begin.x0, table_map.x)
-        noise_note = calibrate_problem_noise(problem, start.x, begin.source.data.attrs)
-        start = refine_mode(problem, start.x)
+        for _ in range(2):  # robust noise model and outlier mask at the mode, then the mode
+            noise_note = calibrate_problem_noise(problem, start.x, begin.source.data)
+            start = refine_mode(problem, start.x)
 
     output = sample_problem(problem, start, steps=steps, log_likelihood=like, n_walkers=n_walkers,
                             seed=seed, pre_burn=True, checkpoint=checkpoint, resume=resume,
