@@ -192,7 +192,21 @@ def build_dispersion_result(
     for key in ("source", "sample", "position"):
         if key in da.attrs:
             observed.attrs[key] = str(da.attrs[key])
+    extra: dict[str, Any] = {"fit_path": path, "in_plane_axis": axis,
+                             "n_excitons": source.n_excitons, "background": problem.background}
+    cal = getattr(problem, "noise_calibration", None) or {}
+    if path == "whole_map":
+        from .model_check import problem_model_check
+
+        median = np.median(posterior_theta(output, space).reshape(-1, len(space)), axis=0)
+        check = problem_model_check(problem, median, da)
+        check["masked_pixels"] = {"outliers": int(cal.get("outliers", 0)),
+                                  "saturated": int(cal.get("saturated", 0)),
+                                  "cut": float(cal.get("cut", float("nan"))),
+                                  "cut_units": "standardised residual (sigma)"}
+        extra["model_check"] = check
     prov: dict[str, Any] = {
+        "background": f"{problem.background} in energy, per {axis}",
         "input_sha256": source.sha256,
         "input": source.source_name,
         "path": path,
@@ -208,7 +222,7 @@ def build_dispersion_result(
         kind=source.kind,
         observed=observed,
         provenance=prov,
-        extra_attrs={"fit_path": path, "in_plane_axis": axis, "n_excitons": source.n_excitons},
+        extra_attrs=extra,
     )
 
 
