@@ -12,19 +12,13 @@ import warnings
 
 import numpy as np
 import pytest
+import realistic_maps as rm  # tests/ is on sys.path (pytest rootdir import)
 
 import polkit
 from polkit.workflows.dispersion import prepare_dispersion
-from polkit.workflows.dispersion_noise import premask_spikes
-from polkit.workflows.dispersion_stages import (
-    calibrate_problem_noise,
-    refine_mode,
-    table_mode,
-    whole_map_start,
-)
+from polkit.workflows.dispersion_robust import protected_mode
+from polkit.workflows.dispersion_stages import table_mode, whole_map_start
 from polkit.workflows.model_check import THRESHOLDS, problem_model_check
-
-import realistic_maps as rm  # tests/ is on sys.path (pytest rootdir import)
 
 
 def map_fit(raw: rm.RawMap, path, model: str = "two"):
@@ -35,11 +29,8 @@ def map_fit(raw: rm.RawMap, path, model: str = "two"):
         warnings.simplefilter("ignore", polkit.errors.DataWarning)  # e.g. one branch visible
         problem, begin = prepare_dispersion(da, model=model)
         table = table_mode(problem, begin.x0)
-        premask_spikes(problem, begin.source.data)
         start = whole_map_start(problem, begin.x0, table.x)
-        for _ in range(2):
-            calibrate_problem_noise(problem, start.x, begin.source.data)
-            start = refine_mode(problem, start.x)
+        start, _ = protected_mode(problem, start, begin.source.data, begin.x0, table.x)
     check = problem_model_check(problem, start.x, begin.source.data)
     return problem, start, check
 

@@ -9,10 +9,10 @@ spreads are the Laplace (curvature) spreads at the mode, ``MapResult.scale``.
 from __future__ import annotations
 
 import numpy as np
-
 import realistic_maps as rm  # tests/ is on sys.path (pytest rootdir import)
-from polkit.workflows.dispersion_noise import calibrate_noise, outlier_cut
 from test_model_check import map_fit
+
+from polkit.workflows.dispersion_noise import calibrate_noise, outlier_cut
 
 
 def _with_spikes(raw: rm.RawMap, n: int, seed: int) -> rm.RawMap:

@@ -44,15 +44,14 @@ from ._steps import (
     step_limits,
 )
 from .dispersion_model import DispersionProblem
-from .dispersion_noise import calibrate_noise, premask_spikes
+from .dispersion_noise import calibrate_noise
+from .dispersion_robust import protected_mode
 from .dispersion_stages import (
     DispersionStart,
     MapInput,
-    calibrate_problem_noise,
     map_problem,
     open_map,
     peak_start,
-    refine_mode,
     start_vector,
     table_mode,
     whole_map_start,
@@ -311,11 +310,11 @@ def fit_dispersion(
         noise_note = PEAK_TABLE_NOISE
     else:
         path_used, like = "whole_map", problem.log_likelihood
-        premask_spikes(problem, begin.source.data)  # spikes would pull the mode search
         start = whole_map_start(problem, begin.x0, table_map.x)
-        for _ in range(2):  # robust noise model and outlier mask at the mode, then the mode
-            noise_note = calibrate_problem_noise(problem, start.x, begin.source.data)
-            start = refine_mode(problem, start.x)
+        # robust noise model and outlier mask at the mode, the mode again (and a spike-free
+        # start when the model check then fails)
+        start, noise_note = protected_mode(problem, start, begin.source.data, begin.x0,
+                                           table_map.x)
 
     output = sample_problem(problem, start, steps=steps, log_likelihood=like, n_walkers=n_walkers,
                             seed=seed, pre_burn=True, checkpoint=checkpoint, resume=resume,

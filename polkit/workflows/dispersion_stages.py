@@ -366,7 +366,7 @@ def whole_map_start(problem: DispersionProblem, x0: np.ndarray,
 def calibrate_problem_noise(problem: DispersionProblem, x: np.ndarray,
                             attrs: Mapping[str, Any] | xr.DataArray, *,
                             mask_outliers: bool = True) -> str:
-    """Calibrate the noise model on the residuals at ``x``, mask gross pixels, set it on ``problem``.
+    """Calibrate the noise model at ``x``, mask gross pixels and set it on ``problem``.
 
     The detector model (gain and read noise, :func:`~polkit.workflows.dispersion_noise.
     detector_terms`) is used for emission counts that carry them, also through a

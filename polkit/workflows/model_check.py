@@ -28,7 +28,7 @@ from collections.abc import Mapping
 from typing import Any
 
 import numpy as np
-from scipy import ndimage, stats
+from scipy import ndimage
 
 from .dispersion_noise import DetectorTerms
 
