@@ -125,3 +125,20 @@ def test_false_alarm_rate_on_fifty_clean_maps(tmp_path):
                                  if not t["passed"]]))
     print(f"false alarms: {len(fails)} of 50: {fails}")
     assert len(fails) <= 2, fails  # 2/50 = 4 %
+
+
+def test_cli_prints_a_failed_check_and_says_so(capsys):
+    from polkit import cli
+
+    check = {"passed": False, "statistic": 3.2, "threshold": THRESHOLDS["chi2_per_dof"],
+             "noise_floor": "neighbour differences",
+             "worst_angles": [{"angle": 12.0, "units": "degree", "chi2_per_pixel": 7.5}],
+             "advice": "another oscillator (--model three)?",
+             "masked_pixels": {"outliers": 3, "saturated": 0}}
+    assert cli._print_model_check(check) is True
+    err = capsys.readouterr().err
+    assert "FAILED" in err and "12.0 degree" in err and "--model three" in err
+    assert "3 outlier(s)" in err
+    assert cli._print_model_check({**check, "passed": True}) is False
+    assert "passed" in capsys.readouterr().out
+    assert cli.EXIT_MODEL_CHECK == 4 and cli.EXIT_NOT_CONVERGED == 3
