@@ -5,9 +5,9 @@ and the command exits non-zero; ``--debug`` shows the traceback instead.
 
 Exit status: 0 success; 1 an error writing results (disk full, read-only folder);
 2 bad input, bad options or a fit that could not run; 3 a fit that ran but did not
-converge (its results are written and marked ``"converged": false``); 4 (``power``) a
-converged fit whose model check failed: the model does not describe the data (results
-written, ``"model_check": {"passed": false, ...}``).  3 takes precedence over 4: an
+converge (its results are written and marked ``"converged": false``); 4 (``dispersion``,
+``power``) a converged fit whose model check failed: the model does not describe the data
+(results written, ``"model_check": {"passed": false, ...}``).  3 takes precedence over 4: an
 unconverged fit is not judged by its residuals.
 """
 
@@ -313,8 +313,30 @@ def _cmd_dispersion(args) -> int:
         if corner_process is not None:
             corner_process.close()
     print(result.table())
+    failed = _print_model_check(result.model_check)
     print(f"results written to {out}")
-    return EXIT_OK if result.converged else EXIT_NOT_CONVERGED
+    if not result.converged:
+        return EXIT_NOT_CONVERGED
+    return EXIT_MODEL_CHECK if failed else EXIT_OK
+
+
+def _print_model_check(check) -> bool:
+    """Print the model check line (a warning line when it failed); True when it failed."""
+    if not check:
+        return False
+    masked = check.get("masked_pixels", {})
+    n_out, n_sat = masked.get("outliers", 0), masked.get("saturated", 0)
+    pixels = f"; pixels left out: {n_out} outlier(s), {n_sat} saturated" if n_out or n_sat else ""
+    line = (f"model check: chi2/dof {check['statistic']:.3g} against the noise floor from "
+            f"{check['noise_floor']} (threshold {check['threshold']:g}){pixels}")
+    if check.get("passed"):
+        print(f"{line}: passed")
+        return False
+    worst = ", ".join(f"{w.get('angle', w.get('k'))} {w['units']} ({w['chi2_per_pixel']:.3g})"
+                      for w in check.get("worst_angles", []))
+    print(f"polkit: warning: {line}: FAILED; worst: {worst}. {check.get('advice', '')}",
+          file=sys.stderr)
+    return True
 
 
 def _cmd_compare(args) -> int:

@@ -43,6 +43,7 @@ def problem_from_result(result):
         space=result.space,
         n_excitons=n_exc,
         kind=result.kind,
+        background=str(result.tree.attrs.get("background", "constant")),
     ), da
 
 
@@ -119,18 +120,36 @@ def normalised_residuals(problem, theta: np.ndarray) -> np.ndarray:
 
 
 def residual_figure(result):
-    """Normalised residuals (data - model) / sigma of the posterior-median parameters."""
+    """Residuals (data - model) of the posterior-median parameters over the noise floor.
+
+    The floor is estimated from the data alone (the detector model, or neighbour
+    differences: :func:`polkit.workflows.model_check.noise_floor`), not the noise model
+    fitted to the residuals, so a misfit shows as structure and an rms above 1.  Pixels
+    left out of the likelihood are blank.
+    """
+    from .workflows.dispersion_noise import detector_terms
+    from .workflows.model_check import noise_floor
+
     plt = _plt()
     problem, da = problem_from_result(result)
-    resid = normalised_residuals(problem, np.median(posterior_matrix(result), axis=0))
+    theta = np.median(posterior_matrix(result), axis=0)
+    model = np.asarray(problem.model_map(theta).model).reshape(problem.y.shape)
+    ok = (problem.inv_var > 0) & np.isfinite(problem.y)
+    var, how = noise_floor(problem.y, model, ok, detector_terms(da, problem.kind))
+    resid = np.where(ok, (problem.y - model) / np.sqrt(np.maximum(var, 1e-300)), np.nan)
     fig, ax = plt.subplots(figsize=(6.4, 4.8))
     mesh = ax.pcolormesh(
         problem.in_plane, problem.energy, resid.T, shading="nearest", cmap="RdBu_r", vmin=-4, vmax=4
     )
-    fig.colorbar(mesh, ax=ax, label="normalised residual [sigma]")
+    fig.colorbar(mesh, ax=ax, label="residual / noise floor")
     ax.set_xlabel(problem.axis)
     ax.set_ylabel("energy [eV]")
-    ax.set_title(f"residuals: rms {np.sqrt(np.nanmean(resid[problem.inv_var > 0] ** 2)):.2f} sigma")
+    rms = float(np.sqrt(np.nanmean(resid[ok] ** 2))) if ok.any() else float("nan")
+    check = result.model_check
+    verdict = "" if check is None else (" (check passed)" if check.get("passed")
+                                        else " (check FAILED)")
+    ax.set_title(f"residuals over the noise floor from {how}: rms {rms:.2f}{verdict}",
+                 fontsize=9)
     return fig
 
 

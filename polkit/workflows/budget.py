@@ -890,6 +890,9 @@ def energy_budget(
         "power_draws_available": int(n_pow),
         "n_draws": n,
         "resampled_with_replacement": {"dispersion": bool(n > n_disp), "power": bool(n > n_pow)},
+        # inputs whose own model check said the model does not describe their data
+        "model_check_failed": [role for role, res in (("dispersion", disp), ("power", pw))
+                               if (res.model_check or {}).get("passed", True) is False],
     }
     attrs = {
         "model": "energy_budget",
@@ -1181,6 +1184,9 @@ class BudgetResult:
             if not d.get(f"{role}_converged", True):
                 out.append(f"The {role} result did not pass its convergence gate; its draws are "
                            "used as they are.")
+        for role in d.get("model_check_failed", []):
+            out.append(f"The {role} result failed its model check (its model does not describe "
+                       "its data); the budget inherits numbers that may be biased.")
         return out
 
     def summary(self) -> dict[str, Any]:

@@ -48,14 +48,13 @@ from ._steps import (
 )
 from .dispersion_model import DispersionProblem
 from .dispersion_noise import calibrate_noise
+from .dispersion_robust import protected_mode
 from .dispersion_stages import (
     DispersionStart,
     MapInput,
-    calibrate_problem_noise,
     map_problem,
     open_map,
     peak_start,
-    refine_mode,
     start_vector,
     table_mode,
     whole_map_start,
@@ -196,7 +195,21 @@ def build_dispersion_result(
     for key in ("source", "sample", "position"):
         if key in da.attrs:
             observed.attrs[key] = str(da.attrs[key])
+    extra: dict[str, Any] = {"fit_path": path, "in_plane_axis": axis,
+                             "n_excitons": source.n_excitons, "background": problem.background}
+    cal = getattr(problem, "noise_calibration", None) or {}
+    if path == "whole_map":
+        from .model_check import problem_model_check
+
+        median = np.median(posterior_theta(output, space).reshape(-1, len(space)), axis=0)
+        check = problem_model_check(problem, median, da)
+        check["masked_pixels"] = {"outliers": int(cal.get("outliers", 0)),
+                                  "saturated": int(cal.get("saturated", 0)),
+                                  "cut": float(cal.get("cut", float("nan"))),
+                                  "cut_units": "standardised residual (sigma)"}
+        extra["model_check"] = check
     prov: dict[str, Any] = {
+        "background": f"{problem.background} in energy, per {axis}",
         "input_sha256": source.sha256,
         "input": source.source_name,
         "path": path,
@@ -212,7 +225,7 @@ def build_dispersion_result(
         kind=source.kind,
         observed=observed,
         provenance=prov,
-        extra_attrs={"fit_path": path, "in_plane_axis": axis, "n_excitons": source.n_excitons},
+        extra_attrs=extra,
     )
 
 
@@ -303,8 +316,10 @@ def fit_dispersion(
     else:
         path_used, like = "whole_map", problem.log_likelihood
         start = whole_map_start(problem, begin.x0, table_map.x)
-        noise_note = calibrate_problem_noise(problem, start.x, begin.source.data.attrs)
-        start = refine_mode(problem, start.x)
+        # robust noise model and outlier mask at the mode, the mode again (and a spike-free
+        # start when the model check then fails)
+        start, noise_note = protected_mode(problem, start, begin.source.data, begin.x0,
+                                           table_map.x)
 
     identity = job_identity(begin.source.sha256, f"{model} {begin.source.kind}", path_used,
                             noise_note, dict(angle_window=angle_window, energy_window=energy_window,

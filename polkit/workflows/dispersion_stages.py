@@ -55,6 +55,9 @@ __all__ = [
 
 log = logging.getLogger(__name__)
 
+#: the per-angle background of emission maps
+EMISSION_BACKGROUND = "linear"
+
 
 def _array_sha256(da: xr.DataArray) -> str:
     h = hashlib.sha256(np.ascontiguousarray(da.values, dtype=float).tobytes())
@@ -298,6 +301,9 @@ def map_problem(source: MapInput, space: ParameterSpace, *,
         table=table,
         noise_note=noise_note,
         coupling=source.coupling,
+        # emission: a background linear in energy per angle (a camera offset per raw
+        # wavelength pixel becomes, after the Jacobian lambda^2/hc, a slope in energy)
+        background=EMISSION_BACKGROUND if source.kind == "emission" else "constant",
     )
 
 
@@ -358,12 +364,20 @@ def whole_map_start(problem: DispersionProblem, x0: np.ndarray,
 
 
 def calibrate_problem_noise(problem: DispersionProblem, x: np.ndarray,
-                            attrs: Mapping[str, Any]) -> str:
-    """Calibrate the noise model on the residuals at ``x`` and set it on ``problem``.
+                            attrs: Mapping[str, Any] | xr.DataArray, *,
+                            mask_outliers: bool = True) -> str:
+    """Calibrate the noise model at ``x``, mask gross pixels and set it on ``problem``.
 
-    The detector model (gain and read noise) is used for emission counts that carry
-    them, otherwise the variance function fitted to the residuals with the leverage of
-    the per-angle linear columns (:func:`calibrate_noise`).
+    The detector model (gain and read noise, :func:`~polkit.workflows.dispersion_noise.
+    detector_terms`) is used for emission counts that carry them, also through a
+    ``jacobian`` coordinate; otherwise the variance function fitted robustly to the
+    residuals with the leverage of the per-angle linear columns (:func:`calibrate_noise`).
+    With ``mask_outliers`` pixels whose standardised residual at ``x`` exceeds
+    :func:`~polkit.workflows.dispersion_noise.outlier_cut` (the level a Gaussian pixel
+    exceeds once in a hundred maps), and pixels at or above a declared saturation level, get
+    inverse variance 0 (left out of the likelihood); the mask is recomputed from scratch at
+    every call.  What was done is kept in ``problem.noise_calibration`` (a dict: ``outliers``,
+    ``saturated``, ``cut``, ``mask``, ``source``).
 
     Parameters
     ----------
@@ -372,27 +386,57 @@ def calibrate_problem_noise(problem: DispersionProblem, x: np.ndarray,
     x
         The mode (parameter vector) whose residuals calibrate the model.
     attrs
-        The map's attributes (``units``, ``gain``, ``read_noise``).
+        The map (a DataArray, whose ``jacobian`` coordinate is then seen) or its attributes
+        (``units``, ``gain``, ``read_noise``, ``saturation``).
+    mask_outliers
+        Mask gross pixels (default); ``False`` keeps every finite pixel.
 
     Returns
     -------
     str
         A sentence on how the noise was set (the result's ``noise_model``).
     """
+    from .dispersion_noise import detector_terms, outlier_cut, outlier_mask
+
     sol = problem.model_map(x)
     model_map = np.asarray(sol.model).reshape(problem.y.shape)
-    counts = str(attrs.get("units", "")).strip() == "counts" and problem.kind == "emission"
+    detector = detector_terms(attrs, problem.kind)
     design = np.moveaxis(np.asarray(problem.basis(x[None, :]))[0], 1, 2)  # (A, E, K)
     design = np.concatenate([design, np.ones(design.shape[:2] + (1,))], axis=2)
-    gain = attrs.get("gain") if counts else None
-    read_noise = attrs.get("read_noise") if counts else None
-    inv_var, a, b = calibrate_noise(problem.y, model_map, design=design, gain=gain,
-                                    read_noise=read_noise)
-    how = ("CCD gain and read noise from the file" if gain is not None and read_noise is not None
-           else "fitted to the MAP residuals")
+    plain = getattr(attrs, "attrs", attrs)
+    gain = (plain.get("gain") if detector is None and problem.kind == "emission"
+            and str(plain.get("units", "")).strip() == "counts" else None)
+    inv_var, a, b = calibrate_noise(problem.y, model_map, design=design, detector=detector,
+                                    gain=gain)
+    how = ("CCD gain and read noise from the file" if detector is not None
+           else "fitted robustly to the MAP residuals")
     note = (f"variance = a * model + b with a = {a:.4g}, b = {b:.4g} (squared signal units; "
             f"{how}), times noise_scale^2")
+    mask = np.zeros(problem.y.shape, dtype=bool)
+    saturated = np.zeros_like(mask)
+    n_ok = int(np.count_nonzero(inv_var > 0))
+    cut = outlier_cut(n_ok)
+    if mask_outliers:
+        if detector is not None:
+            saturated = detector.saturated(problem.y)
+            names = problem.space.names
+            scale = float(x[names.index("noise_scale")]) if "noise_scale" in names else 1.0
+        else:
+            scale = 1.0
+        mask = outlier_mask(problem.y, model_map, inv_var, scale, cut) & ~saturated
+        inv_var = np.where(mask | saturated, 0.0, inv_var)
+        n_out, n_sat = int(mask.sum()), int(saturated.sum())
+        if n_out or n_sat:
+            note += (f"; {n_out} outlier pixel(s) beyond {cut:.2f} sigma"
+                     + (f" and {n_sat} saturated pixel(s)" if n_sat else "")
+                     + " left out")
+            log.info("noise model: %d outlier and %d saturated pixels masked", n_out, n_sat)
     problem.set_noise(inv_var, note)
+    problem.noise_calibration = {
+        "outliers": int(mask.sum()), "saturated": int(saturated.sum()), "cut": float(cut),
+        "mask": mask | saturated,
+        "source": "detector model" if detector is not None else "fitted to the residuals",
+    }
     return note
 
 
