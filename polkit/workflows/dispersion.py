@@ -13,11 +13,15 @@ or in :mod:`polkit.workflows.dispersion_stages`, so the interactive panel
    (multi-start least squares), default priors from the data range, user priors on top;
 3. :func:`table_mode`: the peak-table fit (MAP; with ``peaks_only`` also the MCMC, a fast
    answer);
-4. :func:`whole_map_start` and :func:`calibrate_problem_noise`: the whole-map MAP from the
-   better of the peak-table mode and the raw guess, the noise model calibrated on its
-   residuals (variance = a * model + b), then the MAP again;
+4. :func:`whole_map_start`, :func:`~polkit.workflows.dispersion_search.search_modes` and
+   :func:`calibrate_problem_noise`: the whole-map MAP from the better of the peak-table
+   mode and the raw guess, a global search of the prior box for better modes, the noise
+   model calibrated on the residuals of the best (variance = a * model + b), then the MAP
+   again;
 5. :func:`sample_problem`: a short pre-burn, then emcee until the convergence gate passes,
-   checkpointed in HDF5;
+   checkpointed in HDF5; the run fails the gate when a mode found by the search beats the
+   best sampled point by more than 2 nats
+   (:func:`~polkit.workflows.dispersion_search.check_mode_margin`);
 6. :func:`build_dispersion_result`: derived quantities per posterior draw and the result
    object; then files and figures.
 """
@@ -45,6 +49,7 @@ from ._steps import (
 )
 from .dispersion_model import DispersionProblem
 from .dispersion_noise import calibrate_noise
+from .dispersion_search import check_mode_margin, search_modes, weigh_strong_coupling
 from .dispersion_stages import (
     DispersionStart,
     MapInput,
@@ -292,20 +297,28 @@ def fit_dispersion(
     steps = step_limits(DEFAULT_STEPS, max_steps, min_steps)
 
     table_map = table_mode(problem, begin.x0)
+    search = None
     if peaks_only:
         path_used, like, start = "peak_table", problem.table_log_likelihood, table_map
         noise_note = PEAK_TABLE_NOISE
     else:
         path_used, like = "whole_map", problem.log_likelihood
-        start = whole_map_start(problem, begin.x0, table_map.x)
+        search = search_modes(problem, [("usual start",
+                                         whole_map_start(problem, begin.x0, table_map.x))])
+        start = search.best
         noise_note = calibrate_problem_noise(problem, start.x, begin.source.data.attrs)
         start = refine_mode(problem, start.x)
+        search = search.rescored(problem, start)
 
     output = sample_problem(problem, start, steps=steps, log_likelihood=like, n_walkers=n_walkers,
                             seed=seed, pre_burn=True, checkpoint=checkpoint, resume=resume,
                             progress=progress, strict=strict, stop_event=stop_event)
+    if search is not None:
+        output = check_mode_margin(output, search, problem)
     result = build_dispersion_result(problem, output, begin.source, path=path_used,
                                      noise_note=noise_note, profile=profile, table=begin.table)
+    if search is not None:
+        result = weigh_strong_coupling(result, search, problem)
     if out is not None:
         result.save(Path(out))
         if figures:
