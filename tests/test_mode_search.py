@@ -11,6 +11,7 @@ import warnings
 
 import numpy as np
 import pytest
+from realistic_maps import hidden_upper_branch
 
 import polkit
 from polkit.errors import ConvergenceWarning, DataWarning
@@ -23,7 +24,6 @@ from polkit.workflows.dispersion_search import (
     check_mode_margin,
     search_modes,
 )
-from realistic_maps import hidden_upper_branch
 
 
 # --------------------------------------------------------------------------------------
