@@ -23,10 +23,10 @@ import warnings
 from pathlib import Path
 
 import numpy as np
+from realistic_maps import Camera, Truth, simulate
 
 import polkit
 from polkit.errors import PolkitWarning
-from realistic_maps import Camera, Truth, simulate
 
 #: parameters whose coverage is measured (truth names as in Truth.as_dict)
 NAMES = ("rabi_splitting", "detuning", "exciton_energy", "cavity_energy", "cavity_linewidth",

@@ -21,8 +21,11 @@ from polkit.workflows._steps import sample_problem
 from polkit.workflows.dispersion import prepare_dispersion
 from polkit.workflows.dispersion_search import (
     MODE_MARGIN_NATS,
+    Mode,
+    ModeSearch,
     check_mode_margin,
     search_modes,
+    weigh_strong_coupling,
 )
 
 
@@ -121,13 +124,49 @@ def _check_recovery(fit, truth):
     return s
 
 
-def test_hidden_upper_branch_default_fit_finds_the_coupled_mode(hidden_map):
-    path, truth = hidden_map
+@pytest.fixture(scope="module")
+def hidden_fit(hidden_map):
+    path, _ = hidden_map
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ConvergenceWarning)  # short run on purpose
         warnings.simplefilter("ignore", DataWarning)  # one branch seen by the peak table
-        fit = polkit.fit_dispersion(path, seed=1, max_steps=2000, progress=False, figures=False)
-    _check_recovery(fit, truth)
+        return polkit.fit_dispersion(path, seed=1, max_steps=2000, progress=False,
+                                     figures=False)
+
+
+def test_hidden_upper_branch_default_fit_finds_the_coupled_mode(hidden_map, hidden_fit):
+    _check_recovery(hidden_fit, hidden_map[1])
+
+
+def test_strong_coupling_probability_mixes_modes_by_evidence_weight(hidden_map, hidden_fit,
+                                                                     tmp_path):
+    """Two modes of equal evidence, one strongly and one weakly coupled: P is their mean."""
+    path, _ = hidden_map
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", DataWarning)
+        problem, _ = prepare_dispersion(path)
+    hidden_fit.save(tmp_path / "fit")
+    result = polkit.FitResult.load(tmp_path / "fit")
+    names = problem.space.names
+    sampled = result.summary()["probabilities"]["strong_coupling_probability"]["value"]
+    x1 = np.array([result.summary()["parameters"][n]["median"] for n in names])
+    x2 = x1.copy()
+    x2[names.index("rabi_splitting")] = 1.0  # 2g far below (gamma_C + gamma_X) / 2
+    cov = np.diag((1e-3 * np.abs(x1)) ** 2)
+    modes = [Mode(x1, -10.0, np.sqrt(np.diag(cov)), "sampled", log_evidence=-20.0, cov=cov),
+             Mode(x2, -10.0, np.sqrt(np.diag(cov)), "other", log_evidence=-20.0, cov=cov)]
+    search = ModeSearch(names, problem.space.units, modes, 0, -10.0, 0)
+    assert search.weights() == pytest.approx([0.5, 0.5])
+    weigh_strong_coupling(result, search, problem)
+    s = result.summary()
+    # Source: law of total probability over the modes, P = sum_i w_i P_i (here P_2 = 0)
+    assert s["probabilities"]["strong_coupling_probability"]["value"] == pytest.approx(
+        0.5 * sampled)
+    mixed = s["diagnostics"]["mode_search"]["strong_coupling_probability"]
+    assert mixed["per_mode"]["1"] == 0.0 and mixed["units"] == "1"
+    result.save(tmp_path / "again")
+    again = polkit.FitResult.load(tmp_path / "again").summary()
+    assert again["probabilities"] == s["probabilities"]
 
 
 def test_hidden_upper_branch_recovered_from_a_misleading_start(hidden_map, monkeypatch):
