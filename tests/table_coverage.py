@@ -9,8 +9,9 @@ measured.
 
     python tests/table_coverage.py [N_MAPS] [MAX_STEPS]
 
-prints a table and one JSON object; ``tests/test_mode_search.py`` runs a reduced version
-under ``-m slow``.
+prints a table and one JSON object (a measurement, like the benchmarks: it asserts nothing;
+the numbers go to the README and to the caveat of the peak-table path's results,
+``polkit/workflows/dispersion_caveats.py``).
 """
 
 from __future__ import annotations

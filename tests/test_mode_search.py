@@ -223,3 +223,15 @@ def test_gate_refuses_a_run_sampled_in_a_worse_mode(hidden_map):
     assert any("a better mode exists" in r for r in output.diagnostics["reasons"])
     record = output.diagnostics["mode_search"]
     assert record["passed"] is False and record["margin"] == MODE_MARGIN_NATS
+
+
+def test_peak_table_result_carries_the_measured_coverage_caveat(hidden_map):
+    path, _ = hidden_map
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", ConvergenceWarning)  # short run on purpose
+        warnings.simplefilter("ignore", DataWarning)
+        fit = polkit.fit_dispersion(path, peaks_only=True, seed=1, max_steps=200,
+                                    progress=False, figures=False)
+    d = fit.summary()["diagnostics"]
+    assert "mode_search" not in d
+    assert any("peak-table path" in c and "undercover" in c for c in d["caveats"])

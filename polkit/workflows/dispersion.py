@@ -47,6 +47,7 @@ from ._steps import (
     sample_problem,
     step_limits,
 )
+from .dispersion_caveats import PEAK_TABLE_COVERAGE, add_caveats
 from .dispersion_model import DispersionProblem
 from .dispersion_noise import calibrate_noise
 from .dispersion_search import check_mode_margin, search_modes, weigh_strong_coupling
@@ -315,6 +316,8 @@ def fit_dispersion(
                             progress=progress, strict=strict, stop_event=stop_event)
     if search is not None:
         output = check_mode_margin(output, search, problem)
+    else:
+        output = add_caveats(output, [PEAK_TABLE_COVERAGE])
     result = build_dispersion_result(problem, output, begin.source, path=path_used,
                                      noise_note=noise_note, profile=profile, table=begin.table)
     if search is not None:
