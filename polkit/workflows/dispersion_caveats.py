@@ -12,13 +12,14 @@ __all__ = ["PEAK_TABLE_COVERAGE", "add_caveats"]
 
 #: coverage of the peak-table path's intervals, measured on invented demo-like maps by
 #: tests/table_coverage.py (20 maps, 4 K sample with 2g = 12 meV, detuning -4 meV, cavity
-#: and exciton FWHM 0.3 and 0.8 meV; simulated by a generator that does not import polkit)
+#: and exciton FWHM 0.3 and 0.8 meV; simulated by a generator that does not import polkit;
+#: the default max_steps, every run converged)
 PEAK_TABLE_COVERAGE = (
     "peak-table path: on 20 invented demo-like maps its intervals undercover; the truth lay "
-    "inside the 68 % / 95 % intervals in 45 % / 90 % of maps for the cavity linewidth, "
+    "inside the 68 % / 95 % intervals in 50 % / 90 % of maps for the cavity linewidth, "
     "55 % / 85 % for the exciton linewidth (biased high, mean z +1.0, rms z 1.5) and 0 % / 0 % "
-    "for the Rabi splitting (biased low by about 5 posterior sd); use the whole-map fit for "
-    "linewidths and for the Rabi splitting's uncertainty"
+    "for the Rabi splitting (biased low by about 5 posterior sd, a few ueV at 2g = 12 meV); "
+    "use the whole-map fit for linewidths and for the Rabi splitting's uncertainty"
 )
 
 
