@@ -61,9 +61,9 @@ MODE_MARGIN_NATS = 2.0
 #: Sobol points over the prior box (a power of two)
 DESIGN_POINTS = 4096
 #: design points improved together by the vectorised hill climb
-CLIMB_CANDIDATES = 32
+CLIMB_CANDIDATES = 16
 #: iterations and proposals per candidate of the hill climb
-CLIMB_ITERATIONS = 40
+CLIMB_ITERATIONS = 25
 CLIMB_PROPOSALS = 16
 #: local optimisations started from the best distant climbed points
 LOCAL_STARTS = 3
@@ -333,7 +333,7 @@ def _polish(post, space, x0: np.ndarray) -> MapResult:
 
     zb = list(zip((lo - x0) / s, (hi - x0) / s, strict=True))
     res = optimize.minimize(fun_grad, np.zeros(p), jac=True, method="L-BFGS-B", bounds=zb,
-                            options={"maxiter": 500})
+                            options={"maxiter": 200})
     return find_map(post, space, np.clip(x0 + s * res.x, lo, hi))
 
 
