@@ -7,9 +7,10 @@ checks the run against them afterwards:
 
 * :func:`search_modes`: a scrambled Sobol design (:class:`scipy.stats.qmc.Sobol`) over the
   prior box of the physics parameters, evaluated with the vectorised whole-map posterior
-  (the noise scale held at the usual start's value), then local optimisation
-  (:func:`polkit.inference.find_map`) from the best mutually distant design points and
-  from the usual starts (:func:`~polkit.workflows.dispersion_stages.whole_map_start`);
+  (the noise scale held at the usual start's value), a vectorised hill climb of the best
+  mutually distant design points, then local optimisation (L-BFGS-B, finished by
+  :func:`polkit.inference.find_map`) from the best distant climbed points, beside the usual
+  starts (:func:`~polkit.workflows.dispersion_stages.whole_map_start`);
   optima that agree within a few local spreads are one mode.
 * :meth:`ModeSearch.rescored`: after the noise model is calibrated at the chosen mode,
   every mode is optimised again under it and gets a Laplace log-evidence from the
@@ -207,8 +208,9 @@ class ModeSearch:
             "units": "nat",
             "design_points": int(self.design_points),
             "design": "scrambled Sobol design over the prior box of the physics parameters "
-                      "(noise scale held), then local optimisation from the best distant points "
-                      "and the usual starts",
+                      "(noise scale held), a vectorised hill climb of the best distant points, "
+                      "then local optimisation from the best climbed ones, beside the usual "
+                      "start",
             "evaluations": int(self.evaluations),
             "modes_found": len(self.modes),
             "modes": rows,
