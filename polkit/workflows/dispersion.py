@@ -13,11 +13,15 @@ or in :mod:`polkit.workflows.dispersion_stages`, so the interactive panel
    (multi-start least squares), default priors from the data range, user priors on top;
 3. :func:`table_mode`: the peak-table fit (MAP; with ``peaks_only`` also the MCMC, a fast
    answer);
-4. :func:`whole_map_start` and :func:`calibrate_problem_noise`: the whole-map MAP from the
-   better of the peak-table mode and the raw guess, the noise model calibrated on its
-   residuals (variance = a * model + b), then the MAP again;
+4. :func:`whole_map_start`, :func:`~polkit.workflows.dispersion_search.search_modes` and
+   :func:`calibrate_problem_noise`: the whole-map MAP from the better of the peak-table
+   mode and the raw guess, a global search of the prior box for better modes, the noise
+   model calibrated on the residuals of the best (variance = a * model + b), then the MAP
+   again;
 5. :func:`sample_problem`: a short pre-burn, then emcee until the convergence gate passes,
-   checkpointed in HDF5;
+   checkpointed in HDF5; the run fails the gate when a mode found by the search beats the
+   best sampled point by more than 2 nats
+   (:func:`~polkit.workflows.dispersion_search.check_mode_margin`);
 6. :func:`build_dispersion_result`: derived quantities per posterior draw and the result
    object; then files and figures.
 """
@@ -46,9 +50,11 @@ from ._steps import (
     step_limits,
     warn_large_map,
 )
+from .dispersion_caveats import PEAK_TABLE_COVERAGE, add_caveats
 from .dispersion_model import DispersionProblem
 from .dispersion_noise import calibrate_noise
 from .dispersion_robust import protected_mode
+from .dispersion_search import check_mode_margin, search_modes, weigh_strong_coupling
 from .dispersion_stages import (
     DispersionStart,
     MapInput,
@@ -310,16 +316,19 @@ def fit_dispersion(
     steps = step_limits(DEFAULT_STEPS, max_steps, min_steps)
 
     table_map = table_mode(problem, begin.x0)
+    search = None
     if peaks_only:
         path_used, like, start = "peak_table", problem.table_log_likelihood, table_map
         noise_note = PEAK_TABLE_NOISE
     else:
         path_used, like = "whole_map", problem.log_likelihood
-        start = whole_map_start(problem, begin.x0, table_map.x)
-        # robust noise model and outlier mask at the mode, the mode again (and a spike-free
-        # start when the model check then fails)
-        start, noise_note = protected_mode(problem, start, begin.source.data, begin.x0,
+        search = search_modes(problem, [("usual start",
+                                         whole_map_start(problem, begin.x0, table_map.x))])
+        # robust noise model and outlier mask at the best mode, the mode again (and a
+        # spike-free start when the model check then fails)
+        start, noise_note = protected_mode(problem, search.best, begin.source.data, begin.x0,
                                            table_map.x)
+        search = search.rescored(problem, start)
 
     identity = job_identity(begin.source.sha256, f"{model} {begin.source.kind}", path_used,
                             noise_note, dict(angle_window=angle_window, energy_window=energy_window,
@@ -329,8 +338,14 @@ def fit_dispersion(
                             seed=seed, pre_burn=True, checkpoint=checkpoint, resume=resume,
                             progress=progress, strict=strict, stop_event=stop_event,
                             identity=identity)
+    if search is not None:
+        output = check_mode_margin(output, search, problem)
+    else:
+        output = add_caveats(output, [PEAK_TABLE_COVERAGE])
     result = build_dispersion_result(problem, output, begin.source, path=path_used,
                                      noise_note=noise_note, profile=profile, table=begin.table)
+    if search is not None:
+        result = weigh_strong_coupling(result, search, problem)
     if out is not None:
         result.save(Path(out))
         if figures:
