@@ -107,10 +107,12 @@ def prepare_dispersion(
     energy_window: tuple[float, float] | None = None,
     load_options: dict | None = None,
     profile: str = "lorentzian",
+    camera=None,
 ) -> tuple[DispersionProblem, DispersionStart]:
     """Load, crop and describe a map: the problem to fit and where to start.
 
-    Parameters are those of :func:`fit_dispersion`.
+    Parameters are those of :func:`fit_dispersion` (``camera=None`` means the default
+    :class:`polkit.data.CameraOptions`: offset, saturation and spike masks on).
 
     Returns
     -------
@@ -118,10 +120,14 @@ def prepare_dispersion(
         ``(problem, start)``: the :class:`DispersionProblem` (with the peak table) and
         the :class:`DispersionStart`.
     """
+    from ..data import CameraOptions
+
+    camera = CameraOptions() if camera is None else camera
     src = open_map(source, model=model, kind=kind, wavelength_medium=wavelength_medium,
-                   load_options=load_options).cropped(angle_window, energy_window)
+                   load_options=load_options, camera=camera).cropped(angle_window, energy_window)
     table, guess, space = peak_start(src.data, n_excitons=src.n_excitons, kind=src.kind,
-                                     priors=priors, profile=profile, coupling=src.coupling)
+                                     priors=priors, profile=profile, coupling=src.coupling,
+                                     min_snr=camera.min_snr)
     x0 = start_vector(space, guess)
     problem = map_problem(src, space, table=table)
     return problem, DispersionStart(src, table, guess, x0)
@@ -212,6 +218,14 @@ def build_dispersion_result(
     )
 
 
+def _camera_provenance(begin: DispersionStart) -> dict[str, Any]:
+    """What the camera steps masked (from the map's ``preprocessing`` JSON) and min_snr."""
+    from ..data.camera import preprocessing_record
+
+    return {"preprocessing": preprocessing_record(begin.source.data),
+            "peak_min_snr": float(begin.table.attrs.get("min_snr", float("nan")))}
+
+
 # --------------------------------------------------------------------------------------
 # the job
 # --------------------------------------------------------------------------------------
@@ -237,6 +251,7 @@ def fit_dispersion(
     stop_event=None,
     figures: bool = True,
     profile: str = "lorentzian",
+    camera=None,
 ) -> DispersionFit:
     """Fit a coupled-oscillator model to an angle-resolved map.
 
@@ -275,6 +290,11 @@ def fit_dispersion(
         Write figures to ``out``.
     profile
         Peak shape of the peak table, ``"lorentzian"`` or ``"voigt"``.
+    camera
+        A :class:`polkit.data.CameraOptions` (default: its defaults): camera offset
+        subtracted before unit conversion, saturated pixels and cosmic-ray spikes masked,
+        excluded windows, the peak table's detection threshold.  What was masked is counted
+        in the observed map's ``preprocessing`` attribute and in the provenance.
 
     Returns
     -------
@@ -285,7 +305,7 @@ def fit_dispersion(
     problem, begin = prepare_dispersion(
         source, model=model, kind=kind, priors=priors, wavelength_medium=wavelength_medium,
         angle_window=angle_window, energy_window=energy_window, load_options=load_options,
-        profile=profile,
+        profile=profile, camera=camera,
     )
     checkpoint = checkpoint_file(out, resume, refusal=DataError(
         "resume needs the output folder that holds the checkpoint; pass out=.", field="resume"))
@@ -305,7 +325,8 @@ def fit_dispersion(
                             seed=seed, pre_burn=True, checkpoint=checkpoint, resume=resume,
                             progress=progress, strict=strict, stop_event=stop_event)
     result = build_dispersion_result(problem, output, begin.source, path=path_used,
-                                     noise_note=noise_note, profile=profile, table=begin.table)
+                                     noise_note=noise_note, profile=profile, table=begin.table,
+                                     provenance=_camera_provenance(begin))
     if out is not None:
         result.save(Path(out))
         if figures:
