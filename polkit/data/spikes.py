@@ -38,7 +38,7 @@ import warnings
 
 import numpy as np
 import xarray as xr
-from scipy.ndimage import binary_dilation, maximum_filter1d
+from scipy.ndimage import binary_dilation, maximum_filter1d, median_filter
 
 from ..errors import ConfigError, DataWarning
 from .camera import (
@@ -60,9 +60,9 @@ logger = logging.getLogger(__name__)
 
 _MAD_TO_SIGMA = 1.4826
 _BLOCK = 7
-#: the excess over the energy neighbours must be this share of the height over the
-#: lowest pixel within two steps (a Lorentzian 3 pixels wide gives about 0.48)
-_NARROW_SHARE = 0.6
+#: a spike's second difference is this many times that of the pixels beside it (a
+#: Lorentzian 2 pixels wide gives 1.7, one 1.5 pixels wide 2.7)
+_NARROW_RATIO = 2.0
 
 
 def _masked(da: xr.DataArray, values: np.ndarray, key: str, entry, line: str) -> xr.DataArray:
@@ -103,22 +103,44 @@ def _robust_sigma(x: np.ndarray) -> np.ndarray:
 
 
 def _spike_pass(x, protect, threshold, reach, terms):
-    # energy neighbours: masked pixels protect (+inf), the map's edge reflects
+    # energy neighbours: masked pixels and the ends of the axis protect (+inf)
     xe = np.where(protect, np.inf, x)
-    pad = np.pad(xe, ((0, 0), (2, 2)), mode="reflect")
+    pad = np.pad(xe, ((0, 0), (3, 3)), constant_values=np.inf)
     n1 = x.shape[1]
-    l2, l1, r1, r2 = (pad[:, k:k + n1] for k in (0, 1, 3, 4))
+    l3, l2, l1, r1, r2, r3 = (pad[:, k:k + n1] for k in (0, 1, 2, 4, 5, 6))
+    if terms is not None:
+        a, b = terms
+        level = np.where(np.isfinite(np.maximum(l1, r1)), np.maximum(l1, r1), x)
+        sigma = np.sqrt(np.maximum(a * np.clip(level, 0, None) + b, a))
+    else:
+        sigma = _robust_sigma(np.where(protect, np.nan, x))
+    finite = np.isfinite(x)
+    floor = 1e-12 * (np.max(np.abs(x[finite])) if finite.any() else 1.0)
+    limit = threshold * np.maximum(sigma, floor)
     with np.errstate(invalid="ignore"):
-        single = x - np.maximum(l1, r1)
-        pair_r = np.minimum(x, r1) - np.maximum(l1, r2)
-        pair_l = np.minimum(x, l1) - np.maximum(l2, r1)
-        e_exc = np.maximum(single, np.maximum(pair_r, pair_l))
-        low = np.minimum(np.minimum(l1, r1), np.minimum(l2, r2))
-        narrow = e_exc >= _NARROW_SHARE * (x - low)
-    # angle neighbours: brightest pixel within +-reach energy pixels of each row
-    env = maximum_filter1d(xe, size=2 * reach + 1, axis=1, mode="nearest")
-    near = maximum_filter1d(np.where(np.isfinite(x), x, -np.inf), size=3, axis=1,
-                            mode="nearest")
+        # (height, excess over the two pixels beside it, first and second rings)
+        modes = (
+            (x, x - np.maximum(l1, r1), 0.5 * (l1 + r1), 0.5 * (l2 + r2)),
+            (np.minimum(x, r1), np.minimum(x, r1) - np.maximum(l1, r2), 0.5 * (l1 + r2),
+             0.5 * (l2 + r3)),
+            (np.minimum(x, l1), np.minimum(x, l1) - np.maximum(l2, r1), 0.5 * (l2 + r1),
+             0.5 * (l3 + r2)),
+        )
+        energy_ok = np.zeros(x.shape, dtype=bool)
+        for height, excess, ring1, ring2 in modes:
+            narrow = height - ring1 >= _NARROW_RATIO * np.abs(ring1 - ring2)
+            energy_ok |= (excess > limit) & narrow
+    # angle neighbours: the pixels' height over the running median of 5 along energy (a
+    # narrow line keeps about half of its height, a wide line little, a spike all); the
+    # tallest within +-reach energy pixels of each row: a narrow branch continues into the
+    # next rows at a shifted energy, a spike does not
+    with np.errstate(invalid="ignore"):
+        rise = xe - median_filter(np.where(np.isfinite(xe), xe, -np.inf), size=(1, 5),
+                                  mode="nearest")
+    rise = np.where(protect, np.inf, np.where(np.isfinite(x), rise, -np.inf))
+    env = maximum_filter1d(rise, size=2 * reach + 1, axis=1, mode="nearest")
+    near = maximum_filter1d(rise, size=3, axis=1, mode="nearest")
+    x = rise
     u1, d1 = _shift(env, -1, 0, -np.inf), _shift(env, 1, 0, -np.inf)
     u2, d2 = _shift(env, -2, 0, -np.inf), _shift(env, 2, 0, -np.inf)
     pu, pd = _shift(near, -1, 0, -np.inf), _shift(near, 1, 0, -np.inf)
@@ -128,18 +150,7 @@ def _spike_pass(x, protect, threshold, reach, terms):
             np.minimum(x, pd) - np.maximum(u1, d2),
             np.minimum(x, pu) - np.maximum(u2, d1),
         ])
-    if terms is not None:
-        a, b = terms
-        level = np.clip(np.where(np.isfinite(np.maximum(l1, r1)), np.maximum(l1, r1), x), 0,
-                        None)
-        sigma = np.sqrt(np.maximum(a * level + b, a))
-    else:
-        sigma = _robust_sigma(np.where(protect, np.nan, x))
-    finite = np.isfinite(x)
-    floor = 1e-12 * (np.max(np.abs(x[finite])) if finite.any() else 1.0)
-    sigma = np.maximum(sigma, floor)
-    with np.errstate(invalid="ignore"):
-        return finite & narrow & (e_exc > threshold * sigma) & (a_exc > threshold * sigma)
+        return finite & energy_ok & (a_exc > limit)  # noqa: RET504
 
 
 def find_spikes(da: xr.DataArray, *, threshold: float = 8.0, reach: int = 12,
