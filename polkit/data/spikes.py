@@ -12,22 +12,27 @@ Spike test (:func:`find_spikes`)
     tests, each allowing a spike two pixels wide:
 
     * energy: it stands ``threshold`` noise sigmas above both energy neighbours (or, with
-      its brighter neighbour, above the pixels beyond the pair), and that excess is at
-      least 60 % of its height above the lowest pixel within two steps (a line three
-      pixels wide or more fails this);
-    * angle: it stands ``threshold`` sigmas above the brightest pixel within ``reach``
-      energy pixels in both neighbouring angle rows (or, with the brighter of the three
-      nearest pixels of one neighbouring row, above the rows beyond the pair): a branch
-      continues into the next rows at a shifted energy, a spike does not.
+      one neighbour as a pair, above the pixels beyond the pair), and its second difference
+      is at least twice the difference between the first and second rings of neighbours (a
+      Lorentzian line 2 pixels wide or wider fails this; a spike on a smooth slope passes);
+    * angle: its rise over the running median of 5 pixels along energy stands ``threshold``
+      sigmas above the tallest rise within ``reach`` energy pixels in both neighbouring
+      angle rows (or, as a pair with the nearest pixels of one neighbouring row, above the
+      rows beyond the pair): a narrow branch continues into the next rows at a shifted
+      energy, a spike does not, and a wide line keeps little rise and protects nothing.
 
     The noise is the detector model of :func:`~polkit.data.camera.detector_variance_terms`
     at the brighter energy neighbour where the map carries a gain, else a robust local
     scale (1.4826 times the median absolute second difference in 7 x 7 pixel blocks, and
     at least its median over the map).  Pixels masked already protect their neighbours
-    (a spike next to a saturated pixel is kept).  A second pass runs with the spikes of
-    the first removed.  A feature one pixel wide in both directions cannot be told from a
-    spike; a branch narrower than about 2.5 pixels along energy that also moves more than
-    ``reach`` pixels from one angle row to the next would be masked (raise ``reach``).
+    (a spike next to a saturated pixel is kept), and so do the two pixels at each end of
+    the energy axis.  A second pass runs with the spikes of the first removed.  Limits: a
+    feature one pixel wide in both directions cannot be told from a spike; a branch
+    narrower than about 2 pixels along energy that moves more than ``reach`` pixels from
+    one angle row to the next can be masked (raise ``reach``); a spike lower than a
+    narrow line's rise within ``reach`` pixels in the next rows, or than
+    ``threshold`` sigmas, is kept, and two spikes in neighbouring rows within ``reach``
+    pixels can hide each other.
     # common practice, no published source
 """
 
@@ -92,8 +97,9 @@ def _block_median(r: np.ndarray, size: int) -> np.ndarray:
 
 def _robust_sigma(x: np.ndarray) -> np.ndarray:
     """Local noise scale from second differences along energy (robust to spikes)."""
-    r = x - 0.5 * (_shift(x, 0, -1, np.nan) + _shift(x, 0, 1, np.nan))
-    r = np.abs(r) * (_MAD_TO_SIGMA / np.sqrt(1.5))  # var(x - mean of two) = 1.5 var
+    with np.errstate(invalid="ignore"):
+        r = x - 0.5 * (_shift(x, 0, -1, np.nan) + _shift(x, 0, 1, np.nan))
+        r = np.abs(r) * (_MAD_TO_SIGMA / np.sqrt(1.5))  # var(x - mean of two) = 1.5 var
     finite = r[np.isfinite(r)]
     overall = float(np.median(finite)) if finite.size else 0.0
     with warnings.catch_warnings():
