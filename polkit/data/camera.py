@@ -31,7 +31,6 @@ import os
 from dataclasses import dataclass, field
 
 import numpy as np
-import xarray as xr
 
 from ..errors import ConfigError, DataError
 

@@ -9,7 +9,8 @@ Map
     and :data:`MAP_TEXT_ATTRS` (``gain``, ``read_noise``, ``saturation`` in raw counts).
     After the wavelength Jacobian a 1-D coordinate ``jacobian`` along ``energy`` holds the
     factor per pixel and ``raw_units`` the file's units; ``preprocessing`` is JSON text
-    counting what the camera steps masked (:mod:`polkit.data.camera`).  NaN marks ignored pixels only when ``masked == 1``.
+    counting what the camera steps masked (:mod:`polkit.data.camera`).  NaN marks ignored
+    pixels only when ``masked == 1``.
 
 Series
     ``xarray.Dataset``.  A table of per-power results has dim ``power`` (sorted
