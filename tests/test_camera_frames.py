@@ -8,6 +8,7 @@ and no polkit model is imported to make the data.
 from __future__ import annotations
 
 import json
+import warnings
 
 import numpy as np
 import pytest
@@ -27,7 +28,7 @@ from polkit.data import (
     prepare_camera_map,
     validate_map,
 )
-from polkit.errors import ConfigError, DataError, DataWarning
+from polkit.errors import ConfigError, ConvergenceWarning, DataError, DataWarning
 from polkit.extract import peak_table
 
 HC_EV_NM = sc.h * sc.c / sc.e * 1e9  # Source: CODATA via scipy.constants
@@ -313,7 +314,33 @@ def test_inspect_prints_what_the_camera_steps_masked(tmp_path, capsys):
     assert main(["inspect", str(path), "--out", str(tmp_path), "--keep-spikes",
                  "--exclude", "1.46:1.47"]) == 0
     out = capsys.readouterr().out
-    assert "spikes masking switched off" in out
+    assert "spike masking switched off (--keep-spikes)" in out
     e = da["energy"].values
     n_window = 61 * int(((e >= 1.46) & (e <= 1.47)).sum())
     assert f"excluded windows masked: {n_window} pixel(s)" in out
+
+
+def test_dispersion_command_prints_and_records_the_masks(tmp_path, capsys):
+    clean, _ = _steep_map(1)
+    da, truth, _ = _inject(clean, 11)
+    da = da.isel(angle=slice(10, 51, 2))  # a smaller map keeps the fit short
+    path = tmp_path / "spiky.txt"
+    write_matrix(path, da.values.T, da["energy"].values, da["angle"].values,
+                 header="rows: energy [eV]; columns: angle [degree]; signal: counts\n"
+                 "gain: 1; read_noise: 3")
+    n_spikes = int(find_spikes(validate_map(da.assign_attrs(gain=1.0, read_noise=3.0)))[0].sum())
+    kept = truth[10:51:2]
+    assert n_spikes == int(kept.sum()) > 0  # every injected pixel left in the smaller map
+    with warnings.catch_warnings():  # 200 steps are too few for the gate: exit status 3
+        warnings.simplefilter("ignore", ConvergenceWarning)
+        status = main(["dispersion", str(path), "--peaks-only", "--quiet", "--seed", "1",
+                       "--max-steps", "200", "--out", str(tmp_path / "fit"),
+                       "--keep-saturated", "--exclude", "1.52:1.53", "--min-snr", "6"])
+    assert status == 3
+    out = capsys.readouterr().out
+    assert f"cosmic-ray spikes masked: {n_spikes} spike pixel(s)" in out
+    assert "saturation masking switched off (--keep-saturated)" in out
+    prov = json.loads((tmp_path / "fit" / "summary.json").read_text())["provenance"]
+    assert prov["preprocessing"]["spikes"]["spikes"] == n_spikes
+    assert prov["preprocessing"]["excluded"]["windows"] == ["1.52:1.53 eV"]
+    assert prov["peak_min_snr"] == 6.0

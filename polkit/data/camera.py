@@ -354,7 +354,8 @@ def describe_record(rec: dict) -> list[str]:
     if ex is not None:
         lines.append(f"excluded windows masked: {ex.get('pixels', 0)} pixel(s) in "
                      + "; ".join(ex.get("windows", [])))
-    for key in ("saturated", "spikes"):
+    for key, what, option in (("saturated", "saturation", "--keep-saturated"),
+                              ("spikes", "spike", "--keep-spikes")):
         if rec.get(f"{key}_off"):
-            lines.append(f"{key} masking switched off")
+            lines.append(f"{what} masking switched off ({option})")
     return lines
