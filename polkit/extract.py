@@ -24,8 +24,11 @@ more), a reweighted fit, and the covariance from the Jacobian scaled by the resi
 Detection.  A line counts as found when its signal-to-noise ratio ``snr`` reaches ``min_snr``.
 The test pools the pixels a line covers: ``snr`` is the fitted peak height (or dip depth) over
 the noise standard deviation of the mean of the pixels within one FWHM of the centre, i.e. the
-height over the single-pixel noise at the centre times ``sqrt(max(1, FWHM / pixel step))``
-(averaging n pixels divides the noise by sqrt(n)).  A faint line spread over many pixels (a
+height over the single-pixel noise at the centre times ``sqrt(n)``, ``n = FWHM / pixel step``
+clipped to 1..9 (averaging n pixels divides the noise by sqrt(n); the cap keeps broad
+background bumps from passing as lines), and at most the height over its own standard error
+from the fit (which counts the freedom of the centre, width and background); a found line is
+at least 1.5 pixels wide (a narrower one cannot be told from a single bright pixel).  A faint line spread over many pixels (a
 few counts per pixel) is thus found, where a single-pixel test would refuse it.  Candidate
 maxima are found on a copy smoothed by a Gaussian of 1.5 pixels, judged against the noise of
 that smoothed copy.  Fits that fail the test are repeated without the weakest line, so the
@@ -58,6 +61,12 @@ _PROFILES = ("lorentzian", "voigt")
 _ANGLE_DIMS = ("angle", "k")
 _SERIES_DIMS = ("power", "point")
 _SMOOTH_PX = 1.5  # Gaussian smoothing (pixels) used only to find starting guesses
+#: at most this many pixels are pooled in the detection test (a broad bump of background
+#: or a wide spurious line gains no more than a factor 3; common practice, no published source)
+_POOL_MAX_PX = 9.0
+#: a found line is at least this many pixels wide: a narrower one cannot be told from a
+#: single bright pixel (a cosmic ray, a counting-statistics outlier)
+_MIN_FWHM_PX = 1.5
 #: noise sd of the smoothed copy over the single-pixel noise: sqrt(sum of kernel^2)
 _SMOOTH_NOISE = 1.0 / math.sqrt(2.0 * math.sqrt(math.pi) * _SMOOTH_PX)
 _MIN_ENERGIES = 20
@@ -437,8 +446,11 @@ class _LineFitter:
                                 FWHM_PER_SIGMA**2 * sg / root, 0.0])
             level = self.model_jac(fit.p, np.array([c]))[0]
             noise_sd = float(np.sqrt(self.pixel_variance(fit, level))[0])
-            pooled = math.sqrt(max(1.0, float(fwhm) / self.step))  # pixels within one FWHM
+            pooled = math.sqrt(min(max(1.0, float(fwhm) / self.step), _POOL_MAX_PX))
             snr = pooled * height / noise_sd if noise_sd > 0 else float("inf")
+            h_err = _propagate(g_h, cov)  # a fitted height is no surer than its error says
+            if np.isfinite(h_err) and h_err > 0:
+                snr = min(snr, height / h_err)
             var = np.diag(cov)
             out.append(_Line(
                 energy=e_ref + 1e-3 * c,
@@ -530,7 +542,8 @@ def _fit_lines(fitter: _LineFitter, seeds: list[np.ndarray], b0: float, e_ref: f
         for i, line in lines.items():
             tried[i] = line.snr
         bad = [i for i, line in lines.items()
-               if not (line.ok and line.snr >= min_snr and line.fwhm < 0.999 * fitter.span)]
+               if not (line.ok and line.snr >= min_snr and line.fwhm < 0.999 * fitter.span
+                       and line.fwhm >= _MIN_FWHM_PX * fitter.step)]
         if not bad:
             bad = _duplicates(lines, seeds)
         if not bad:
@@ -864,7 +877,8 @@ def _assemble_table(da, adim, tracks, per_angle, n_peaks, profile, noise, path, 
         "amplitude_error": (signal_units, "standard error of the amplitude"),
         "area": (f"{signal_units} meV", "integrated line area"),
         "area_error": (f"{signal_units} meV", "standard error of the area"),
-        "snr": ("1", "amplitude over the noise of the mean of the pixels within one FWHM"),
+        "snr": ("1", "amplitude over the noise of the mean of the pixels within one FWHM, at "
+                "most amplitude over its standard error"),
         "fwhm_lorentzian": ("meV", "FWHM of the Lorentzian part"),
         "fwhm_lorentzian_error": ("meV", "standard error of fwhm_lorentzian"),
         "sigma_gaussian": ("meV", "standard deviation of the Gaussian part"),
@@ -1100,7 +1114,8 @@ def _assemble_series(cube, da, info, out, found, profile, noise, kind, min_snr, 
         "amplitude_error": (units, "standard error of amplitude"),
         "area": (f"{units} meV", "line area"), "area_error": (f"{units} meV", "error of area"),
         "background": (units, "constant background per pixel"),
-        "snr": ("1", "amplitude over the noise of the mean of the pixels within one FWHM"),
+        "snr": ("1", "amplitude over the noise of the mean of the pixels within one FWHM, at "
+                "most amplitude over its standard error"),
         "reduced_chi2": ("1", "chi-square per degree of freedom (NaN when the noise was "
                          "learnt from the residuals)"),
         "fwhm_lorentzian": ("meV", "FWHM of the Lorentzian part"),

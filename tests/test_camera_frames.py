@@ -259,12 +259,24 @@ def test_fifteen_counts_at_the_branch_peak_give_a_peak_table(seed):
     da, lp = _faint_map(seed)
     table = peak_table(da, n_peaks=2)
     found = table["found"].values[:, 0] == 1
-    assert found.sum() >= 35  # of 41 angles
+    assert found.sum() >= 30  # of 41 angles
     z = (table["energy"].values[found, 0] - lp[found]) / table["energy_error"].values[found, 0]
     # never confidently wrong: the errors cover the truth (Gaussian: 95 % within 2 sigma)
     assert np.mean(np.abs(z) < 3.0) >= 0.9
     with pytest.raises(DataError, match="--min-snr"):
         peak_table(da, n_peaks=2, min_snr=500.0)
+
+
+@pytest.mark.parametrize("gain", [True, False])
+def test_counting_noise_alone_gives_no_peak_table(gain):
+    # never confidently wrong: 3 counts of Poisson background and no line at all must be
+    # refused, not turned into a branch (common practice, no published source)
+    angle, energy = np.linspace(-20.0, 20.0, 41), np.linspace(1.55, 1.65, 200)
+    for seed in range(5):
+        counts = np.random.default_rng(seed).poisson(3.0, (41, 200)).astype(float)
+        attrs = {"gain": 1.0, "read_noise": 0.5} if gain else {}
+        with pytest.raises(DataError, match="no branch visible"):
+            peak_table(_map(counts, angle, energy, **attrs), n_peaks=2)
 
 
 # ----------------------------------------------------------------------------- windows
