@@ -11,8 +11,9 @@ Every spectrum is fitted by :func:`scipy.optimize.least_squares` with a constant
 plus Lorentzian or Voigt lines (:mod:`polkit.models.lineshapes`).  Internally energies are in
 meV from a reference energy, which keeps the problem well scaled.
 
-Noise model.  When the data are in counts and carry ``gain`` (electrons per count) and
-optionally ``read_noise`` (counts) in their attrs, the variance of a pixel is
+Noise model.  When the data are in raw counts and carry ``gain`` (electrons per count) and
+optionally ``read_noise`` (counts) in their attrs (a Jacobian-scaled map, ``counts nm/eV``, is
+treated as without them: its noise is learnt), the variance of a pixel is
 ``counts / gain + read_noise**2`` (CCD counting statistics), evaluated first on a smoothed copy
 of the data and then on the fitted model (one reweighting step); the reported errors come from
 the weighted Jacobian without rescaling and ``reduced_chi2`` tells how well the model and the
@@ -25,14 +26,15 @@ Detection.  A line counts as found when its signal-to-noise ratio ``snr`` reache
 The test pools the pixels a line covers: ``snr`` is the fitted peak height (or dip depth) over
 the noise standard deviation of the mean of the pixels within one FWHM of the centre, i.e. the
 height over the single-pixel noise at the centre times ``sqrt(n)``, ``n = FWHM / pixel step``
-clipped to 1..9 (averaging n pixels divides the noise by sqrt(n); the cap keeps broad
-background bumps from passing as lines), and at most the height over its own standard error
-from the fit (which counts the freedom of the centre, width and background); a found line is
-at least 1.5 pixels wide (a narrower one cannot be told from a single bright pixel).  A faint line spread over many pixels (a
-few counts per pixel) is thus found, where a single-pixel test would refuse it.  Candidate
-maxima are found on a copy smoothed by a Gaussian of 1.5 pixels, judged against the noise of
-that smoothed copy.  Fits that fail the test are repeated without the weakest line, so the
-reported lines are never distorted by a spurious one.  # common practice, no published source
+clipped to 1..9 (averaging n pixels divides the noise by sqrt(n); the cap keeps broad background
+bumps from passing as lines), and at most the height over its own standard error from the fit
+(which counts the freedom of the centre, width and background); a found line is at least 1.5
+pixels wide (a narrower one cannot be told from a single bright pixel).  A faint line spread
+over many pixels (a few counts per pixel) is thus found, where a single-pixel test would refuse
+it.  Candidate maxima are found on a copy smoothed by a Gaussian of 1.5 pixels, judged against
+the noise of that smoothed copy.  Fits that fail the test are repeated without the weakest line,
+so the reported lines are never distorted by a spurious one.
+# common practice, no published source
 """
 
 from __future__ import annotations

@@ -162,7 +162,9 @@ class CameraOptions:
             if isinstance(value, bool) or not isinstance(value, (int, float)) or not (
                 math.isfinite(value) and value > 0
             ):
-                raise ConfigError(f"expected a positive number; found {value!r}", key=name)
+                flag = " (--min-snr)" if name == "min_snr" else ""
+                raise ConfigError(f"expected a positive number; found {value!r}",
+                                  key=name + flag)
         if self.dark is not None and not isinstance(self.dark, (int, float, str, os.PathLike)):
             raise ConfigError(
                 f"expected a dark level in counts or a dark-frame file; found {self.dark!r}",

@@ -7,6 +7,8 @@ per pixel becomes the ``jacobian`` coordinate.
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import numpy as np
 import xarray as xr
 
@@ -71,6 +73,13 @@ def _dark_frame(dark, var: xr.DataArray, *, path) -> np.ndarray:
     """A dark-frame file's raw values, checked against the map's raw axes."""
     from .registry import read_raw
 
+    if not Path(dark).is_file():
+        raise DataError(
+            "expected a dark-frame file (--dark FILE, or a number of counts: --dark 100); "
+            "found nothing at this path. Fix: check the path",
+            path=dark,
+            field="dark",
+        )
     raw_d, _ = read_raw(dark, None)
     name = _assemble().find_signal(raw_d, path=dark)
     d = raw_d[name]
