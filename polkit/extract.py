@@ -28,8 +28,7 @@ the noise standard deviation of the mean of the pixels within one FWHM of the ce
 height over the single-pixel noise at the centre times ``sqrt(n)``, ``n = FWHM / pixel step``
 clipped to 1..9 (averaging n pixels divides the noise by sqrt(n); the cap keeps broad background
 bumps from passing as lines), and at most the height over its own standard error from the fit
-(which counts the freedom of the centre, width and background); a found line is at least 1.5
-pixels wide (a narrower one cannot be told from a single bright pixel).  A faint line spread
+(which counts the freedom of the centre, width and background).  A faint line spread
 over many pixels (a few counts per pixel) is thus found, where a single-pixel test would refuse
 it.  Candidate maxima are found on a copy smoothed by a Gaussian of 1.5 pixels, judged against
 the noise of that smoothed copy.  Fits that fail the test are repeated without the weakest line,
@@ -66,9 +65,6 @@ _SMOOTH_PX = 1.5  # Gaussian smoothing (pixels) used only to find starting guess
 #: at most this many pixels are pooled in the detection test (a broad bump of background
 #: or a wide spurious line gains no more than a factor 3; common practice, no published source)
 _POOL_MAX_PX = 9.0
-#: a found line is at least this many pixels wide: a narrower one cannot be told from a
-#: single bright pixel (a cosmic ray, a counting-statistics outlier)
-_MIN_FWHM_PX = 1.5
 #: noise sd of the smoothed copy over the single-pixel noise: sqrt(sum of kernel^2)
 _SMOOTH_NOISE = 1.0 / math.sqrt(2.0 * math.sqrt(math.pi) * _SMOOTH_PX)
 _MIN_ENERGIES = 20
@@ -544,8 +540,7 @@ def _fit_lines(fitter: _LineFitter, seeds: list[np.ndarray], b0: float, e_ref: f
         for i, line in lines.items():
             tried[i] = line.snr
         bad = [i for i, line in lines.items()
-               if not (line.ok and line.snr >= min_snr and line.fwhm < 0.999 * fitter.span
-                       and line.fwhm >= _MIN_FWHM_PX * fitter.step)]
+               if not (line.ok and line.snr >= min_snr and line.fwhm < 0.999 * fitter.span)]
         if not bad:
             bad = _duplicates(lines, seeds)
         if not bad:
