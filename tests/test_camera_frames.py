@@ -144,6 +144,7 @@ def test_dark_frame_and_level_options_subtract_in_raw_counts(tmp_path):
 
 
 def test_saturation_is_judged_on_raw_counts_before_the_offset(tmp_path):
+    # common practice, no published source: the full well is a level of the raw counts
     lam, angle, photons = _wavelength_frame()
     raw = np.minimum(photons * 40.0 + 100.0, 60000.0)  # declared full well 60000 counts
     path = tmp_path / "sat.txt"
@@ -157,6 +158,7 @@ def test_saturation_is_judged_on_raw_counts_before_the_offset(tmp_path):
 
 
 def test_full_scale_and_flat_tops_are_masked(tmp_path):
+    # Source: an n-bit converter saturates at 2**n - 1 (value from memory for 16 bits: 65535)
     lam, angle, photons = _wavelength_frame()
     adc = np.minimum(np.round(photons * 50.0 + 200.0), 65535.0)  # 16-bit converter
     write_matrix(tmp_path / "adc.txt", adc, lam, angle, header=HEADER)
@@ -228,6 +230,7 @@ def test_spike_finder_leaves_a_steep_narrow_branch_alone(seed, gain):
 @pytest.mark.parametrize("gain", [True, False])
 @pytest.mark.parametrize("seed", [1, 5])
 def test_spike_finder_masks_ten_injected_spikes(seed, gain):
+    # common practice, no published source: a cosmic ray lights one or two pixels
     clean, _ = _steep_map(seed, gain=gain)
     da, truth, main_pixels = _inject(clean, seed + 10)
     spikes, _ = find_spikes(da)
@@ -281,6 +284,7 @@ def test_counting_noise_alone_gives_no_peak_table(gain):
 
 # ----------------------------------------------------------------------------- windows
 def test_exclude_windows_parse_and_mask():
+    # common practice, no published source: the window's pixels are counted here directly
     w = parse_exclude("1.60:1.62@-5:5")
     assert w.energy == (1.60, 1.62) and w.angle == (-5.0, 5.0)
     assert parse_exclude("1.6:1.61").angle is None
@@ -299,6 +303,7 @@ def test_exclude_windows_parse_and_mask():
 
 
 def test_camera_options_in_one_object():
+    # common practice, no published source
     da, _ = _faint_map(4)
     out = prepare_camera_map(da, CameraOptions(mask_spikes=False, exclude=("1.56:1.57",)))
     rec = json.loads(out.attrs["preprocessing"])
@@ -312,6 +317,7 @@ def test_camera_options_in_one_object():
 
 # ----------------------------------------------------------------------------- the CLI
 def test_inspect_prints_what_the_camera_steps_masked(tmp_path, capsys):
+    # common practice, no published source: the counts printed are those injected here
     clean, _ = _steep_map(1)
     da, truth, main_pixels = _inject(clean, 11)
     path = tmp_path / "spiky.txt"
@@ -333,6 +339,7 @@ def test_inspect_prints_what_the_camera_steps_masked(tmp_path, capsys):
 
 
 def test_dispersion_command_prints_and_records_the_masks(tmp_path, capsys):
+    # common practice, no published source
     clean, _ = _steep_map(1)
     da, truth, _ = _inject(clean, 11)
     da = da.isel(angle=slice(10, 51, 2))  # a smaller map keeps the fit short
