@@ -42,6 +42,33 @@ def _add_common_fit_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--quiet", action="store_true", help="no progress bar")
 
 
+def _add_camera_options(p: argparse.ArgumentParser, *, detection: bool) -> None:
+    """Options of the camera steps (offset, saturation, spikes, excluded windows)."""
+    p.add_argument("--dark", default=None, metavar="COUNTS|FILE",
+                   help="camera offset subtracted in raw counts before unit conversion: a "
+                   "number of counts or a dark-frame file on the same axes (default: the "
+                   "file's camera_offset/dark attribute)")
+    p.add_argument("--keep-saturated", action="store_true",
+                   help="do not mask saturated (clipped) pixels")
+    p.add_argument("--keep-spikes", action="store_true",
+                   help="do not mask cosmic-ray spikes")
+    p.add_argument("--exclude", action="append", default=[], metavar="E1:E2[@A1:A2]",
+                   help="mask a window that holds no polariton line: energies in eV, "
+                   "optionally angles (degree, or 1/um for k); repeatable")
+    if detection:
+        p.add_argument("--min-snr", type=float, default=5.0,
+                       help="peak-table detection threshold: line height over the noise of "
+                       "the mean over one linewidth (default 5)")
+
+
+def _camera(args):
+    from .data import CameraOptions
+
+    return CameraOptions.from_text(
+        args.dark, mask_saturated=not args.keep_saturated, mask_spikes=not args.keep_spikes,
+        exclude=tuple(args.exclude), **({"min_snr": args.min_snr} if "min_snr" in args else {}))
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="polkit",
@@ -70,6 +97,7 @@ def build_parser() -> argparse.ArgumentParser:
     )
     p.add_argument("--out", type=Path, default=Path("polkit-out") / "inspect")
     p.add_argument("--wavelength-medium", choices=["vacuum", "air"], default=None)
+    _add_camera_options(p, detection=False)
 
     p = sub.add_parser("dispersion", help="fit a coupled-oscillator model to an angle-resolved map")
     p.add_argument("map", type=Path)
@@ -80,6 +108,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--priors", type=Path, default=None, help="TOML file of priors")
     p.add_argument("--strict", action="store_true", help="4 ensembles, nested R-hat gate")
     p.add_argument("--wavelength-medium", choices=["vacuum", "air"], default=None)
+    _add_camera_options(p, detection=True)
     _add_common_fit_options(p)
 
     p = sub.add_parser("compare", help="rank weak coupling, two and three oscillators on a map "
@@ -278,7 +307,7 @@ def _cmd_inspect(args) -> int:
 
     png = args.png or (args.out / (args.file.name + ".png"))
     opts = {} if args.wavelength_medium is None else {"wavelength_medium": args.wavelength_medium}
-    print(inspect_file(args.file, png=png, **opts))
+    print(inspect_file(args.file, png=png, camera=_camera(args), **opts))
     return EXIT_OK
 
 
@@ -307,11 +336,16 @@ def _cmd_dispersion(args) -> int:
             **_fit_options(args, out),
             wavelength_medium=args.wavelength_medium,
             figures=False,
+            camera=_camera(args),
         )
         result.figures(out, corner_process=corner_process)
     finally:
         if corner_process is not None:
             corner_process.close()
+    from .data.camera import describe_record
+
+    for line in describe_record(result.provenance.get("preprocessing", {})):
+        print(line)
     print(result.table())
     failed = _print_model_check(result.model_check)
     print(f"results written to {out}")

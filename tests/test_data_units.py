@@ -8,7 +8,7 @@ import scipy.constants as sc
 from data_helpers import write_matrix
 from scipy.integrate import trapezoid
 
-from polkit.data import load_map, make_map
+from polkit.data import detector_variance_terms, load_map, make_map
 from polkit.data import units as U
 from polkit.errors import DataError
 
@@ -91,7 +91,7 @@ def test_jacobian_end_to_end_through_a_matrix_file(tmp_path):
 def test_noise_attributes_follow_the_jacobian(tmp_path):
     # simulated data with known truth: Poisson electrons (gain 2 e/count) plus 4 counts
     # read noise on a flat level, recorded on a wavelength grid; after the Jacobian the
-    # variance of each energy column must match the CCD model with the rescaled attributes
+    # variance of each energy column must match the CCD model with J per pixel
     # Source: var(J c) = J^2 var(c) for a constant J (propagation of variance)
     rng = np.random.default_rng(21)
     lam = np.linspace(840.0, 850.0, 40)
@@ -109,14 +109,18 @@ def test_noise_attributes_follow_the_jacobian(tmp_path):
         "gain: 2; read_noise: 4; saturation: 60000",
     )
     m = load_map(path)
-    j_med = np.median(lam**2 / HC_EV_NM_CODATA)  # nm/eV, CODATA hc
-    assert m.attrs["gain"] == pytest.approx(2.0 / j_med, rel=1e-9)
-    assert m.attrs["read_noise"] == pytest.approx(4.0 * j_med, rel=1e-9)
-    assert m.attrs["saturation"] == pytest.approx(60000.0 * j_med, rel=1e-9)
-    model = m.mean("angle").values / m.attrs["gain"] + m.attrs["read_noise"] ** 2
+    # the attributes stay in raw counts; the factor per pixel is the jacobian coordinate
+    assert m.attrs["gain"] == 2.0
+    assert m.attrs["read_noise"] == 4.0
+    assert m.attrs["saturation"] == 60000.0
+    assert m.attrs["raw_units"] == "counts"
+    jac = lam[::-1] ** 2 / HC_EV_NM_CODATA  # nm/eV, CODATA hc; energy ascending
+    np.testing.assert_allclose(m["jacobian"].values, jac, rtol=1e-9)
+    assert m["jacobian"].attrs["units"] == "nm/eV"
+    a, b = detector_variance_terms(m)
+    model = (a * m.mean("angle").values + b).ravel()
     measured = m.var("angle").values
-    # 4000 samples per column: the sample variance scatters by sqrt(2/4000) ~ 2.2 %;
-    # J differs from its median by at most 1.2 % over 840-850 nm
+    # 4000 samples per column: the sample variance scatters by sqrt(2/4000) ~ 2.2 %
     assert measured == pytest.approx(model, rel=0.1)
     assert np.mean(measured / model) == pytest.approx(1.0, abs=0.01)
 

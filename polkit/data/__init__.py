@@ -28,6 +28,7 @@ import xarray as xr
 
 from .assemble import raw_to_map
 from .build import make_map, make_series
+from .camera import CameraOptions, ExcludeWindow, detector_variance_terms, parse_exclude
 from .fourier import find_pupil_edges, pixel_to_angle, sin_theta_from_pixel, to_k, wavevector
 from .inspect import inspect_file
 from .preprocess import (
@@ -43,6 +44,7 @@ from .preprocess import (
 )
 from .registry import READERS, choose_reader, read_raw
 from .series import raw_to_series
+from .spikes import find_spikes, mask_saturated_map, mask_spikes, mask_windows, prepare_camera_map
 from .units import air_to_vacuum_nm, refractive_index_air, vacuum_to_air_nm
 from .validate import validate_map, validate_series
 
@@ -54,6 +56,15 @@ __all__ = [
     "make_map",
     "make_series",
     "inspect_file",
+    "CameraOptions",
+    "ExcludeWindow",
+    "parse_exclude",
+    "detector_variance_terms",
+    "prepare_camera_map",
+    "mask_spikes",
+    "mask_windows",
+    "find_spikes",
+    "mask_saturated_map",
     "crop",
     "subtract_dark",
     "subtract_background",
@@ -89,6 +100,8 @@ def load_map(
     signal_units: str | None = None,
     variable: str | None = None,
     wavelength_jacobian: bool = True,
+    dark=None,
+    mask_saturated: bool = False,
     **reader_options,
 ) -> xr.DataArray:
     """Load an angle-resolved map into the canonical form.
@@ -120,7 +133,16 @@ def load_map(
         Name of the signal variable when the file holds several.
     wavelength_jacobian
         Scale emission densities on a wavelength axis by |d lambda / d E| (default);
-        ``False`` keeps the file's values.
+        ``False`` keeps the file's values.  The factor per pixel is kept as the
+        coordinate ``jacobian``; ``gain``, ``read_noise`` and ``saturation`` stay in raw
+        counts (see :func:`polkit.data.camera.detector_variance_terms`).
+    dark
+        Camera offset subtracted from the raw counts before any conversion: a number
+        (counts) or a dark-frame file on the same raw axes.  Default: the file's
+        ``camera_offset`` (or ``dark``) attribute, if any.
+    mask_saturated
+        Mask clipped pixels found on the raw counts (declared ``saturation``, converter
+        full scale, flat tops; :func:`polkit.data.camera.find_saturated_raw`).
     **reader_options
         Options of the chosen reader (matrix: ``rows``, ``columns``; csv:
         ``delimiter``).
@@ -128,7 +150,8 @@ def load_map(
     Returns
     -------
     xarray.DataArray
-        A validated canonical map.
+        A validated canonical map; the camera steps are counted in
+        ``attrs["preprocessing"]`` (JSON text).
 
     Raises
     ------
@@ -151,6 +174,8 @@ def load_map(
         wavelength_jacobian=wavelength_jacobian,
         variable=variable,
         signal_units=signal_units,
+        dark=dark,
+        mask_saturated=mask_saturated,
     )
 
 

@@ -17,13 +17,21 @@ Spectral densities
     ``"<units> nm/eV"`` (or ``".../eV"`` when the file said ``".../nm"``) and the
     attribute ``jacobian`` records the factor; the raw per-bin counts are
     ``signal * E**2 / hc`` (vacuum).  Reflectance and transmission are ratios and are
-    never scaled.  Linear relabellings (meV, 1/cm) change no values.  The CCD noise
-    attributes follow the signal: a raw count c becomes s = J c, so
-    var(s) = J s / gain + (J read_noise)^2, and ``gain``, ``read_noise`` and
-    ``saturation`` are rescaled with the median J of the axis (J changes by a few per
-    cent over a typical window; the spread is written into the ``jacobian`` attribute).
-    ``wavelength_jacobian=False`` keeps the file's values (for noise models that need
-    raw counts).
+    never scaled.  Linear relabellings (meV, 1/cm) change no values.  The factor per
+    pixel is kept as the 1-D coordinate ``jacobian`` along ``energy`` (units e.g.
+    ``nm/eV``) and ``attrs["raw_units"]`` names the file's units (e.g. ``counts``);
+    ``gain``, ``read_noise`` and ``saturation`` stay in raw counts.  A raw count c
+    becomes s = J c, so var(s) = J s / gain + (J read_noise)^2
+    (:func:`polkit.data.camera.detector_variance_terms`).
+    ``wavelength_jacobian=False`` keeps the file's values.
+
+Camera offset and saturation (:mod:`polkit.data.camera`)
+    A declared camera offset (``dark=`` a number of counts or a dark-frame file on the
+    same raw axes, else the file's ``camera_offset`` or ``dark`` attribute) is subtracted
+    from the raw counts before any conversion, and ``attrs["offset_subtracted"]`` records
+    it (a file that carries it is not corrected again).  With ``mask_saturated`` the
+    clipped pixels are found on the raw counts before the offset and masked (NaN,
+    ``masked = 1``).  Both are written to ``attrs["preprocessing"]`` (JSON text).
 """
 
 from __future__ import annotations
@@ -37,6 +45,7 @@ import xarray as xr
 
 from ..errors import DataError, DataWarning
 from . import units as U
+from .camera_raw import camera_step, jacobian_coord, record_lines
 from .fourier import calibrate_pixel_axis
 from .roles import SIGNAL_NAMES, axis_role
 from .schema import (
@@ -295,9 +304,14 @@ def _resolve_roles(raw, dims, *, allowed: list[set[str]], energy_units, angle_un
 
 
 def _convert_grid(
-    raw, sig_name, *, allowed, path, kind, medium, energy_units, angle_units, fourier, jacobian
+    raw, sig_name, *, allowed, path, kind, medium, energy_units, angle_units, fourier, jacobian,
+    raw_step=None,
 ):
-    """Convert a signal on (spectral, angle/k/pixel[, power]) axes; return pieces in order."""
+    """Convert a signal on (spectral, angle/k/pixel[, power]) axes; return pieces in order.
+
+    ``raw_step(signal, var, spectral_axis)`` (optional) works on the raw values in the
+    file's own axes before any conversion and returns the values to convert.
+    """
     var = raw[sig_name]
     for d in var.dims:
         if (
@@ -310,6 +324,9 @@ def _convert_grid(
         raw, dims, allowed=allowed, energy_units=energy_units, angle_units=angle_units, path=path
     )
     signal = _float_signal(var.values, path=path, field=sig_name)
+    if raw_step is not None:
+        spectral = [i for i, d in enumerate(dims) if roles[d] == "spectral"][0]
+        signal = raw_step(signal, var, spectral)
     sig_units = var.attrs.get("units")
     history = []
     extra_attrs = {}
@@ -338,13 +355,17 @@ def _convert_grid(
                     shape[axis] = -1
                     signal = signal * jac.reshape(shape)
                     if isinstance(sig_units, str) and sig_units.strip():
+                        extra_attrs["raw_units"] = sig_units.strip()
                         sig_units = _density_units(sig_units.strip(), u)
                     extra_attrs["jacobian"] = (
                         f"signal multiplied by |d lambda/d E| in {u}/eV "
-                        "(lambda^2/hc in vacuum) to keep its integral"
+                        "(lambda^2/hc in vacuum) to keep its integral; the factor per pixel is "
+                        "the coordinate 'jacobian'; gain, read_noise and saturation stay in raw "
+                        "counts"
                     )
                     step += ", density scaled by |d lambda/d E|"
-                    extra_attrs["_jacobian_values"] = jac
+                    extra_attrs["_jacobian_values"] = np.asarray(jac, dtype=float)
+                    extra_attrs["_jacobian_units"] = f"{u}/eV"
             if quantity != "energy" or factor != 1.0:
                 history.append(step)
             coords["energy"] = energy
@@ -386,6 +407,8 @@ def _convert_grid(
         if c.size > 1 and np.all(np.diff(c) < 0):
             coords[name] = c[::-1]
             signal = np.flip(signal, axis=axis)
+            if name == "energy" and "_jacobian_values" in extra_attrs:
+                extra_attrs["_jacobian_values"] = extra_attrs["_jacobian_values"][::-1]
     return signal, order, coords, sig_units, extra_attrs, history
 
 
@@ -403,37 +426,12 @@ def _apply_signal_units(raw, sig_name, signal_units, *, path) -> None:
     raw[sig_name].attrs["units"] = signal_units
 
 
-def _rescale_noise_attrs(attrs: dict, extra: dict) -> list[str]:
-    """Express gain, read noise and saturation in the units of a Jacobian-scaled signal.
-
-    A pixel's raw count c becomes s = J c, so var(s) = J s / gain + (J read_noise)^2:
-    the same CCD model with gain / J and read_noise * J.  J varies slowly over a map
-    window; its median is used, and the spread is stated.
-    """
-    jac = extra.pop("_jacobian_values", None)
-    if jac is None:
-        return []
-    present = [k for k in ("gain", "read_noise", "saturation") if k in attrs]
-    if not present:
-        return []
-    j_med = float(np.median(jac))
-    spread = float(jac.max() / jac.min() - 1.0)
-    if "gain" in attrs:
-        attrs["gain"] = attrs["gain"] / j_med
-    for key in ("read_noise", "saturation"):
-        if key in attrs:
-            attrs[key] = attrs[key] * j_med
-    note = (
-        f"{', '.join(present)} rescaled to the Jacobian-scaled signal with the median "
-        f"|d lambda/d E| = {j_med:.6g} (it varies by {100 * spread:.2g} % over the axis)"
-    )
-    attrs["jacobian"] = f"{attrs['jacobian']}; {note}"
-    return [note]
-
-
-def _mask(values: np.ndarray, mask_nonfinite: bool, *, path, field) -> tuple[np.ndarray, int]:
+def _mask(
+    values: np.ndarray, mask_nonfinite: bool, *, path, field, n_masked: int = 0
+) -> tuple[np.ndarray, int]:
+    """Mask non-finite values on request; ``n_masked`` NaN were set by the loader itself."""
     bad = ~np.isfinite(values)
-    n_bad = int(np.count_nonzero(bad))
+    n_bad = int(np.count_nonzero(bad)) - n_masked
     if n_bad and mask_nonfinite:
         values = values.copy()
         values[bad] = np.nan
@@ -456,6 +454,8 @@ def raw_to_map(
     wavelength_jacobian: bool = True,
     variable: str | None = None,
     signal_units: str | None = None,
+    dark=None,
+    mask_saturated: bool = False,
 ) -> xr.DataArray:
     """Build and validate a canonical map from a raw dataset (see :func:`polkit.data.load_map`)."""
     if raw_content(raw) == "table" and variable is None:
@@ -467,6 +467,7 @@ def raw_to_map(
         )
     sig_name = find_signal(raw, variable=variable, path=path)
     _apply_signal_units(raw, sig_name, signal_units, path=path)
+    record: dict = {}
     medium = _choose_medium(wavelength_medium, raw.attrs, path=path)
     kind_ = _choose_kind(kind, {**raw.attrs, **raw[sig_name].attrs}, sig_name, path=path)
     signal, order, coords, sig_units, extra, history = _convert_grid(
@@ -480,16 +481,19 @@ def raw_to_map(
         angle_units=angle_units,
         fourier=fourier,
         jacobian=wavelength_jacobian,
+        raw_step=camera_step(raw.attrs, dark=dark, mask_saturated=mask_saturated, path=path,
+                              record=record),
     )
     attrs = _carried(raw.attrs, raw[sig_name].attrs, path=path)
-    signal, n_bad = _mask(signal, mask_nonfinite, path=path, field=sig_name)
+    n_sat = int(record.get("saturated", {}).get("pixels", 0))
+    signal, n_bad = _mask(signal, mask_nonfinite, path=path, field=sig_name, n_masked=n_sat)
     attrs.update(extra)
-    history += _rescale_noise_attrs(attrs, extra)
-    attrs.pop("_jacobian_values", None)
+    jac_coord = jacobian_coord(attrs)
     attrs.update({"units": sig_units, "kind": kind_, "source": str(path)})
-    if n_bad and mask_nonfinite:
+    if (n_bad and mask_nonfinite) or n_sat:
         attrs["masked"] = 1
     attrs.setdefault("masked", 0)
+    history += record_lines(attrs, record)
     attrs = append_history(
         attrs, f"loaded {path} ({reader} reader): " + "; ".join(history or ["no conversion"])
     )
@@ -497,7 +501,7 @@ def raw_to_map(
     da = xr.DataArray(
         signal,
         dims=tuple(order),
-        coords={n: (n, coords[n], dict(COORD_ATTRS[n])) for n in order},
+        coords={**{n: (n, coords[n], dict(COORD_ATTRS[n])) for n in order}, **jac_coord},
         attrs=attrs,
         name="signal",
     )
@@ -523,6 +527,7 @@ def cube_to_series(
     sig_name = find_signal(raw, variable=variable, path=path)
     _apply_signal_units(raw, sig_name, signal_units, path=path)
     kind_ = _choose_kind(None, {**raw.attrs, **raw[sig_name].attrs}, sig_name, path=path)
+    record: dict = {}
     signal, order, coords, sig_units, extra, history = _convert_grid(
         raw,
         sig_name,
@@ -534,6 +539,8 @@ def cube_to_series(
         angle_units=angle_units,
         fourier=fourier,
         jacobian=jacobian,
+        raw_step=camera_step(raw.attrs, dark=None, mask_saturated=False, path=path,
+                              record=record),
     )
     if not isinstance(sig_units, str) or not sig_units.strip():
         raise DataError(
@@ -544,16 +551,16 @@ def cube_to_series(
     attrs = _carried(raw.attrs, raw[sig_name].attrs, path=path)
     signal, n_bad = _mask(signal, mask_nonfinite, path=path, field=sig_name)
     attrs.update(extra)
-    history += _rescale_noise_attrs(attrs, extra)
-    attrs.pop("_jacobian_values", None)
+    jac_coord = jacobian_coord(attrs)
     attrs.update({"kind": kind_, "source": str(path)})
     attrs["masked"] = 1 if (n_bad and mask_nonfinite) else int(attrs.get("masked", 0))
+    history += record_lines(attrs, record)
     attrs = append_history(
         attrs, f"loaded {path} ({reader} reader): " + "; ".join(history or ["no conversion"])
     )
     ds = xr.Dataset(
         {"intensity": (tuple(order), signal, {"units": sig_units.strip()})},
-        coords={n: (n, coords[n], dict(COORD_ATTRS[n])) for n in order},
+        coords={**{n: (n, coords[n], dict(COORD_ATTRS[n])) for n in order}, **jac_coord},
         attrs=attrs,
     )
     return validate_series(ds, path=path)

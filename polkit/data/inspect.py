@@ -9,6 +9,7 @@ import numpy as np
 import xarray as xr
 
 from ..io import save_figure
+from .camera import describe_record, preprocessing_record
 from .schema import MAP_NUMBER_ATTRS
 
 __all__ = ["inspect_file", "describe"]
@@ -37,7 +38,7 @@ def _axis_line(da_or_ds, dim: str) -> str:
     return line
 
 
-def _attr_lines(attrs: dict, skip=("history", "units", "source")) -> list[str]:
+def _attr_lines(attrs: dict, skip=("history", "units", "source", "preprocessing")) -> list[str]:
     lines = []
     for key in sorted(attrs):
         if key in skip:
@@ -88,6 +89,14 @@ def describe(obj: xr.DataArray | xr.Dataset) -> list[str]:
             lines.append(
                 f"variable {name} [{var.attrs.get('units', '')}]: {_range(var.values, '')}"
             )
+    if "jacobian" in obj.coords:
+        j = obj["jacobian"]
+        lines.append(f"  jacobian (per energy): {_range(j.values, j.attrs.get('units', ''))}; "
+                     f"raw units {obj.attrs.get('raw_units', '?')}")
+    rec = preprocessing_record(obj)
+    if rec:
+        lines.append("camera steps:")
+        lines += [f"  {line}" for line in describe_record(rec)]
     attr_lines = _attr_lines(dict(obj.attrs))
     if attr_lines:
         lines.append("attributes:")
@@ -140,7 +149,7 @@ def _figure(obj):
     return fig
 
 
-def inspect_file(path, *, png=None, **load_options) -> str:
+def inspect_file(path, *, png=None, camera=None, **load_options) -> str:
     """Describe a data file: kind, dims, ranges, units, attributes and warnings.
 
     Parameters
@@ -150,6 +159,9 @@ def inspect_file(path, *, png=None, **load_options) -> str:
     png
         When given, a quick-look figure is written there atomically: the map as
         angle vs energy (pcolormesh), or the series as intensity vs power (log-log).
+    camera
+        A :class:`polkit.data.CameraOptions`: for a map, apply the camera steps (offset,
+        saturation, spikes, excluded windows) and print what they masked.
     **load_options
         Passed to the loader (``energy_units=``, ``fourier=`` ...).
 
@@ -175,7 +187,14 @@ def inspect_file(path, *, png=None, **load_options) -> str:
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         if content == "map":
+            if camera is not None:
+                load_options.setdefault("dark", camera.dark)
+                load_options.setdefault("mask_saturated", camera.mask_saturated)
             obj = load_map(path, reader=reader, **load_options, **reader_options)
+            if camera is not None:
+                from .spikes import prepare_camera_map
+
+                obj = prepare_camera_map(obj, camera)
         else:
             obj = load_series(path, reader=reader, **load_options, **reader_options)
     lines = [f"file: {path}", f"reader: {reader}"]

@@ -18,15 +18,18 @@ Cosmic-ray test
     direction the line runs along and by the same line in the next rows.  The noise is a robust
     local scale: for each direction, 1.4826 times the median of the absolute residuals
     in 7 x 7 pixel blocks, and the smallest of these (the direction that follows the
-    local structure sees only noise); it is raised to the CCD model
-    sqrt(signal/gain + read_noise^2) when ``gain`` is known.  A flagged pixel is
+    local structure sees only noise); it is raised to the detector model
+    sqrt(a signal + b) of :func:`polkit.data.camera.detector_variance_terms` when the
+    map carries a gain.  A flagged pixel is
     replaced by the prediction of the direction whose four neighbours agree best
     (the direction running along the local contour of the map).  Bright lines narrower
     than about three pixels that disperse faster than ``max_slope`` energy pixels per
     angle pixel can be flagged; raise ``max_slope`` (or ``threshold``) for those.  A
     spike on the flank of a bright line is found only if it also stands ``threshold``
     sigmas above that line's peak in the neighbouring angle rows.  A feature one pixel
-    wide in both angle and energy cannot be told from a spike.
+    wide in both angle and energy cannot be told from a spike.  This replacing remover is
+    kept for existing scripts; :func:`polkit.data.spikes.mask_spikes` masks spikes instead
+    (and is what the dispersion job uses).
 """
 
 from __future__ import annotations
@@ -41,6 +44,7 @@ from scipy.interpolate import interp1d
 from scipy.optimize import minimize_scalar
 
 from ..errors import ConfigError, DataError
+from .camera import detector_variance_terms, raw_counts
 from .schema import append_history
 from .validate import validate_map
 
@@ -122,6 +126,11 @@ def crop(da: xr.DataArray, *, angle=None, k=None, energy=None) -> xr.DataArray:
 def subtract_dark(da: xr.DataArray, dark) -> xr.DataArray:
     """Subtract a dark frame (a map on the same axes, an array of the same shape, or a number).
 
+    A number or a plain array is in raw counts: on a Jacobian-scaled map (coordinate
+    ``jacobian``) it is multiplied by the factor of each energy before it is subtracted.
+    A dark map loaded like the map is subtracted as it is.  Prefer the loader's ``dark=``
+    (:func:`polkit.data.load_map`), which subtracts in raw counts before any conversion.
+
     Raises
     ------
     DataError
@@ -162,6 +171,9 @@ def subtract_dark(da: xr.DataArray, dark) -> xr.DataArray:
                 field="dark",
             )
         desc = f"dark level {float(d):g}" if d.ndim == 0 else "dark frame array"
+        if "jacobian" in da.coords:
+            d = d * da["jacobian"].values[None, :]
+            desc += " (raw counts, times the jacobian)"
     if not np.all(np.isfinite(d)):
         raise DataError("expected a finite dark frame; found NaN/Inf", path=path, field="dark")
     return _with(da, da.values - d, f"subtract_dark: {desc}")
@@ -259,7 +271,7 @@ def _block_median(r: np.ndarray, size: int) -> np.ndarray:
 
 
 def _spike_pass(
-    x: np.ndarray, threshold: float, gain, read_noise, max_slope: int
+    x: np.ndarray, threshold: float, terms, max_slope: int
 ) -> tuple[np.ndarray, np.ndarray]:
     has_nan = bool(np.isnan(x).any())
     pad = 2 * max_slope + 2
@@ -278,9 +290,9 @@ def _spike_pass(
         r = np.where(np.isfinite(r), r, fill)
         scales.append(_MAD_TO_SIGMA * _block_median(r, _BLOCK))
     sigma = np.min(scales, axis=0)
-    if gain is not None:
-        model = np.sqrt(np.clip(pred, 0, None) / gain + (read_noise or 0.0) ** 2)
-        sigma = np.maximum(sigma, model)
+    if terms is not None:
+        a, b = terms
+        sigma = np.maximum(sigma, np.sqrt(a * np.clip(pred, 0, None) + b))
     finite = x[np.isfinite(x)]
     floor = 1e-12 * (np.max(np.abs(finite)) if finite.size else 1.0)
     sigma = np.maximum(sigma, floor)
@@ -325,11 +337,10 @@ def remove_cosmic_rays(
             f"expected an integer max_slope >= 1; found {max_slope!r}", key="max_slope"
         )
     x = da.values.copy()
-    gain = da.attrs.get("gain")
-    read_noise = da.attrs.get("read_noise")
+    terms = detector_variance_terms(da)
     replaced = np.zeros(x.shape, dtype=bool)
     for _ in range(int(passes)):
-        flagged, pred = _spike_pass(x, float(threshold), gain, read_noise, int(max_slope))
+        flagged, pred = _spike_pass(x, float(threshold), terms, int(max_slope))
         if not flagged.any():
             break
         x[flagged] = pred[flagged]
@@ -348,7 +359,9 @@ def bin_map(da: xr.DataArray, *, angle: int = 1, k: int = 1, energy: int = 1) ->
     """Bin a map by integer factors along its axes.
 
     Emission counts are summed (the total is kept; ``read_noise`` grows by the square
-    root of the pixels per bin); reflectance and transmission are averaged.  Bin
+    root of the pixels per bin); reflectance and transmission are averaged.  A
+    ``jacobian`` coordinate is averaged over each bin, so
+    :func:`polkit.data.camera.detector_variance_terms` describes the binned pixels.  Bin
     coordinates are the mean of their pixels; leftover pixels at the high end are
     dropped.  A bin holding a masked (NaN) pixel is masked.
 
@@ -396,7 +409,9 @@ def flag_saturated(da: xr.DataArray, level: float | None = None) -> xr.DataArray
     da
         Canonical map.
     level
-        Saturation level in the signal's units (default: ``attrs["saturation"]``).
+        Saturation level in raw counts, as the camera recorded them before any offset
+        (default: ``attrs["saturation"]``).  A Jacobian-scaled map is compared in raw
+        counts (signal / ``jacobian`` + ``offset_subtracted``).
 
     Returns
     -------
@@ -414,8 +429,9 @@ def flag_saturated(da: xr.DataArray, level: float | None = None) -> xr.DataArray
         )
     level = float(level)
     x = da.values.copy()
+    raw = raw_counts(da) + float(da.attrs.get("offset_subtracted", 0.0))
     with np.errstate(invalid="ignore"):
-        hit = np.isfinite(x) & (x >= level)
+        hit = np.isfinite(x) & (raw >= level)
     n = int(hit.sum())
     x[hit] = np.nan
     attrs = {"saturated_pixels": n}
@@ -423,7 +439,7 @@ def flag_saturated(da: xr.DataArray, level: float | None = None) -> xr.DataArray
         attrs["masked"] = 1
     logger.info("masked %d saturated pixel(s) at level %g", n, level)
     return _with(
-        da, x, f"flag_saturated: {n} pixel(s) >= {level:g} {da.attrs['units']} masked", **attrs
+        da, x, f"flag_saturated: {n} pixel(s) >= {level:g} raw counts masked", **attrs
     )
 
 

@@ -6,7 +6,11 @@ Map
     ``kind`` (emission | reflectance | transmission), ``source`` (where it came from),
     ``wavelength_medium`` (vacuum | air, only when a wavelength axis was converted),
     ``history`` (one line per processing step) and the optional :data:`MAP_NUMBER_ATTRS`
-    and :data:`MAP_TEXT_ATTRS`.  NaN marks ignored pixels only when ``masked == 1``.
+    and :data:`MAP_TEXT_ATTRS` (``gain``, ``read_noise``, ``saturation`` in raw counts).
+    After the wavelength Jacobian a 1-D coordinate ``jacobian`` along ``energy`` holds the
+    factor per pixel and ``raw_units`` the file's units; ``preprocessing`` is JSON text
+    counting what the camera steps masked (:mod:`polkit.data.camera`).  NaN marks ignored
+    pixels only when ``masked == 1``.
 
 Series
     ``xarray.Dataset``.  A table of per-power results has dim ``power`` (sorted
@@ -77,11 +81,12 @@ MAP_NUMBER_ATTRS: dict[str, tuple[str, float, bool]] = {
     "gain": ("electrons per count", 0.0, False),
     "read_noise": ("counts", 0.0, True),
     "saturation": ("counts", 0.0, False),
+    "offset_subtracted": ("counts", -float("inf"), True),
     "na": ("1", 0.0, False),
     "k0_pixel": ("pixel", -float("inf"), True),
     "pupil_radius_px": ("pixel", 0.0, False),
 }
-MAP_TEXT_ATTRS = ("sample", "title", "comment")
+MAP_TEXT_ATTRS = ("sample", "title", "comment", "raw_units", "preprocessing")
 #: attributes carried over from an input file into the canonical object
 CARRIED_ATTRS = (
     *MAP_NUMBER_ATTRS,

@@ -10,7 +10,8 @@ Negative emission
     A background-subtracted emission map fluctuates around zero, but counts far below
     zero mean an over-subtracted background or a wrong offset.  The noise is the
     ``read_noise`` attribute when present, else a robust estimate from the
-    pixel-to-pixel differences along energy (1.4826 MAD / sqrt 2).  More than
+    pixel-to-pixel differences along energy (1.4826 MAD / sqrt 2).  A Jacobian-scaled
+    map is judged in raw counts (signal / ``jacobian``), where ``read_noise`` applies.  More than
     ``max(3, 1e-4 N)`` pixels below -5 sigma is an error; fewer is a warning.
 """
 
@@ -426,10 +427,14 @@ def validate_map(da: xr.DataArray, *, path=None) -> xr.DataArray:
 
     values = _as_float(da.values, path=path, field="signal", what="signal values")
     _check_values(values, attrs["masked"], path=path, field="signal")
+    extra = _jacobian_coord(da, path=path)
+    raw = values / extra["jacobian"][1][None, :] if extra else values
     if kind == "emission":
-        _check_negative(values, attrs, path=path, field="signal")
+        _check_negative(raw, attrs, path=path, field="signal")
     if "saturation" in attrs:
-        n_sat = int(np.count_nonzero(values >= attrs["saturation"]))
+        with np.errstate(invalid="ignore"):
+            at_level = raw + attrs.get("offset_subtracted", 0.0) >= attrs["saturation"]
+        n_sat = int(np.count_nonzero(at_level))
         if n_sat:
             _warn(
                 f"{n_sat} pixel(s) at or above the saturation level {attrs['saturation']:g}; "
@@ -448,11 +453,31 @@ def validate_map(da: xr.DataArray, *, path=None) -> xr.DataArray:
                 energy,
                 {**COORD_ATTRS[ENERGY_DIM], **da.coords[ENERGY_DIM].attrs},
             ),
+            **extra,
         },
         attrs=attrs,
         name=da.name,
     )
     return out
+
+
+def _jacobian_coord(da: xr.DataArray, *, path) -> dict:
+    """The map's ``jacobian`` coordinate, checked (1-D along energy, finite, > 0, units)."""
+    if "jacobian" not in da.coords:
+        return {}
+    c = da.coords["jacobian"]
+    values = np.asarray(c.values, dtype=float) if c.dtype.kind in "iuf" else None
+    if c.dims != (ENERGY_DIM,) or values is None or not np.all(np.isfinite(values)) or np.any(
+        values <= 0
+    ) or not c.attrs.get("units"):
+        fail(
+            "a 1-D coordinate 'jacobian' along energy with finite positive values and units",
+            f"dims {c.dims}, units {c.attrs.get('units')!r}",
+            "let polkit's loaders apply the wavelength Jacobian, or drop the coordinate",
+            path=path,
+            field="jacobian",
+        )
+    return {"jacobian": (ENERGY_DIM, values, dict(c.attrs))}
 
 
 def _series_table_checks(ds: xr.Dataset, dim: str, *, path) -> None:

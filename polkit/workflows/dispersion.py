@@ -115,10 +115,12 @@ def prepare_dispersion(
     energy_window: tuple[float, float] | None = None,
     load_options: dict | None = None,
     profile: str = "lorentzian",
+    camera=None,
 ) -> tuple[DispersionProblem, DispersionStart]:
     """Load, crop and describe a map: the problem to fit and where to start.
 
-    Parameters are those of :func:`fit_dispersion`.
+    Parameters are those of :func:`fit_dispersion` (``camera=None`` means the default
+    :class:`polkit.data.CameraOptions`: offset, saturation and spike masks on).
 
     Returns
     -------
@@ -126,11 +128,15 @@ def prepare_dispersion(
         ``(problem, start)``: the :class:`DispersionProblem` (with the peak table) and
         the :class:`DispersionStart`.
     """
+    from ..data import CameraOptions
+
+    camera = CameraOptions() if camera is None else camera
     src = open_map(source, model=model, kind=kind, wavelength_medium=wavelength_medium,
-                   load_options=load_options).cropped(angle_window, energy_window)
+                   load_options=load_options, camera=camera).cropped(angle_window, energy_window)
     warn_large_map(src.data)
     table, guess, space = peak_start(src.data, n_excitons=src.n_excitons, kind=src.kind,
-                                     priors=priors, profile=profile, coupling=src.coupling)
+                                     priors=priors, profile=profile, coupling=src.coupling,
+                                     min_snr=camera.min_snr)
     x0 = start_vector(space, guess)
     problem = map_problem(src, space, table=table)
     return problem, DispersionStart(src, table, guess, x0)
@@ -235,6 +241,14 @@ def build_dispersion_result(
     )
 
 
+def _camera_provenance(begin: DispersionStart) -> dict[str, Any]:
+    """What the camera steps masked (from the map's ``preprocessing`` JSON) and min_snr."""
+    from ..data.camera import preprocessing_record
+
+    return {"preprocessing": preprocessing_record(begin.source.data),
+            "peak_min_snr": float(begin.table.attrs.get("min_snr", float("nan")))}
+
+
 # --------------------------------------------------------------------------------------
 # the job
 # --------------------------------------------------------------------------------------
@@ -261,6 +275,7 @@ def fit_dispersion(
     stop_event=None,
     figures: bool = True,
     profile: str = "lorentzian",
+    camera=None,
 ) -> DispersionFit:
     """Fit a coupled-oscillator model to an angle-resolved map.
 
@@ -299,6 +314,11 @@ def fit_dispersion(
         Write figures to ``out``.
     profile
         Peak shape of the peak table, ``"lorentzian"`` or ``"voigt"``.
+    camera
+        A :class:`polkit.data.CameraOptions` (default: its defaults): camera offset
+        subtracted before unit conversion, saturated pixels and cosmic-ray spikes masked,
+        excluded windows, the peak table's detection threshold.  What was masked is counted
+        in the observed map's ``preprocessing`` attribute and in the provenance.
 
     Returns
     -------
@@ -309,7 +329,7 @@ def fit_dispersion(
     problem, begin = prepare_dispersion(
         source, model=model, kind=kind, priors=priors, wavelength_medium=wavelength_medium,
         angle_window=angle_window, energy_window=energy_window, load_options=load_options,
-        profile=profile,
+        profile=profile, camera=camera,
     )
     checkpoint = checkpoint_file(out, resume, refusal=DataError(
         "resume needs the output folder that holds the checkpoint; pass out=.", field="resume"))
@@ -333,7 +353,8 @@ def fit_dispersion(
     identity = job_identity(begin.source.sha256, f"{model} {begin.source.kind}", path_used,
                             noise_note, dict(angle_window=angle_window, energy_window=energy_window,
                                              profile=profile, wavelength_medium=wavelength_medium,
-                                             load_options=load_options))
+                                             load_options=load_options,
+                                             camera=_camera_provenance(begin)))
     output = sample_problem(problem, start, steps=steps, log_likelihood=like, n_walkers=n_walkers,
                             seed=seed, pre_burn=True, checkpoint=checkpoint, resume=resume,
                             progress=progress, strict=strict, stop_event=stop_event,
@@ -343,7 +364,8 @@ def fit_dispersion(
     else:
         output = add_caveats(output, [PEAK_TABLE_COVERAGE])
     result = build_dispersion_result(problem, output, begin.source, path=path_used,
-                                     noise_note=noise_note, profile=profile, table=begin.table)
+                                     noise_note=noise_note, profile=profile, table=begin.table,
+                                     provenance=_camera_provenance(begin))
     if search is not None:
         result = weigh_strong_coupling(result, search, problem)
     if out is not None:

@@ -126,7 +126,13 @@ class MapInput:
         return dataclasses.replace(self, data=da.transpose(self.axis, "energy"))
 
 
-def _load(source, wavelength_medium, load_options):
+def _load(source, wavelength_medium, load_options, camera=None):
+    """The map, its hash and name; with ``camera`` the camera steps are applied.
+
+    A file's offset and saturation are handled by the loader on the raw counts (before
+    any unit conversion); spikes and excluded windows on the canonical map
+    (:func:`polkit.data.prepare_camera_map`).  The hash is that of the input as given.
+    """
     from .. import data
 
     opts = dict(load_options or {})
@@ -134,10 +140,17 @@ def _load(source, wavelength_medium, load_options):
         opts["wavelength_medium"] = wavelength_medium
     if isinstance(source, xr.DataArray):
         da = data.validate_map(source)
-        return da, _array_sha256(da), da.attrs.get("source", "<in memory>")
-    path = Path(source)
-    da = data.load_map(path, **opts)
-    return da, file_sha256(path), str(path)
+        sha, name = _array_sha256(da), da.attrs.get("source", "<in memory>")
+    else:
+        path = Path(source)
+        if camera is not None:
+            opts.setdefault("dark", camera.dark)
+            opts.setdefault("mask_saturated", camera.mask_saturated)
+        da = data.load_map(path, **opts)
+        sha, name = file_sha256(path), str(path)
+    if camera is not None:
+        da = data.prepare_camera_map(da, camera)
+    return da, sha, name
 
 
 def open_map(
@@ -147,6 +160,7 @@ def open_map(
     kind: str | None = None,
     wavelength_medium: str | None = None,
     load_options: dict | None = None,
+    camera=None,
 ) -> MapInput:
     """Load and validate a map and check the model and the kind of spectrum.
 
@@ -163,6 +177,11 @@ def open_map(
         fitted with the emission model.
     wavelength_medium, load_options
         Passed to the loader (see :func:`polkit.load_map`).
+    camera
+        A :class:`polkit.data.CameraOptions`: subtract the camera offset before unit
+        conversion, mask saturated pixels, cosmic-ray spikes and excluded windows (counted
+        in ``data.attrs["preprocessing"]``).  ``None`` (default here): none of these steps;
+        :func:`~polkit.workflows.dispersion.fit_dispersion` passes the default options.
 
     Returns
     -------
@@ -177,7 +196,7 @@ def open_map(
     if model not in MODELS:
         raise DataError(f"expected model 'weak', 'two' or 'three', found {model!r}.",
                         field="model")
-    da, sha, source_name = _load(source, wavelength_medium, load_options)
+    da, sha, source_name = _load(source, wavelength_medium, load_options, camera)
     kind = kind or da.attrs.get("kind", "emission")
     if kind == "transmission":
         kind_model = "emission"  # transmission peaks follow the photon spectral function too
@@ -225,6 +244,7 @@ def peak_start(
     priors: str | os.PathLike | dict | None = None,
     profile: str = "lorentzian",
     coupling: str = "strong",
+    min_snr: float = 5.0,
 ) -> tuple[xr.Dataset, dict[str, float], ParameterSpace]:
     """Peak table, automatic guess and parameter space of a map.
 
@@ -243,6 +263,8 @@ def peak_start(
     coupling
         ``"strong"`` (coupled oscillators) or ``"weak"`` (uncoupled modes: no Rabi
         splitting among the parameters).
+    min_snr
+        Detection threshold of the peak table (see :func:`polkit.extract.peak_table`).
 
     Returns
     -------
@@ -253,7 +275,7 @@ def peak_start(
     from ..extract import peak_table
 
     # peak_table warns (DataWarning) when only one branch is visible: g and detuning degenerate
-    table = peak_table(da, n_peaks=n_excitons + 1, profile=profile)
+    table = peak_table(da, n_peaks=n_excitons + 1, profile=profile, min_snr=min_snr)
     guess = guess_from_peaks(table, n_excitons=n_excitons)
     space = default_space(da["energy"].values, guess, n_excitons=n_excitons, kind=kind,
                           coupling=coupling)
