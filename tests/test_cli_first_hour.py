@@ -41,3 +41,21 @@ def test_a_run_without_seed_prints_the_seed_it_uses(tmp_path, capsys):
     main(["power", str(tmp_path / "missing.csv"), "--model", "coherent", "--resume",
           "--out", str(tmp_path / "o")])
     assert "this run uses --seed" not in capsys.readouterr().out  # resume keeps its own
+
+
+def test_every_option_and_argument_has_help_and_meaningful_defaults_show():
+    # common practice, no published source
+    from polkit.cli import build_parser
+
+    parser = build_parser()
+    sub = next(a for a in parser._actions if a.dest == "command")
+    for name, p in sub.choices.items():
+        for action in p._actions:
+            if action.dest == "help":
+                continue
+            assert action.help, f"polkit {name}: {action.option_strings or action.dest} has no help"
+        text = " ".join(p.format_help().split())
+        if name == "dispersion":
+            assert "(default: two)" in text and "transmission" in text
+        if name == "budget":
+            assert "(default: 4000)" in text
