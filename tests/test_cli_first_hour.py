@@ -59,3 +59,19 @@ def test_every_option_and_argument_has_help_and_meaningful_defaults_show():
             assert "(default: two)" in text and "transmission" in text
         if name == "budget":
             assert "(default: 4000)" in text
+
+
+@pytest.mark.parametrize(("name", "text", "words"), [
+    ("device.toml", '# a device\nnode_size = {value = 3.0, units = "um"}\n',
+     "settings file (TOML)"),
+    ("truth.json", '{"e_x": 1.545}\n', "settings file (JSON)"),
+    ("priors.txt", '[rabi_splitting]\nprior = "uniform"\n', "settings file (TOML)"),
+    ("manifest.csv", "file,x [mm],y [mm]\nmaps/a.nc,0,0\n", "survey manifest"),
+])
+def test_inspect_on_a_file_that_is_not_data_says_what_it_is(tmp_path, capsys, name, text, words):
+    # common practice, no published source
+    path = tmp_path / name
+    path.write_text(text)
+    assert main(["inspect", str(path), "--out", str(tmp_path / "o")]) == EXIT_INPUT
+    err = capsys.readouterr().err
+    assert words in err and "decimal commas" not in err and "expected a column" not in err

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import inspect
 import os
+import re
 from collections.abc import Callable
 from pathlib import Path
 
@@ -83,6 +84,7 @@ def choose_reader(path, reader: str | None = None) -> str:
             field="file",
         )
     text = decode_text(p.read_bytes(), path=path)
+    _refuse_settings_file(p, text)
     _, lines = split_comments(text)
     if not lines:
         raise DataError(
@@ -91,6 +93,39 @@ def choose_reader(path, reader: str | None = None) -> str:
             field="file",
         )
     return "matrix" if matrix_reader.looks_like_matrix(lines[0][1]) else "csv"
+
+
+#: settings-file suffixes and what polkit reads them as
+_SETTINGS = {".toml": "TOML", ".json": "JSON", ".yaml": "YAML", ".yml": "YAML", ".ini": "INI"}
+_TOML_LINE = re.compile(r"^\s*(\[[A-Za-z_][\w.\-]*\]|[A-Za-z_][\w\-]*\s*=\s*\S)")
+
+
+def _refuse_settings_file(p: Path, text: str) -> None:
+    """Refuse a settings file (TOML, JSON, YAML) or a survey manifest given as data."""
+    suffix = p.suffix.lower()
+    stripped = text.lstrip("\ufeff \t\r\n")
+    kind = _SETTINGS.get(suffix)
+    if kind is None and stripped and stripped[0] in "{[":
+        first = stripped.splitlines()[0]
+        kind = "TOML" if _TOML_LINE.match(first) else "JSON"
+    if kind is None:
+        body = [ln for ln in text.splitlines() if ln.strip() and not ln.lstrip().startswith("#")]
+        if body and all(_TOML_LINE.match(ln) for ln in body[:3]):
+            kind = "TOML"
+    if kind is not None:
+        raise DataError(
+            f"this looks like a settings file ({kind}), not data. polkit reads settings as "
+            "--priors, --calibration or --device (TOML); data files are maps or power series "
+            "(netCDF/HDF5, CSV, plain-text matrix, .npz)",
+            path=p, field="file")
+    header = [ln for ln in text.splitlines() if ln.strip() and not ln.lstrip().startswith("#")]
+    if header:
+        names = [c.strip().split(" ")[0].strip().lower() for c in header[0].split(",")]
+        if "file" in names and "x" in names and "y" in names:
+            raise DataError(
+                "this is a survey manifest (columns file, x, y), not a data file. Fix: run "
+                f"'polkit survey {p.name}', or inspect one of the maps it lists",
+                path=p, field="file")
 
 
 def read_raw(path, reader: str | None = None, **options) -> tuple[xr.Dataset, str]:
