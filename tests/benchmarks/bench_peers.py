@@ -105,11 +105,23 @@ class ScriptModel:
         eps = np.take_along_axis(eps, np.argsort(eps.real, axis=-1), axis=-1)
         r_lo = (eps[..., 0] - (ex - 0.5j * gx)) / (eps[..., 0] - eps[..., 1])
         res = np.stack([r_lo, 1.0 - r_lo], axis=-1)  # (W, A, 2)
-        lines = -(res[..., None] / (self.energy - eps[..., None])).imag / np.pi
-        design = np.concatenate([lines, np.ones((w, a, 1, self.energy.size))], axis=2)
+        # branch lines -Im(r / (E - eps)) / pi in real arithmetic: with u = E - Re eps and
+        # h = -Im eps, (Re r h - Im r u) / (pi (u^2 + h^2))
+        design = np.empty((w, a, 3, self.energy.size))
+        u = self.energy - eps.real[..., None]
+        h = -eps.imag[..., None]
+        lines = design[:, :, :2]
+        np.multiply(res.real[..., None], h, out=lines)
+        lines -= res.imag[..., None] * u
+        u *= u
+        u += h * h
+        u *= np.pi
+        lines /= u
+        design[:, :, 2] = 1.0
         design *= self.sw[None, :, None, :]
-        gram = design @ np.swapaxes(design, -1, -2)
-        coef = np.linalg.solve(gram, (design @ self.rhs[None, :, :, None]))[..., 0]
+        gram = np.einsum("wake,wale->wakl", design, design)
+        cross = np.einsum("wake,ae->wak", design, self.rhs)
+        coef = np.linalg.solve(gram, cross[..., None])[..., 0]
         return self.rhs - np.einsum("wak,wake->wae", coef, design)
 
     def log_likelihood(self, theta: np.ndarray) -> np.ndarray:
