@@ -37,7 +37,11 @@ The bases built here also carry the few numbers a compiled kernel needs
 (:mod:`polkit.models._kernels`, numba): it evaluates each row's line shapes and
 accumulates its Gram sums in one pass over the energy axis, then solves the small
 problems in closed form, with the same formulas as the numpy path (the tests hold the
-two to rounding).  It is used whenever numba imports; ``POLKIT_COMPILED=0`` (or
+two to rounding).  For three oscillators (two excitons) the branch poles and photon
+residues of the whole-map bases are compiled too (:mod:`polkit.models._kernels3`: the
+roots of the characteristic cubic and ``(z - x1)(z - x2) / D'(z)``, held to
+``numpy.linalg.eig`` to 1e-10 by the tests); :func:`branch_poles` keeps the numpy
+eigen-solver as the reference.  It is used whenever numba imports; ``POLKIT_COMPILED=0`` (or
 ``polkit.models._kernels.use_compiled(False)``) selects the numpy path.  A basis built
 another way (an ndarray, or a :class:`MapBasis` from elsewhere) always takes the numpy
 path.
