@@ -110,3 +110,29 @@ def test_runner_prints_the_new_figures(bench, tiny):
                 "time_to_answer_ratio_vs_least_squares", "three_vs_two_call_ratio"):
         assert figures[key] is not None and figures[key] > 0
     json.loads(json.dumps(figures))
+
+
+def test_script_posterior_equals_polkit_posterior_up_to_a_constant(bench):
+    # self-consistency of two independent codes: the script's uniform and log-uniform
+    # priors plus its likelihood give polkit's log posterior up to one constant (the
+    # priors' normalisation); common practice, no published source
+    from polkit.inference import LogPosterior
+
+    hot = bench("bench_hot_path")
+    peers = bench("bench_peers")
+    da, inv_var, _ = hot.simulated_map(7, 90, seed=6)
+    problem = hot.problem_for(da, inv_var)
+    model = peers.script_model_for(problem)
+    x = hot.truth_vector(problem.space)
+    rng = np.random.default_rng(7)
+    # posterior-sized steps (far away a branch amplitude can turn negative, where
+    # polkit's non-negative solve and the script's unconstrained one part, by design)
+    theta = x * (1.0 + 2e-5 * rng.standard_normal((5, x.size)))
+    outside = theta[:1].copy()
+    outside[0, problem.space.names.index("n_eff")] = 99.0  # beyond the prior bound
+    theta = np.vstack([theta, outside])
+    ours = model.log_prob(theta)
+    theirs = LogPosterior(problem.log_likelihood, problem.space)(theta)
+    assert np.isneginf(ours[-1]) and np.isneginf(theirs[-1])
+    offset = ours[:-1] - theirs[:-1]
+    np.testing.assert_allclose(offset - offset[0], 0.0, atol=1e-8 * np.abs(theirs[0]))
