@@ -278,3 +278,45 @@ def test_demo_map_three_oscillator_log_likelihood_equals_the_numpy_path():
         _kernels.use_compiled(previous)
     assert np.all(np.isfinite(plain))
     np.testing.assert_allclose(fast, plain, rtol=REL, atol=0)
+
+
+@pytest.mark.skipif(np.finfo(np.longdouble).eps > 1e-18,
+                    reason="long double is no wider than double on this platform")
+def test_closely_spaced_levels_against_a_long_double_reference():
+    # Source: G_CC(z) = (z - x1)(z - x2) / det(z - H) (photon entry of the resolvent),
+    # evaluated in 80-bit long double: numpy's roots polished by Newton steps on det(z - H)
+    # and the residues (z - x1)(z - x2) / D'(z).  Levels within 10 ueV of each other at
+    # 1.5 eV: numpy.linalg.eig's backward error (u x 1.5 eV) is then large against the
+    # splittings, the compiled path's (relative to the splittings) is not
+    rng = np.random.default_rng(16)
+    n_w, n_a, scale = 30, 4, 1e-5
+    e_c = 1.5 + scale * rng.standard_normal((n_w, n_a))
+    gamma_c = 10 ** rng.uniform(-6, -5, n_w)
+    e_x = (1.5 + scale * rng.standard_normal(n_w), 1.5 + scale * rng.standard_normal(n_w))
+    g = (10 ** rng.uniform(-7, -5, n_w), 10 ** rng.uniform(-7, -5, n_w))
+    gamma_x = (10 ** rng.uniform(-6, -5, n_w), 10 ** rng.uniform(-6, -5, n_w))
+    poles, res, bad = compiled(e_c, gamma_c, e_x, g, gamma_x)
+    assert not bad.any()
+    ref_poles, _ = reference(e_c, gamma_c, e_x, g, gamma_x)
+    ld = np.clongdouble
+    c = e_c.astype(ld) - 0.5j * gamma_c.astype(ld)[:, None]
+    x1 = (e_x[0].astype(ld) - 0.5j * gamma_x[0].astype(ld))[:, None, None]
+    x2 = (e_x[1].astype(ld) - 0.5j * gamma_x[1].astype(ld))[:, None, None]
+    s1 = (g[0].astype(ld) ** 2)[:, None, None]
+    s2 = (g[1].astype(ld) ** 2)[:, None, None]
+    c = c[..., None]
+    z = ref_poles.astype(ld)
+    for _ in range(6):
+        u0, u1, u2 = z - c, z - x1, z - x2
+        f = u0 * u1 * u2 - s1 * u2 - s2 * u1
+        fp = u1 * u2 + u0 * u2 + u0 * u1 - s1 - s2
+        z = z - f / fp
+    u0, u1, u2 = z - c, z - x1, z - x2
+    r_ref = (u1 * u2) / (u1 * u2 + u0 * u2 + u0 * u1 - s1 - s2)
+    gaps = np.min(np.abs(ref_poles[..., [0, 0, 1]] - ref_poles[..., [1, 2, 2]]), axis=-1)
+    fine = gaps > 1e-3 * scale  # leave out rows at an exceptional point
+    assert fine.mean() > 0.9
+    pole_err = np.abs(poles - z.astype(complex))[fine]
+    res_err = np.abs(res - r_ref.astype(complex))[fine]
+    assert pole_err.max() <= 4 * np.finfo(float).eps * 1.5  # a few ulps of 1.5 eV
+    assert res_err.max() <= 1e-12
