@@ -30,7 +30,11 @@ from the characteristic polynomial, per walker and in-plane point, in one compil
   ``V[0, k] (V^-1)[k, 0]`` for a diagonalisable ``H``.  An uncoupled exciton (``g_j = 0``)
   at ``z_k = x_j`` gets a residue of exactly 0; an exciton-like branch keeps its small
   residue's relative precision (no level of 1 eV is subtracted).
-* Order: by real part (ties by imaginary part), as ``coupled_modes`` sorts LAPACK's.
+* A coupling that is exactly 0 (the lower prior bound) decouples its exciton exactly: it
+  stays at ``x_j`` with residue 0, and the other two modes come from the closed-form
+  two-mode pair (:func:`_pair`), so two uncoupled, degenerate excitons are exact too.
+* Order: by real part (ties by imaginary part; LAPACK's order decides ties on the numpy
+  path), as ``coupled_modes`` sorts.
 
 A row where ``D'(z_k) = 0`` (an exact exceptional point, or two uncoupled modes exactly
 degenerate) or where anything is not finite is flagged; the caller recomputes those rows
