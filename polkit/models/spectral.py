@@ -37,7 +37,11 @@ The bases built here also carry the few numbers a compiled kernel needs
 (:mod:`polkit.models._kernels`, numba): it evaluates each row's line shapes and
 accumulates its Gram sums in one pass over the energy axis, then solves the small
 problems in closed form, with the same formulas as the numpy path (the tests hold the
-two to rounding).  It is used whenever numba imports; ``POLKIT_COMPILED=0`` (or
+two to rounding).  For three oscillators (two excitons) the branch poles and photon
+residues of the whole-map bases are compiled too (:mod:`polkit.models._kernels3`: the
+roots of the characteristic cubic and ``(z - x1)(z - x2) / D'(z)``, held to
+``numpy.linalg.eig`` to 1e-10 by the tests); :func:`branch_poles` keeps the numpy
+eigen-solver as the reference.  It is used whenever numba imports; ``POLKIT_COMPILED=0`` (or
 ``polkit.models._kernels.use_compiled(False)``) selects the numpy path.  A basis built
 another way (an ndarray, or a :class:`MapBasis` from elsewhere) always takes the numpy
 path.
@@ -336,8 +340,14 @@ def _prepare(in_plane, energy_ev, axis: str, params: dict):
     return batch, n, grid, energy, flat, e_c
 
 
-def _poles_flat(e_c, flat):
-    """Poles (W, A, K) and photon residues of the Lorentzian model."""
+def _poles_flat(e_c, flat, compiled: bool = False):
+    """Poles (W, A, K) and photon residues of the Lorentzian model.
+
+    ``compiled`` lets three oscillators take the compiled poles of
+    :mod:`polkit.models._kernels3` (when the kernels are on); the whole-map bases ask for
+    it.  :func:`branch_poles` does not: it stays the numpy reference (``numpy.linalg.eig``)
+    that the peak-table path and the figures read.
+    """
     ex, gs, gx, _ = _exciton_lists(flat["e_x"], flat["g"], flat["gamma_x"], None)
     gc = flat["gamma_c"][:, None]
     if len(ex) == 1:
@@ -360,10 +370,31 @@ def _poles_flat(e_c, flat):
             residues = np.stack([minus / (2.0 * root), plus / (2.0 * root)], axis=-1)
         poles = np.stack([lo, up], axis=-1)
         return poles, residues
+    if len(ex) == 2 and compiled:
+        three = _compiled_three_modes()
+        if three is not None:
+            # compiled: Cardano's roots of det(z - H), Newton-polished, and the residues
+            # (z - x1)(z - x2) / D'(z); rows it flags go through numpy.linalg.eig below
+            poles, residues, bad = three.three_mode_poles(e_c, flat["gamma_c"], ex, gs, gx)
+            if bad.any():
+                wi, ai = np.nonzero(bad)
+                modes = coupled_modes(
+                    e_c[wi, ai], [x[wi] for x in ex], [c[wi] for c in gs], gc[wi, 0],
+                    [w[wi] for w in gx])
+                poles[wi, ai] = modes.energies
+                residues[wi, ai] = modes.residues
+            return poles, residues
     modes = coupled_modes(
         e_c, [x[:, None] for x in ex], [c[:, None] for c in gs], gc, [w[:, None] for w in gx]
     )
     return modes.energies, modes.residues
+
+
+def _compiled_three_modes():
+    """The compiled three-oscillator pole module if it should be used, else None."""
+    from . import _kernels3  # imported on first use: it loads numba
+
+    return _kernels3 if _kernels3.enabled() else None
 
 
 def branch_poles(
@@ -587,7 +618,7 @@ def emission_basis(
         {"e_c0": e_c0, "n_eff": n_eff, "e_x": e_x, "g": g, "gamma_c": gamma_c,
          "gamma_x": gamma_x, "sigma_x": sigma_x},
     )
-    poles, residues = _poles_flat(e_c, flat)
+    poles, residues = _poles_flat(e_c, flat, compiled=True)
     k = poles.shape[-1]
     coefficients = _lorentz_coefficients(poles, residues)
     lorentz = _lorentz_block(energy, *coefficients)

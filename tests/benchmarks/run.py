@@ -6,6 +6,9 @@ Benchmarks (each a module here with ``run(quick) -> dict``):
 
 * ``hot_path``    one whole-map log-likelihood call against a numpy Lorentzian pass (ratio)
 * ``peer``        effective samples per second, polkit against lmfit + emcee (ratio)
+* ``peers``       polkit's default fit against a vectorised emcee script (DE moves, to ESS
+                  >= 1000 and R-hat <= 1.01) and a least-squares fit (bench_peers.py)
+* ``three``       one whole-map likelihood call, three oscillators against two (bench_three.py)
 * ``scaling``     time and peak memory of a log-likelihood call, 1e4 to 1e6 pixels
 * ``efficiency``  posterior widths and errors against the Cramer-Rao bound
 * ``end_to_end``  ``polkit demo`` and every command-line fit on the demo sample
@@ -13,8 +16,10 @@ Benchmarks (each a module here with ``run(quick) -> dict``):
 * ``widgets``     dispersion-panel slider latency (bench_widgets.py)
 
 The machine is described first (cores, load, numpy, BLAS).  The figures go to standard
-output: a readable table per benchmark, then one JSON object (at least ``hot_path_ratio``
-and ``ess_per_second_ratio``) as the last lines; progress goes to standard error.  A
+output: a readable table per benchmark, then one JSON object (at least ``hot_path_ratio``,
+``ess_per_second_ratio`` (against lmfit), ``ess_per_second_ratio_vs_emcee``,
+``time_to_answer_ratio_vs_emcee``, ``time_to_answer_ratio_vs_least_squares`` and
+``three_vs_two_call_ratio``) as the last lines; progress goes to standard error.  A
 benchmark that fails is reported with its error and the others still run (exit status 1).
 Benchmarks measure; they never assert on time.
 """
@@ -40,6 +45,8 @@ if str(HERE) not in sys.path:  # the benchmark modules import each other by name
 BENCHMARKS = {
     "hot_path": "bench_hot_path",
     "peer": "bench_peer",
+    "peers": "bench_peers",
+    "three": "bench_three",
     "scaling": "bench_scaling",
     "efficiency": "bench_efficiency",
     "end_to_end": "bench_end_to_end",
@@ -92,7 +99,10 @@ def machine() -> dict:
 
 def figures(results: dict) -> dict:
     """The headline figures (one flat-ish JSON object) from the benchmarks' results."""
-    out: dict = {"hot_path_ratio": None, "ess_per_second_ratio": None}
+    out: dict = {"hot_path_ratio": None, "ess_per_second_ratio": None,
+                 "ess_per_second_ratio_vs_emcee": None, "time_to_answer_ratio_vs_emcee": None,
+                 "time_to_answer_ratio_vs_least_squares": None,
+                 "three_vs_two_call_ratio": None}
     r = results.get("hot_path")
     if r and "error" not in r:
         out.update(hot_path_ratio=round(r["hot_path_ratio"], 3),
@@ -111,6 +121,8 @@ def figures(results: dict) -> dict:
     if r and "error" not in r:
         out["ess_per_second_ratio"] = (None if r.get("ess_per_second_ratio") is None
                                        else round(r["ess_per_second_ratio"], 2))
+        out["ess_per_second_ratio_is_against"] = ("lmfit Minimizer.emcee (stretch move, one "
+                                                  "residual call per walker)")
         if "skipped" in r.get("lmfit", {}):
             out["peer_note"] = r["lmfit"]["skipped"]
         else:
@@ -132,6 +144,37 @@ def figures(results: dict) -> dict:
                 out["ess_per_second_ratio_per_angle_loop"] = round(loop["ess_per_second_ratio"],
                                                                    2)
         out["peer_setup"] = {"map": r["map"], "walkers": r["walkers"], "steps": r["steps"]}
+    r = results.get("peers")
+    if r and "error" not in r:
+        em, pk, ls = r["emcee_script"], r["polkit"], r["least_squares"]
+        out.update(
+            ess_per_second_ratio_vs_emcee=round(r["ess_per_second_ratio_vs_emcee"], 2),
+            time_to_answer_ratio_vs_emcee=round(r["time_to_answer_ratio_vs_emcee"], 2),
+            time_to_answer_ratio_vs_least_squares=round(
+                r["time_to_answer_ratio_vs_least_squares"], 1),
+            # the first repeat's times; the three ratios above are medians over the repeats
+            peers_time_to_answer_s={"polkit": round(pk["wall_s"], 1),
+                                    "emcee_script": round(r["emcee_script_time_to_answer_s"], 1),
+                                    "least_squares": round(ls["wall_s"], 2)},
+            peers_emcee_target_reached=em["reached"],
+            peers_polkit_gate_passed=pk["converged"],
+            peers_max_median_difference_sd={
+                "emcee_script": round(max(r["emcee_median_difference_in_sd"].values()), 3),
+                "least_squares": round(max(r["least_squares_difference_in_sd"].values()), 3)},
+            peers_least_squares_sd_over_posterior_sd={
+                k: round(v, 3) for k, v in r["least_squares_sd_over_posterior_sd"].items()},
+            peers_same_likelihood_max_rel_diff=r["same_likelihood_max_rel_diff"],
+            peers_map=r["map"],
+            peers_repeats=[{k: (round(v, 3) if isinstance(v, float) else v)
+                            for k, v in q.items()} for q in r.get("repeats", [])],
+        )
+    r = results.get("three")
+    if r and "error" not in r:
+        out.update(three_vs_two_call_ratio=round(r["three_vs_two_call_ratio"], 3),
+                   three_vs_two_call_ratio_of_minima=round(
+                       r["three_vs_two_call_ratio_of_minima"], 3),
+                   three_vs_two_ms={"two": round(r["two_ms"], 3),
+                                    "three": round(r["three_ms"], 3)})
     r = results.get("scaling")
     if r and "error" not in r:
         out.update(
