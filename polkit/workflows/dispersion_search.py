@@ -305,6 +305,102 @@ def _climb(post, space, theta0: np.ndarray, u0: np.ndarray, held: np.ndarray, *,
     return theta, u, value, calls
 
 
+#: exciton energies x Rabi splittings of the branch-consistent grid
+BRANCH_GRID = (48, 32)
+#: hbar c in eV um  # Source: CODATA via scipy.constants
+_HBARC_EV_UM = 0.1973269804593025
+
+
+def _branch_grid(problem, held: np.ndarray, shape: tuple[int, int] = BRANCH_GRID):
+    """Points of the prior box that put one branch on the branch the peak table saw.
+
+    A map where only one branch is bright (a dim upper branch at room temperature, a faint
+    one at low counts) fixes that branch's energy ``L(theta)`` well but leaves the exciton
+    energy and the coupling nearly degenerate, and a random design rarely lands in the
+    narrow ridge of parameters that reproduce ``L``.  For every exciton energy ``E_X`` and
+    splitting ``2g`` of a grid over their priors, the coupled-oscillator relation
+    ``(L - E_C)(L - E_X) = g^2`` (Hopfield, Phys. Rev. 112, 1555 (1958), the 2 x 2
+    eigenvalue equation) gives the cavity energy at each angle where the branch was seen,
+    ``E_C = L + g^2 / (E_X - L)`` (the seen branch is the lower one where ``E_X > L``, the
+    upper one where ``E_X < L``); the planar-cavity dispersion, linear in ``sin^2(theta)``
+    for ``1/E_C^2`` (in ``k^2`` for ``E_C^2``), then gives ``E_C0`` and ``n_eff`` by linear
+    least squares.  Linewidths come from the table.  The whole-map posterior decides where
+    the dim branch is.  Returns ``(theta, unit_coordinates)`` or ``None``.
+    # common practice, no published source
+    """
+    space = problem.space
+    names = space.names
+    table = getattr(problem, "table", None)
+    if table is None or "rabi_splitting" not in names or "energy" not in table:
+        return None
+    found = np.asarray(table["found"].values, dtype=bool) & np.isfinite(table["energy"].values)
+    if found.ndim != 2 or not found.any():
+        return None
+    col = int(np.argmax(found.sum(axis=0)))
+    rows = found[:, col]
+    if rows.sum() < 4:
+        return None
+    lev = np.asarray(table["energy"].values[rows, col], dtype=float)  # eV
+    x_in = np.asarray(problem.in_plane, dtype=float)[rows]
+    fwhm = np.asarray(table["fwhm"].values[rows, col], dtype=float) if "fwhm" in table else []
+    to_mev = {"meV": 1.0, "eV": 1e3}.get(str(table["fwhm"].attrs.get("units", "meV")), 1.0) \
+        if "fwhm" in table else 1.0
+    width = float(np.nanmedian(fwhm)) * to_mev if np.size(fwhm) else float("nan")  # meV
+    ex_prior, g_prior = space["exciton_energy"].prior, space["rabi_splitting"].prior
+    ex = np.linspace(*_support(ex_prior), shape[0])
+    g_lo, g_hi = _support(g_prior)
+    rabi = np.geomspace(max(g_lo, 0.02 * g_hi, 1e-3), g_hi, shape[1])  # meV
+    ex_g, rabi_g = (a.ravel() for a in np.meshgrid(ex, rabi, indexing="ij"))
+    g = 0.5e-3 * rabi_g  # eV
+    diff = ex_g[:, None] - lev[None, :]
+    same_side = np.all(diff > 0, axis=1) | np.all(diff < 0, axis=1)
+    e_c = lev[None, :] + g[:, None] ** 2 / np.where(diff == 0, np.nan, diff)
+    if problem.axis == "angle":
+        reg, y = np.sin(np.radians(x_in)) ** 2, 1.0 / e_c**2
+    else:
+        reg, y = x_in**2, e_c**2
+    design = np.column_stack([np.ones_like(reg), reg])
+    coef = np.linalg.lstsq(design, np.nan_to_num(y).T, rcond=None)[0]  # (2, G)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        if problem.axis == "angle":
+            e_c0, n_eff = 1.0 / np.sqrt(coef[0]), np.sqrt(coef[0] / -coef[1])
+        else:
+            e_c0, n_eff = np.sqrt(coef[0]), _HBARC_EV_UM / np.sqrt(coef[1])
+    ok = same_side & np.isfinite(e_c0) & np.isfinite(n_eff)
+    if not ok.any():
+        return None
+    theta = np.repeat(np.asarray(held, dtype=float)[None, :], ok.sum(), axis=0)
+    values = {"exciton_energy": ex_g[ok], "rabi_splitting": rabi_g[ok],
+              "cavity_energy": e_c0[ok], "n_eff": n_eff[ok]}
+    if np.isfinite(width) and width > 0:
+        values["cavity_linewidth"] = np.full(ok.sum(), width)
+        values["exciton_linewidth"] = np.full(ok.sum(), width)
+    lo, hi = space.bounds.T
+    for name, v in values.items():
+        if name in names:
+            j = names.index(name)
+            theta[:, j] = v
+    inside = np.all((theta >= lo) & (theta <= hi), axis=1)
+    if not inside.any():
+        return None
+    theta = theta[inside]
+    u = (theta - lo) / np.where(hi > lo, hi - lo, 1.0)
+    free = [j for j, name in enumerate(names) if name not in _HELD]
+    return theta, u[:, free]
+
+
+def _support(prior) -> tuple[float, float]:
+    """A finite range of a prior (its bounds, or mu -/+ 3 sigma)."""
+    if prior.kind in ("uniform", "loguniform"):
+        return float(prior.low), float(prior.high)
+    lo = getattr(prior, "low", None)
+    hi = getattr(prior, "high", None)
+    mu, sd = float(prior.mu), float(prior.sigma)
+    lo = mu - 3 * sd if lo is None or not np.isfinite(lo) else max(float(lo), mu - 3 * sd)
+    hi = mu + 3 * sd if hi is None or not np.isfinite(hi) else min(float(hi), mu + 3 * sd)
+    return lo, hi
+
+
 def _polish(post, space, x0: np.ndarray) -> MapResult:
     """A local optimum from ``x0``: L-BFGS-B with the gradient from one vectorised call.
 
@@ -399,6 +495,19 @@ def _search_modes(problem, starts: list[tuple[str, MapResult]], *,
         cand = Mode(r.x, float(r.log_post), r.scale, f"design point {rank}")
         if not any(_same(cand, m) for m in modes):
             modes.append(cand)
+    grid = _branch_grid(problem, held)
+    if grid is not None:
+        g_theta, g_u = grid
+        g_val = np.concatenate([np.asarray(post(g_theta[i:i + 1024]), dtype=float)
+                                for i in range(0, g_theta.shape[0], 1024)])
+        g_val = np.where(np.isfinite(g_val), g_val, -np.inf)
+        evaluations += g_theta.shape[0]
+        g_order = np.argsort(-g_val, kind="stable")
+        for rank, i in enumerate(_diverse(g_order, g_u, g_val, n_local, 0.5 * START_SEPARATION)):
+            r = _polish(post, space, g_theta[i])
+            cand = Mode(r.x, float(r.log_post), r.scale, f"branch grid point {rank}")
+            if not any(_same(cand, m) for m in modes):
+                modes.append(cand)
     modes.sort(key=lambda m: -m.log_post)
     # keep the usual start when the best is the same mode reached another way (same
     # start vector: same summary for the same seed)
