@@ -74,6 +74,10 @@ def _camera(args):
         exclude=tuple(args.exclude), **({"min_snr": args.min_snr} if "min_snr" in args else {}))
 
 
+#: model names (as summary.json writes them, and short forms) -> the library's model option
+_MODEL_WORDS = {"two_oscillator": "two", "three_oscillator": "three", "weak_coupling": "weak",
+                "two": "two", "three": "three", "weak": "weak"}
+
 _MAP_HELP = ("angle-resolved map: netCDF/HDF5, CSV, plain-text matrix or .npz (energy, "
              "wavelength or wavenumber axis; angle or k axis)")
 _KIND_HELP = ("spectrum kind (default: the file's 'kind' attribute, else emission); "
@@ -142,9 +146,11 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("dispersion", help="fit a coupled-oscillator model to an angle-resolved map")
     p.add_argument("map", type=Path, help=_MAP_HELP)
-    p.add_argument("--model", choices=["two", "three", "weak"], default="two",
-                   help="two: photon + one exciton; three: photon + two excitons; weak: the "
-                   "uncoupled cavity mode and exciton line")
+    p.add_argument("--model", choices=list(_MODEL_WORDS), default="two_oscillator",
+                   metavar="{two_oscillator,three_oscillator,weak_coupling}",
+                   help="two_oscillator: photon + one exciton; three_oscillator: photon + two "
+                   "excitons; weak_coupling: the uncoupled cavity mode and exciton line (the "
+                   "names summary.json uses; two, three and weak are accepted too)")
     p.add_argument("--kind", choices=["emission", "reflectance", "transmission"], default=None,
                    help=_KIND_HELP)
     p.add_argument("--peaks-only", action="store_true",
@@ -165,8 +171,9 @@ def build_parser() -> argparse.ArgumentParser:
         "predicts a spectrum left out of its fit (PSIS-LOO over spectra, in nats). A model "
         "whose addition the map does not identify is reported as not needed.")
     p.add_argument("map", type=Path, help=_MAP_HELP)
-    p.add_argument("--models", default="weak,two,three",
-                   help="comma-separated models to compare")
+    p.add_argument("--models", default="weak_coupling,two_oscillator,three_oscillator",
+                   help="comma-separated models to compare (weak, two and three are accepted "
+                   "too)")
     p.add_argument("--kind", choices=["emission", "reflectance", "transmission"], default=None,
                    help=_KIND_HELP)
     p.add_argument("--priors", type=Path, default=None, help=_PRIORS_HELP)
@@ -402,7 +409,7 @@ def _cmd_dispersion(args) -> int:
     try:
         result = fit_dispersion(
             args.map,
-            model=args.model,
+            model=_MODEL_WORDS[args.model],
             kind=args.kind,
             peaks_only=args.peaks_only,
             **_fit_options(args, out),
@@ -451,7 +458,8 @@ def _cmd_compare(args) -> int:
     out = args.out or Path("polkit-out") / f"{args.map.stem}-compare"
     result = compare_dispersion_models(
         args.map,
-        models=[m.strip() for m in args.models.split(",") if m.strip()],
+        models=[_MODEL_WORDS.get(m.strip(), m.strip()) for m in args.models.split(",")
+                if m.strip()],
         kind=args.kind,
         priors=args.priors,
         seed=args.seed,

@@ -56,7 +56,7 @@ def test_every_option_and_argument_has_help_and_meaningful_defaults_show():
             assert action.help, f"polkit {name}: {action.option_strings or action.dest} has no help"
         text = " ".join(p.format_help().split())
         if name == "dispersion":
-            assert "(default: two)" in text and "transmission" in text
+            assert "(default: two_oscillator)" in text and "transmission" in text
         if name == "budget":
             assert "(default: 4000)" in text
 
