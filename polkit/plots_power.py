@@ -119,6 +119,7 @@ def fit_figure(result, *, n_draws: int = 300):
             ax.fill_between(grid[sl], lo, hi, color=colour, alpha=0.3, lw=0)
             ax.plot(grid[sl], med, "-", color=colour, lw=1.2,
                     label="median, 68 %" if start == 0 else None)
+        _mark_thresholds(ax, result)
         ax.set_xlabel("pump power [mW]")
         ax.set_ylabel(_LABELS[name].format(units=problem.intensity_units, e_ref=problem.e_ref or 0))
         if problem.model == "reservoir":
@@ -131,6 +132,29 @@ def fit_figure(result, *, n_draws: int = 300):
     fig.suptitle(f"{title} ({'converged' if result.converged else 'NOT converged'})")
     fig.tight_layout()
     return fig
+
+
+#: threshold draws marked on the fit figure, with their line style and label
+_THRESHOLDS = (("power_up_threshold", "--", "up-sweep threshold"),
+               ("power_down_threshold", ":", "down-sweep threshold"),
+               ("threshold_power", "--", "condensation threshold"))
+
+
+def _mark_thresholds(ax, result) -> None:
+    """Vertical lines at the median thresholds, with their 68 % intervals shaded."""
+    post = result.posterior
+    for name, style, label in _THRESHOLDS:
+        if name not in post:
+            continue
+        values = np.asarray(result.draws(name), dtype=float)
+        values = values[np.isfinite(values)]
+        if values.size == 0:
+            continue
+        lo, med, hi = np.percentile(values, [16, 50, 84])
+        spot = " (spot centre)" if getattr(result, "spot", "point") == "gaussian" else ""
+        ax.axvspan(lo, hi, color="0.5", alpha=0.15, lw=0)
+        ax.axvline(med, color="0.2", ls=style, lw=1.0,
+                   label=f"{label}{spot}: {med:.3g} mW (68 % band)")
 
 
 def residual_points(ax, problem, r: np.ndarray, *, labelled: bool = False) -> float:
