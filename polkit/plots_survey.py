@@ -52,13 +52,21 @@ def _limits(ds) -> tuple[float, float, float, float]:
     return x.min() - pad, x.max() + pad, y.min() - 2.0 * pad, y.max() + pad
 
 
-def _norm(name: str, values: np.ndarray):
+def _norm(name: str, values: np.ndarray, half: np.ndarray | None = None):
+    """Colour scaling from the values; never narrower than 4 typical 68 % half-widths, so a
+    map whose values differ by less than their uncertainty does not stretch noise over the
+    whole colour map."""
     from matplotlib.colors import Normalize, TwoSlopeNorm
 
     finite = values[np.isfinite(values)]
     if finite.size == 0:
         return Normalize(0.0, 1.0), "viridis"
     lo, hi = float(finite.min()), float(finite.max())
+    if half is not None and np.isfinite(half).any():
+        need = 4.0 * float(np.nanmedian(half))
+        if hi - lo < need:
+            mid = 0.5 * (lo + hi)
+            lo, hi = mid - 0.5 * need, mid + 0.5 * need
     if hi <= lo:
         lo, hi = lo - 0.5 * max(abs(lo), 1e-9), hi + 0.5 * max(abs(hi), 1e-9)
     if name == "detuning" and lo < 0.0 < hi:
@@ -104,7 +112,11 @@ def wafer_map(ds, name: str, *, ax=None, statistic: str = "median", surface=None
     y = np.asarray(ds["y"].values, dtype=float)
     status = np.array([str(s) for s in ds["status"].values])
     size = _marker_size(len(x))
-    auto_norm, auto_cmap = _norm(name, values)
+    half = None
+    if "statistic" in var.dims and {"q16", "q84"} <= set(map(str, var["statistic"].values)):
+        half = 0.5 * (np.asarray(var.sel(statistic="q84").values, dtype=float)
+                      - np.asarray(var.sel(statistic="q16").values, dtype=float))
+    auto_norm, auto_cmap = _norm(name, values, half)
     norm = norm or auto_norm
     cmap = cmap or auto_cmap
     shown = np.isfinite(values) & np.isfinite(x) & np.isfinite(y)
@@ -116,12 +128,21 @@ def wafer_map(ds, name: str, *, ax=None, statistic: str = "median", surface=None
         art = ax.scatter(x[nc], y[nc], c=values[nc], s=size, marker="s", norm=norm, cmap=cmap,
                          edgecolors="tab:orange", linewidths=2.0, zorder=3,
                          label="did not converge")
+    if half is not None:  # hatch the positions whose interval spans a quarter of the colours
+        span = float(norm.vmax - norm.vmin) if norm.vmax is not None else np.inf
+        wide = shown & np.isfinite(half) & (2.0 * half > 0.25 * span)
+        if wide.any():
+            ax.scatter(x[wide], y[wide], s=size, marker="s", facecolors="none",
+                       edgecolors="0.3", hatch="////", linewidths=0.0, zorder=4,
+                       label="68 % interval > 1/4 of the colour range")
     bad = ~shown & np.isfinite(x) & np.isfinite(y)
     if bad.any():
         ax.scatter(x[bad], y[bad], marker="x", s=0.6 * size, c="0.5", zorder=3, label="failed")
     if np.count_nonzero(shown) <= 30:  # few positions: print the values under the markers
-        for xi, yi, vi in zip(x[shown], y[shown], values[shown], strict=True):
-            ax.annotate(f"{vi:.3g}", (xi, yi), xytext=(0, -0.9 * np.sqrt(size) - 2),
+        errs = half[shown] if half is not None else np.full(np.count_nonzero(shown), np.nan)
+        for xi, yi, vi, ei in zip(x[shown], y[shown], values[shown], errs, strict=True):
+            text = f"{vi:.3g}" if not np.isfinite(ei) else f"{vi:.3g}\n±{ei:.2g}"
+            ax.annotate(text, (xi, yi), xytext=(0, -0.9 * np.sqrt(size) - 2),
                         textcoords="offset points", ha="center", va="top", fontsize=6.5,
                         zorder=5)
     if surface is not None:
