@@ -234,11 +234,19 @@ def test_spike_finder_masks_ten_injected_spikes(seed, gain):
     clean, _ = _steep_map(seed, gain=gain)
     da, truth, main_pixels = _inject(clean, seed + 10)
     spikes, _ = find_spikes(da)
-    assert all(spikes[i, j] for i, j in main_pixels)
+    # a spike must rise three times above anything near it in the neighbouring rows (so the
+    # peak of an undersampled line is never taken for one); a spike that lands next to a
+    # brighter branch is then left to the likelihood's outlier mask: at most 2 of 10 here
+    found = [spikes[i, j] for i, j in main_pixels]
+    assert sum(found) >= 8
     assert not (spikes & ~truth).any()
     out = mask_spikes(da)
     masked = np.isnan(out.values)
-    assert masked[truth].all()  # the second pixels fall inside the one-pixel margin
+    hit = np.zeros_like(truth)
+    for (i, j), f in zip(main_pixels, found, strict=True):
+        if f:
+            hit[max(i - 1, 0):i + 2, max(j - 1, 0):j + 2] = True
+    assert masked[truth & hit].all()  # the second pixels fall inside the one-pixel margin
     assert out.attrs["masked"] == 1
     rec = json.loads(out.attrs["preprocessing"])["spikes"]
     assert rec["spikes"] == int(spikes.sum()) and rec["pixels"] == int(masked.sum())
@@ -363,3 +371,18 @@ def test_dispersion_command_prints_and_records_the_masks(tmp_path, capsys):
     assert prov["preprocessing"]["spikes"]["spikes"] == n_spikes
     assert prov["preprocessing"]["excluded"]["windows"] == ["1.52:1.53 eV"]
     assert prov["peak_min_snr"] == 6.0
+
+
+def test_peaks_of_undersampled_lines_are_not_taken_for_spikes():
+    # common practice, no published source: with lines about one pixel wide the peak pixel's
+    # height changes from row to row with the sampling phase (by far more than the noise on
+    # a bright line); a coarse map of 6 angles x 60 energies must lose no pixel to the finder
+    rng = np.random.default_rng(11)
+    angle = np.linspace(-10.0, 10.0, 6)
+    energy = np.linspace(1.52, 1.56, 60)  # 0.68 meV pixels for 0.3-0.8 meV lines
+    lp, up = _branches(angle, ex=1.545, ec0=1.541, n_eff=3.4, g=0.005)
+    mean = 100.0 + 4000.0 * _lorentz(energy[None], lp[:, None], 0.0005) \
+        + 1500.0 * _lorentz(energy[None], up[:, None], 0.0008)
+    counts = rng.poisson(mean) + rng.normal(0.0, 4.0, mean.shape)
+    spikes, _ = find_spikes(_map(counts, angle, energy, gain=1.0, read_noise=4.0))
+    assert int(spikes.sum()) == 0

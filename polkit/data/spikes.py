@@ -108,6 +108,11 @@ def _robust_sigma(x: np.ndarray) -> np.ndarray:
     return np.maximum(np.where(np.isfinite(local), local, overall), overall)
 
 
+#: how many times taller than anything within reach in the neighbouring angle rows a spike
+#: must rise (common practice, no published source)
+SPIKE_RATIO = 3.0
+
+
 def _spike_pass(x, protect, threshold, reach, terms):
     # energy neighbours: masked pixels and the ends of the axis protect (+inf)
     xe = np.where(protect, np.inf, x)
@@ -151,12 +156,18 @@ def _spike_pass(x, protect, threshold, reach, terms):
     u2, d2 = _shift(env, -2, 0, -np.inf), _shift(env, 2, 0, -np.inf)
     pu, pd = _shift(near, -1, 0, -np.inf), _shift(near, 1, 0, -np.inf)
     with np.errstate(invalid="ignore"):
-        a_exc = np.maximum.reduce([
-            x - np.maximum(u1, d1),
-            np.minimum(x, pd) - np.maximum(u1, d2),
-            np.minimum(x, pu) - np.maximum(u2, d1),
+        # a spike stands out from the rows beside it both absolutely (by the limit) and
+        # relatively (SPIKE_RATIO times their tallest rise within reach): the peak pixel
+        # of an undersampled line changes height from row to row with the sampling phase,
+        # by far more than the noise on a bright line, but not by a factor of three
+        alone = np.maximum.reduce([
+            (x - np.maximum(u1, d1) > limit) & (x > SPIKE_RATIO * np.maximum(u1, d1)),
+            (np.minimum(x, pd) - np.maximum(u1, d2) > limit)
+            & (np.minimum(x, pd) > SPIKE_RATIO * np.maximum(u1, d2)),
+            (np.minimum(x, pu) - np.maximum(u2, d1) > limit)
+            & (np.minimum(x, pu) > SPIKE_RATIO * np.maximum(u2, d1)),
         ])
-        return finite & energy_ok & (a_exc > limit)  # noqa: RET504
+        return finite & energy_ok & alone  # noqa: RET504
 
 
 def find_spikes(da: xr.DataArray, *, threshold: float = 8.0, reach: int = 12,

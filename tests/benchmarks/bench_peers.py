@@ -76,17 +76,25 @@ class ScriptModel:
         Prior kind (``"uniform"`` or ``"loguniform"``) and support of each column.
     """
 
-    def __init__(self, angle_deg, energy, y, inv_var, names, kinds, bounds):
+    def __init__(self, angle_deg, energy, y, inv_var, names, kinds, bounds,
+                 background: str = "constant"):
         self.angle = np.asarray(angle_deg, dtype=float)
         self.energy = np.asarray(energy, dtype=float)
         self.sw = np.sqrt(np.asarray(inv_var, dtype=float))
-        self.rhs = np.asarray(y, dtype=float) * self.sw
+        # masked pixels (NaN) carry zero weight
+        self.rhs = np.nan_to_num(np.asarray(y, dtype=float)) * self.sw
+        # background per angle: a constant, or a constant and a slope over the window
+        mid = 0.5 * (self.energy[0] + self.energy[-1])
+        half = 0.5 * (self.energy[-1] - self.energy[0]) or 1.0
+        self.bg = [np.ones_like(self.energy)] + (
+            [(self.energy - mid) / half] if background == "linear" else [])
         self.col = {n: i for i, n in enumerate(names)}
         self.log_cols = np.array([k == "loguniform" for k in kinds])
         self.bounds = np.asarray(bounds, dtype=float)
         n_pixels = int(np.count_nonzero(self.sw > 0))
         active = int(np.count_nonzero((self.sw > 0).any(axis=1)))
-        self.n_dof = n_pixels - 3 * active  # two amplitudes and a background per angle
+        # two amplitudes and the background columns per angle
+        self.n_dof = n_pixels - (2 + len(self.bg)) * active
         self.sin2 = np.sin(np.deg2rad(self.angle)) ** 2
 
     def weighted_residual(self, phys: np.ndarray) -> np.ndarray:
@@ -109,7 +117,7 @@ class ScriptModel:
         res = np.stack([r_lo, 1.0 - r_lo], axis=-1)  # (W, A, 2)
         # branch lines -Im(r / (E - eps)) / pi in real arithmetic: with u = E - Re eps and
         # h = -Im eps, (Re r h - Im r u) / (pi (u^2 + h^2))
-        design = np.empty((w, a, 3, self.energy.size))
+        design = np.empty((w, a, 2 + len(self.bg), self.energy.size))
         u = self.energy - eps.real[..., None]
         h = -eps.imag[..., None]
         lines = design[:, :, :2]
@@ -119,7 +127,8 @@ class ScriptModel:
         u += h * h
         u *= np.pi
         lines /= u
-        design[:, :, 2] = 1.0
+        for j, col in enumerate(self.bg):
+            design[:, :, 2 + j] = col
         design *= self.sw[None, :, None, :]
         gram = np.einsum("wake,wale->wakl", design, design)
         cross = np.einsum("wake,ae->wak", design, self.rhs)
@@ -245,19 +254,16 @@ def polkit_default_fit(da, *, seed: int, max_steps: int | None = None):
     from polkit.errors import ConvergenceWarning
     from polkit.workflows._steps import posterior_theta, sample_problem, step_limits
     from polkit.workflows.dispersion import DEFAULT_STEPS, prepare_dispersion
-    from polkit.workflows.dispersion_stages import (
-        calibrate_problem_noise,
-        refine_mode,
-        table_mode,
-        whole_map_start,
-    )
+    from polkit.workflows.dispersion_robust import protected_mode
+    from polkit.workflows.dispersion_search import search_modes
+    from polkit.workflows.dispersion_stages import table_mode, whole_map_start
 
     t0 = time.perf_counter()
     problem, begin = prepare_dispersion(da)
     table_map = table_mode(problem, begin.x0)
-    start = whole_map_start(problem, begin.x0, table_map.x)
-    calibrate_problem_noise(problem, start.x, begin.source.data.attrs)
-    start = refine_mode(problem, start.x)
+    search = search_modes(problem, [("usual start",
+                                     whole_map_start(problem, begin.x0, table_map.x))])
+    start, _ = protected_mode(problem, search.best, begin.source.data, begin.x0, table_map.x)
     t1 = time.perf_counter()
     with warnings.catch_warnings():  # an unconverged run is reported, not raised
         warnings.simplefilter("ignore", ConvergenceWarning)
@@ -286,7 +292,8 @@ def script_model_for(problem) -> ScriptModel:
     space = problem.space
     kinds = [p.prior.kind for p in space]
     return ScriptModel(problem.in_plane, problem.energy, problem.y, problem.inv_var,
-                       space.names, kinds, space.bounds)
+                       space.names, kinds, space.bounds,
+                       background=getattr(problem, "background", "constant"))
 
 
 def same_likelihood(problem, model: ScriptModel, x: np.ndarray) -> float:
