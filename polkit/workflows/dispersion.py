@@ -46,6 +46,7 @@ from ._steps import (
     job_identity,
     locks_output,
     posterior_theta,
+    quick_answer,
     sample_problem,
     step_limits,
     warn_large_map,
@@ -261,7 +262,8 @@ def fit_dispersion(
     stop_event=None,
     figures: bool = True,
     profile: str = "lorentzian",
-) -> DispersionFit:
+    quick: bool = False,
+) -> DispersionFit | dict:
     """Fit a coupled-oscillator model to an angle-resolved map.
 
     Parameters
@@ -299,6 +301,9 @@ def fit_dispersion(
         Write figures to ``out``.
     profile
         Peak shape of the peak table, ``"lorentzian"`` or ``"voigt"``.
+    quick
+        Stop after the quick answer at the mode (Laplace summary, labelled approximate):
+        it is returned as a dict and written to ``out/quick_summary.json``; no chains.
 
     Returns
     -------
@@ -311,7 +316,7 @@ def fit_dispersion(
         angle_window=angle_window, energy_window=energy_window, load_options=load_options,
         profile=profile,
     )
-    checkpoint = checkpoint_file(out, resume, refusal=DataError(
+    checkpoint = None if quick else checkpoint_file(out, resume, refusal=DataError(
         "resume needs the output folder that holds the checkpoint; pass out=.", field="resume"))
     steps = step_limits(DEFAULT_STEPS, max_steps, min_steps)
 
@@ -329,6 +334,8 @@ def fit_dispersion(
         start, noise_note = protected_mode(problem, search.best, begin.source.data, begin.x0,
                                            table_map.x)
         search = search.rescored(problem, start)
+    if quick:  # the Laplace summary at the mode only: no chains
+        return quick_answer(problem, start, log_likelihood=like, out=out)
 
     identity = job_identity(begin.source.sha256, f"{model} {begin.source.kind}", path_used,
                             noise_note, dict(angle_window=angle_window, energy_window=energy_window,
