@@ -293,10 +293,27 @@ class _Ensemble:
         steps = iter(range(start, start + n_steps))
 
         def before_step() -> None:
-            # someone else may be filling the disk: check again before every step
+            # someone else may be filling the disk: check again before every step, for this
+            # step and the finished ones still waiting in memory (see checkpoint.FLUSH_SECONDS)
             step = next(steps)
-            need = _with_margin(sum(g.new_bytes(step, step + 1) for g in growth))
-            check_room(path, need, purpose="the next MCMC step", fix=_ROOM_FIX)
+            waiting = self.backend.flushed_steps(step)
+            fresh = sum(g.new_bytes(step, step + 1) for g in growth)
+            try:
+                check_room(path, _with_margin(fresh), purpose="the next MCMC step",
+                           fix=_ROOM_FIX)
+            except OSError:
+                # a step that starts a new chunk is written at once (below), so the steps
+                # waiting in memory only fill chunks already on disk: writing them takes
+                # no new room.  Anything else is dropped (the file keeps the last flushed
+                # step and its random state)
+                if sum(g.new_bytes(waiting, step) for g in growth) == 0:
+                    self.backend.flush_pending()
+                else:
+                    self.backend.drop_pending()
+                raise
+            # the step that first touches a chunk is flushed with it, while the room
+            # just found is still there
+            self.backend.flush_now = fresh > 0
 
         self.backend.before_step = before_step
         try:
