@@ -11,10 +11,19 @@ Run plan (a pure function of the stored chains, so a resumed run takes the same
 decisions and produces the same chain as an uninterrupted one):
 
 1. each ensemble runs on its own until its gate passes (checked every
-   ``check_every`` steps from ``min_steps`` on) or ``max_steps`` is reached;
-2. all ensembles are then continued to a common length; in strict mode the common
-   length grows (by half, at least ``check_every`` steps) until nested R-hat over
-   the ensembles is at most ``nested_rhat_max`` or ``max_steps`` is reached.
+   ``check_every`` steps from ``min_steps`` on) or ``max_steps`` is reached.  The gate
+   (:func:`~polkit.inference.diagnostics.convergence_gate`) asks for what a user needs:
+   bulk and tail ESS of the reported draws of at least ``ess_target`` per parameter
+   (less for noise parameters), rank-normalised R-hat over groups of walkers at most
+   ``rhat_max``, a chain of at least ``autocorr_factor`` autocorrelation times as a
+   safety floor, acceptance in range and no stuck walkers;
+2. all ensembles are then continued to a common length; with several ensembles the
+   common length grows (by half, at least ``check_every`` steps) until the pooled ESS
+   reaches ``ess_target`` and, in strict mode, nested R-hat over the ensembles is at
+   most ``nested_rhat_max``, or ``max_steps`` is reached.
+
+Every check reads only the stored steps (the checkpoint is flushed before each), so a
+resumed run takes the same decisions.
 
 The HDF5 checkpoint (its layout, writes and room checks) lives in
 :mod:`polkit.inference.checkpoint`.
@@ -64,19 +73,22 @@ log = logging.getLogger(__name__)
 
 
 def default_moves() -> list:
-    """Differential-evolution moves: ``[(DEMove(), 0.8), (DESnookerMove(), 0.2)]``.
+    """Differential-evolution moves: ``[(DEMove(), 1.0)]``.
 
     Why: each walker's DE proposal is built from the difference of two other
     walkers (Ter Braak 2006; Nelson et al. 2014), so proposals adapt to the scale
-    and correlations of the posterior while every walker gets its own; the snooker
-    variant (Ter Braak and Vrugt 2008) adds moves along lines through other walkers,
-    which helps on curved and multimodal posteriors.  The stretch move loses
+    and correlations of the posterior while every walker gets its own.  The snooker
+    variant (Ter Braak and Vrugt 2008) was part of the set (weight 0.2) and was
+    measured against DE alone by effective samples per second
+    (``tests/benchmarks/bench_moves.py``, README "Performance"): its per-walker
+    proposal loop costs more than it gains, on a curved (banana) posterior as well
+    as on a bimodal one and on the demo map's posterior.  The stretch move loses
     efficiency as the dimension grows, and a full-covariance Gaussian move would
     give every walker the same proposal distribution.
     """
     import emcee
 
-    return [(emcee.moves.DEMove(), 0.8), (emcee.moves.DESnookerMove(), 0.2)]
+    return [(emcee.moves.DEMove(), 1.0)]
 
 
 # ----------------------------------------------------------------------------------------

@@ -62,12 +62,14 @@ QUICK_SUMMARY = "quick_summary.json"
 
 
 def quick_answer(problem, start: MapResult, *, log_likelihood: Callable | None = None,
-                 out: str | os.PathLike | None = None) -> dict:
+                 out: str | os.PathLike | None = None, required: bool = True) -> dict:
     """The Laplace summary at the mode, logged and (with ``out``) saved as quick_summary.json.
 
     Labelled :data:`polkit.inference.laplace.LABEL` wherever it appears.  The summary is
     JSON-ready (see :func:`polkit.inference.laplace.laplace_summary`); every value has its
-    ``units``.  With ``out`` it is written atomically to ``out/quick_summary.json``.
+    ``units``.  With ``out`` it is written atomically to ``out/quick_summary.json``; when that
+    fails, the :class:`OSError` is raised if ``required`` (the quick answer is the result),
+    else logged (a full run goes on).
     """
     from ..io import write_json
 
@@ -75,8 +77,15 @@ def quick_answer(problem, start: MapResult, *, log_likelihood: Callable | None =
     summary = laplace.laplace_summary(like, problem.space, start)
     log.info("%s", laplace.format_quick(summary))
     if out is not None:
-        Path(out).mkdir(parents=True, exist_ok=True)
-        write_json(Path(out) / QUICK_SUMMARY, summary)
+        try:
+            Path(out).mkdir(parents=True, exist_ok=True)
+            write_json(Path(out) / QUICK_SUMMARY, summary)
+        except OSError as exc:
+            if required:
+                raise
+            # before a full run the quick answer is a courtesy: the run goes on, and a disk
+            # that is really full stops it with the checkpoint's own clear error
+            log.warning("quick answer not saved: %s", exc)
     return summary
 
 
@@ -364,7 +373,8 @@ def sample_problem(
     quick = None
     if isinstance(start, MapResult):  # the first answer, in seconds, before any MCMC step
         quick = quick_answer(problem, start, log_likelihood=like,
-                             out=checkpoint.parent if checkpoint is not None else None)
+                             out=checkpoint.parent if checkpoint is not None else None,
+                             required=False)
     walkers = walker_count(n_walkers, space)
     job = dict(identity) if identity is not None else None
     with folder_lock(checkpoint.parent if checkpoint is not None else None):
