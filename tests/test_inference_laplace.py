@@ -113,3 +113,17 @@ def test_cli_quick_writes_only_the_labelled_quick_summary(tmp_path, capsys):
     rabi = summary["parameters"]["rabi_splitting"]
     assert rabi["units"] == "meV" and 0 < rabi["sd"] < 0.1 * rabi["median"]
     assert "noise_scale" not in summary["parameters"]
+
+
+def test_fit_power_quick_returns_the_quick_answer_without_chains(tmp_path):
+    # common practice, no published source: quick=True stops at the mode of the invented
+    # demo power series; the curvature there identifies every physics parameter
+    from polkit.workflows.power import fit_power
+
+    out = tmp_path / "p"
+    summary = fit_power(DEMO / "ds1_p1_power_coherent.csv", model="coherent", seed=1,
+                        out=out, progress=False, quick=True)
+    assert summary["available"] and summary["method"] == LABEL
+    assert not (out / "chains.h5").exists() and (out / "quick_summary.json").exists()
+    for v in summary["parameters"].values():
+        assert v["units"] and v["sd"] > 0 and v["q2_5"] < v["median"] < v["q97_5"]

@@ -273,3 +273,29 @@ def test_global_random_state_is_untouched(map_start):
     after = np.random.get_state()  # noqa: NPY002
     assert before[0] == after[0] and before[2:] == after[2:]
     np.testing.assert_array_equal(before[1], after[1])
+
+
+def test_a_converged_run_reports_what_the_gate_asked_for(converged_run):
+    # Source: Vehtari et al., Bayesian Analysis 16, 667 (2021): bulk and tail ESS and
+    # rank-normalised R-hat of the reported draws; the run stops once every parameter's
+    # reach the target (1000) and R-hat over four groups of walkers is <= 1.01
+    d = converged_run.diagnostics
+    assert d["converged"] and d["ess_target"] == {"a": 1000.0, "b": 1000.0}
+    assert d["min_ess_bulk"] >= 1000 and d["min_ess_tail"] >= 1000
+    assert d["walker_groups"] == 4 and max(d["group_rhat"].values()) <= 1.01
+    # the chain is at least 25 autocorrelation times long (the floor), but not required to
+    # reach the former 50
+    assert d["steps"] >= 25 * d["max_autocorr_time"]
+
+
+def test_noise_parameters_get_the_lower_ess_target(map_start):
+    # Source: Vehtari et al., Bayesian Analysis 16, 667 (2021) recommend ESS > 400; a noise
+    # scale is only marginalised over, so its target is min(ess_target, 400)
+    space = ParameterSpace(list(SPACE) + [Parameter("noise_scale", "1",
+                                                    Prior.uniform(0.5, 2.0))])
+
+    def like(theta):
+        return loglike(theta[:, :2]) - 0.5 * ((theta[:, 2] - 1.0) / 0.1) ** 2
+
+    out = run_ensemble(like, space, np.r_[map_start.x, 1.0], seed=5, **FAST)
+    assert out.diagnostics["ess_target"] == {"a": 1000.0, "b": 1000.0, "noise_scale": 400.0}

@@ -146,9 +146,11 @@ def format_quick(summary: dict[str, Any]) -> str:
     head = f"quick answer -- {summary['method']}"
     if not summary.get("available"):
         return f"{head}: not available: {summary.get('reason', '')}"
-    rows = [head, f"{'parameter':20s} {'units':6s} {'median':>14s} {'sd':>12s}  68 % interval"]
+    w = max([20, *(len(n) for n in summary["parameters"])])
+    u = max([6, *(len(v["units"]) for v in summary["parameters"].values())])
+    rows = [head, f"{'parameter':{w}s} {'units':{u}s} {'median':>14s} {'sd':>12s}  68 % interval"]
     for name, v in summary["parameters"].items():
-        rows.append(f"{name:20s} {v['units']:6s} {v['median']:14.7g} {v['sd']:12.4g}  "
+        rows.append(f"{name:{w}s} {v['units']:{u}s} {v['median']:14.7g} {v['sd']:12.4g}  "
                     f"[{v['q16']:.7g}, {v['q84']:.7g}]" + (" (clipped at prior bound)"
                                                            if v.get("clipped") else ""))
     return "\n".join(rows)
