@@ -523,8 +523,9 @@ def run_ensemble(
         Limit on rank-normalised R-hat over ``walker_groups`` groups of the walkers of an
         ensemble (:func:`polkit.inference.diagnostics.grouped_rhat`).
     ess_rhat
-        Compute ArviZ's bulk/tail ESS and R-hat for the diagnostics (``False`` leaves
-        them NaN: for a short preliminary run whose draws are not reported).
+        Compute ArviZ's bulk/tail ESS and R-hat for the diagnostics and gate on them
+        (``False`` leaves them NaN and out of the gate: for a short preliminary run whose
+        draws are not reported).
     identity
         ``{field: value}`` of what decides the posterior beyond the parameter space (input
         SHA-256, model, route, likelihood and preprocessing settings); with the effective
