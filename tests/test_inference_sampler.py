@@ -322,13 +322,13 @@ def test_default_moves_reproduce_the_spread_of_a_correlated_gaussian():
         return -0.5 * np.einsum("wi,ij,wj->w", theta, prec, theta)
 
     ratios = []
-    for seed in (1, 2):
+    for seed in (1, 2, 3):
         with warnings.catch_warnings():  # fixed length on purpose
             warnings.simplefilter("ignore", ConvergenceWarning)
             out = run_ensemble(gauss, space, np.zeros(p), seed=seed, n_walkers=32,
-                               max_steps=4000, min_steps=4000, check_every=4000,
+                               max_steps=8000, min_steps=8000, check_every=8000,
                                progress=False, ess_rhat=False)
-        x = out.chains[0, 800:].reshape(-1, p)
+        x = out.chains[0, 1000:].reshape(-1, p)
         q16, q84 = np.quantile(x, [0.16, 0.84], axis=0)
         ratios.append(0.5 * (q84 - q16) / (stats.norm.ppf(0.84) * sd))
-    assert abs(np.mean(ratios) - 1.0) < 0.015, np.round(ratios, 3)
+    assert abs(np.mean(ratios) - 1.0) < 0.01, np.round(ratios, 3)
