@@ -31,8 +31,7 @@ import numpy as np
 
 from ..errors import ConvergenceWarning, PolkitError
 from ..folder_lock import folder_lock
-from ..inference import MapResult, SamplerOutput, run_ensemble
-from ..inference import laplace
+from ..inference import MapResult, SamplerOutput, laplace, run_ensemble
 from ..inference.checkpoint import prepare_checkpoint, start_stored
 
 __all__ = [
