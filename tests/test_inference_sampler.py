@@ -187,6 +187,10 @@ def test_bad_settings_raise_config_error(map_start):
         run_ensemble(loglike, SPACE, map_start, seed=-1, progress=False)
     with pytest.raises(ConfigError, match="checkpoint"):
         run_ensemble(loglike, SPACE, map_start, resume=True, progress=False)
+    with pytest.raises(ConfigError, match="ess_target must be > 0"):
+        run_ensemble(loglike, SPACE, map_start, ess_target=0, progress=False)
+    with pytest.raises(ConfigError, match="walker_groups must be an int >= 2"):
+        run_ensemble(loglike, SPACE, map_start, walker_groups=1, progress=False)
 
 
 def test_stop_event_ends_cleanly_and_marks_not_converged(map_start):
