@@ -161,6 +161,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--wavelength-medium", choices=["vacuum", "air"], default=None,
                    help=_MEDIUM_HELP)
     _add_camera_options(p, detection=True)
+    p.add_argument("--quick", action="store_true", help=_QUICK_HELP)
     _add_common_fit_options(p)
 
     p = sub.add_parser(
@@ -209,6 +210,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--spot", choices=["point", "gaussian", "flat"], default=None,
                    help="pump-spot profile of the coherent model (default: the calibration "
                         "file's spot key, else point)")
+    p.add_argument("--quick", action="store_true", help=_QUICK_HELP)
     _add_common_fit_options(p)
 
     p = sub.add_parser("budget", help="energy per operation of a device built from the sample")
@@ -325,6 +327,20 @@ def _cmd_report(args) -> int:
     return EXIT_OK
 
 
+_QUICK_HELP = ("stop after the quick answer at the most probable point (Laplace curvature "
+               "summary, approximate; writes quick_summary.json, no MCMC)")
+
+
+def _print_quick(summary: dict, out: Path) -> int:
+    from .inference.laplace import format_quick
+    from .workflows._steps import QUICK_SUMMARY
+
+    print(format_quick(summary))
+    print(f"approximate answer written to {out / QUICK_SUMMARY}; run without --quick for "
+          "the MCMC posterior")
+    return EXIT_OK
+
+
 def _progress(args) -> bool:
     """Progress bars only on a terminal: a log file would get one line per update."""
     return not args.quiet and sys.stderr.isatty()
@@ -348,7 +364,10 @@ def _cmd_power(args) -> int:
         dispersion=args.dispersion,
         spot=args.spot,
         **_fit_options(args, out),
+        quick=args.quick,
     )
+    if args.quick:
+        return _print_quick(result, out)
     print(result.table())
     print(f"results written to {out}")
     check = result.model_check
@@ -403,6 +422,11 @@ def _cmd_dispersion(args) -> int:
     from .workflows.dispersion import fit_dispersion
 
     out = args.out or Path("polkit-out") / args.map.stem
+    if args.quick:
+        summary = fit_dispersion(args.map, model=args.model, kind=args.kind,
+                                 peaks_only=args.peaks_only, **_fit_options(args, out),
+                                 wavelength_medium=args.wavelength_medium, quick=True)
+        return _print_quick(summary, out)
     # a second process gets matplotlib ready while the fit samples, then draws the corner
     # plot alongside the other figures (see polkit._corner_process)
     corner_process = CornerProcess.start()

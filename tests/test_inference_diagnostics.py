@@ -132,19 +132,57 @@ def test_arviz_ess_of_independent_draws_is_about_the_draw_count():
 
 
 def test_gate_passes_a_long_stable_chain_and_names_what_fails_on_a_short_one():
-    # Source: polkit's gate (50 tau, ESS, R-hat) applied to AR(1) chains with tau = 3
-    # (Sokal 1997); acceptance is ~1 for continuous AR(1) moves, so the range is widened
+    # Source: AR(1) chains with tau = (1 + phi) / (1 - phi) = 3 (Sokal 1997); acceptance is
+    # ~1 for continuous AR(1) moves, so the range is widened.  3000 steps of 16 walkers
+    # give about 16 x 2250 / 3 = 12000 effective draws, far above the 1000 target
     rng = np.random.default_rng(7)
     chain = _ar1(rng, 0.5, 3000, 16)[:, :, None]
     log_prob = -0.5 * chain[..., 0] ** 2
-    prev = autocorr_time(chain[:2900][2900 // 4 :])
-    check = convergence_gate(chain, log_prob, prev, names=["x"], tau_rtol=0.05,
-                             acceptance_range=(0.15, 1.0))
+    check = convergence_gate(chain, log_prob, names=["x"], acceptance_range=(0.15, 1.0))
     assert check.passed, check.reasons
-    short = convergence_gate(chain[:100], log_prob[:100], None, names=["x"])
+    assert check.ess["min_ess_bulk"] >= 1000 and check.group_rhat["x"] <= 1.01
+    # the former rule (tau settled within tau_rtol) is still available
+    prev = autocorr_time(chain[:2900][2900 // 4 :])
+    assert convergence_gate(chain, log_prob, prev, names=["x"], tau_rtol=0.05,
+                            acceptance_range=(0.15, 1.0)).passed
+    # the floor in autocorrelation times (tau is underestimated on short chains: ~2 at 60)
+    short = convergence_gate(chain[:60], log_prob[:60], None, names=["x"], autocorr_factor=50)
     assert not short.passed
     text = " ".join(short.reasons)
     assert "shorter than 50 x" in text and "acceptance outside" in text
+    assert short.ess is None  # not computed when the cheap tests fail
+
+
+def test_gate_asks_for_the_ess_target_not_for_a_settled_tau():
+    # Source: AR(1) with phi = 0.9 has tau = 19 (Sokal 1997): 600 steps pass the 25-tau floor
+    # but 16 walkers then hold about 16 x (600 - 95) / 19 ~ 430 effective draws (< 1000);
+    # 3000 steps hold about 2200 (Vehtari et al., Bayesian Analysis 16, 667 (2021) ESS)
+    rng = np.random.default_rng(17)
+    chain = _ar1(rng, 0.9, 3000, 16)[:, :, None]
+    log_prob = -0.5 * chain[..., 0] ** 2
+    kw = dict(names=["x"], acceptance_range=(0.15, 1.0))
+    early = convergence_gate(chain[:600], log_prob[:600], **kw)
+    assert not early.passed
+    assert not any("shorter than" in r for r in early.reasons), early.reasons
+    assert any("bulk ESS below the target" in r for r in early.reasons), early.reasons
+    assert 200 < early.ess["min_ess_bulk"] < 800
+    assert convergence_gate(chain, log_prob, **kw).passed
+    # a lower target (dict form, as for a nuisance parameter) is met by the short chain
+    low = convergence_gate(chain[:600], log_prob[:600], ess_target={"x": 150.0}, **kw)
+    assert not any("ESS below" in r for r in low.reasons), low.reasons
+
+
+def test_gate_flags_a_group_of_walkers_that_sits_apart():
+    # Source: rank-normalised R-hat (Vehtari et al., Bayesian Analysis 16, 667 (2021)):
+    # one group of 4 of 16 walkers shifted by 0.5 sd: sqrt(1 + var of group means) ~ 1.02
+    rng = np.random.default_rng(27)
+    chain = rng.standard_normal((4000, 16, 1))
+    chain[:, 12:] += 0.5
+    log_prob = -0.5 * chain[..., 0] ** 2
+    check = convergence_gate(chain, log_prob, names=["x"], acceptance_range=(0.0, 1.0))
+    assert not check.passed
+    assert any("R-hat over groups of walkers" in r for r in check.reasons), check.reasons
+    assert check.group_rhat["x"] > 1.01
 
 
 _ESS_SCRIPT = r"""

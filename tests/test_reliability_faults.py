@@ -367,7 +367,8 @@ def test_full_disk_during_a_fit_gives_one_clear_line_and_keeps_old_results(map_f
     assert len(lines) == 1 and lines[0].startswith("polkit: error:"), proc.stderr[-2000:]
     assert f"cannot write {out / 'chains.h5'}: File too large" in lines[0]
     assert "ulimit -f" in lines[0] and "--resume" in lines[0]
-    assert sorted(p.name for p in out.iterdir()) == sorted([*RESULT_FILES, "chains.h5"])
+    assert sorted(p.name for p in out.iterdir()) == sorted([*RESULT_FILES, "chains.h5",
+                                                            "quick_summary.json"])
     stored, stored_lp = _stored_chain(out / "chains.h5")  # readable
     assert 0 < len(stored) < STEPS
 

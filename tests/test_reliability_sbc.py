@@ -118,8 +118,8 @@ def test_full_calibration_of_the_whole_map_noise_scale():
 # ----------------------------------------------------------------------------------------
 # seeds
 # ----------------------------------------------------------------------------------------
-SEEDS_CHECK = SamplerSettings(autocorr_factor=20.0, tau_rtol=0.2, min_steps=200, max_steps=3000,
-                              check_every=50)
+SEEDS_CHECK = SamplerSettings(autocorr_factor=20.0, ess_target=400.0, min_steps=200,
+                              max_steps=3000, check_every=50)
 
 
 def _fit(loglike, space, x0, seed):

@@ -3,9 +3,13 @@
 The file keeps emcee's layout (one group per ensemble, ``ensemble0`` ..., read by
 :class:`emcee.backends.HDFBackend`) plus polkit's attributes (parameter names and units,
 walkers, the root seed, the run plan's progress).  polkit's backend holds the file open
-during a stretch of steps and writes each step through HDF5's low-level calls into chunks
-that hold every walker of a run of steps, flushing after every step, so that a killed run
-loses no finished step.
+during a stretch of steps, keeps the steps of the last second in memory and writes them
+in one batch through HDF5's low-level calls into chunks that hold every walker of a run of
+steps, then flushes the file: at most once every :data:`FLUSH_SECONDS`, and always at the
+end of a stretch (before every gate check), when sampling stops on request, on an
+interrupt or an error.  The random state and the iteration count written with a batch are
+those after its last step, so a run killed between flushes (losing at most the last second
+of steps) resumes from the last flushed step to the chain an uninterrupted run gives.
 
 Room on disk: before each stretch of steps, and again before each stored step, the
 free space and the file-size limit are checked against what the checkpoint will need
@@ -25,6 +29,7 @@ import json
 import logging
 import math
 import os
+import time
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -44,6 +49,8 @@ _CHECKPOINT_FORMAT = 1
 _CHECKPOINT_METADATA_BYTES = 64 * 1024
 #: and this fraction of the stretch's own bytes
 _CHECKPOINT_MARGIN = 0.1
+#: the longest time finished steps wait in memory before they are written and flushed
+FLUSH_SECONDS = 1.0
 #: errno values that mean "no room" (full disk, quota, file-size limit)
 _NO_ROOM = {errno.ENOSPC, errno.EFBIG, getattr(errno, "EDQUOT", errno.ENOSPC)}
 
@@ -402,10 +409,20 @@ def _checkpoint_backend(path: Path, name: str):
         @contextlib.contextmanager
         def session(self):
             self._handle = h5py.File(self.filename, "a")
-            self._datasets = None
+            self._datasets = self._cache = None
+            self._pending = []
+            self._flushed_at = time.monotonic()
             try:
                 yield
+                self.flush_pending()
             except BaseException:
+                # the finished steps still waiting in memory go to disk first (a stop on
+                # request, an interrupt, a full disk found before a step): they were
+                # checked for room when they were taken
+                try:
+                    self.flush_pending()
+                except (OSError, RuntimeError) as exc:
+                    log.debug("could not write the last steps to %s: %s", self.filename, exc)
                 handle, self._handle = self._handle, None
                 # after a failed write HDF5 may be unable to flush on close; the error in
                 # flight says what went wrong, so a second one from close is dropped
@@ -459,6 +476,10 @@ def _checkpoint_backend(path: Path, name: str):
                                          chunks=_step_chunks(nwalkers, dt.itemsize))
                         g.attrs["has_blobs"] = True
             super().grow(ngrow, blobs)
+            if self._handle is not None:
+                # the new shape goes to disk before any step waits in memory: a stretch that
+                # stops before its first flush leaves nothing dirty for the file's close
+                self._handle.flush()
 
         def save_step(self, state, accepted):
             if self.before_step is not None:
@@ -484,24 +505,58 @@ def _checkpoint_backend(path: Path, name: str):
                                  f"{d['chain'].row_shape}")
             if (state.blobs is None) != ("blobs" not in d):
                 raise ValueError("blobs appeared or vanished between steps")
-            it = c["iteration"]
-            d["chain"].write(it, state.coords)
-            d["log_prob"].write(it, state.log_prob)
-            if state.blobs is not None:
-                d["blobs"].write(it, state.blobs)
+            # kept in memory (copies: emcee reuses nothing, but callers may) until the batch
+            # is written; the random state kept is the one after this step
+            self._pending.append((np.array(state.coords, dtype=float),
+                                  np.array(state.log_prob, dtype=float),
+                                  None if state.blobs is None else np.array(state.blobs)))
             c["accepted"] = c["accepted"] + accepted
+            c["pending_state"] = state.random_state
+            if self.flush_now or time.monotonic() - self._flushed_at >= FLUSH_SECONDS:
+                self.flush_now = False
+                self.flush_pending()
+
+        _pending = ()
+        _flushed_at = 0.0
+        #: set before a step that must be written and flushed at once (a new chunk)
+        flush_now = False
+
+        def flushed_steps(self, default: int) -> int:
+            """Steps written to the file so far in this stretch (``default`` before any)."""
+            return self._cache["iteration"] if self._cache is not None else default
+
+        def drop_pending(self):
+            """Forget the steps waiting in memory (they do not fit on disk)."""
+            if self._pending:
+                log.info("%d finished step(s) of %s could not be stored; a resumed run "
+                         "repeats them", len(self._pending), self.name)
+            self._pending = []
+
+        def flush_pending(self):
+            """Write the steps kept in memory in one batch, with the state after the last."""
+            if not self._pending or self._handle is None:
+                return
+            d, c = self._datasets, self._cache
+            it = c["iteration"]
+            rows = self._pending
+            d["chain"].write_rows(it, np.stack([r[0] for r in rows]))
+            d["log_prob"].write_rows(it, np.stack([r[1] for r in rows]))
+            if rows[0][2] is not None:
+                d["blobs"].write_rows(it, np.stack([r[2] for r in rows]))
             c["accepted_ds"].write(c["accepted"])
-            # the random state as emcee stores it; parts unchanged since the last step of
+            # the random state as emcee stores it; parts unchanged since the last write of
             # this stretch (the generator's name, the cached Gaussian) are not rewritten
             written, attrs = c["random_state"], c["attrs"]
-            for i, v in enumerate(state.random_state):
+            for i, v in enumerate(c["pending_state"]):
                 key = f"random_state_{i}"
                 if isinstance(v, np.ndarray) or written.get(key, _UNSET) != v:
                     attrs.set(key, v)
                     written[key] = v
-            attrs.set("iteration", it + 1)
-            c["iteration"] = it + 1
+            attrs.set("iteration", it + len(rows))
+            c["iteration"] = it + len(rows)
+            self._pending = []
             self._handle.flush()
+            self._flushed_at = time.monotonic()
 
     return _Backend(os.fspath(path), name=name)
 
@@ -523,6 +578,18 @@ class _RowWriter:
         self._file_space = dataset.id.get_space()
         self._memory_space = h5s.create_simple(self.row_shape or (1,))
         self._count = (1, *self.row_shape)
+
+    def write_rows(self, row: int, values: np.ndarray) -> None:
+        """Write ``len(values)`` consecutive steps from ``row`` on in one call."""
+        from h5py import h5s
+
+        arr = np.asarray(values)
+        if arr.dtype != self.dtype or arr.shape[1:] != self.row_shape:
+            self.dataset[row : row + len(arr)] = values
+            return
+        space = self.dataset.id.get_space()
+        space.select_hyperslab((row,) + (0,) * len(self.row_shape), arr.shape)
+        self.dataset.id.write(h5s.create_simple(arr.shape), space, np.ascontiguousarray(arr))
 
     def write(self, row: int, value) -> None:
         arr = np.asarray(value)

@@ -19,7 +19,7 @@ from __future__ import annotations
 import logging
 import math
 import warnings
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -33,6 +33,9 @@ __all__ = [
     "arviz_diagnostics",
     "GateCheck",
     "convergence_gate",
+    "burn_and_thin",
+    "grouped_rhat",
+    "ess_targets",
 ]
 
 log = logging.getLogger(__name__)
@@ -222,9 +225,66 @@ def arviz_diagnostics(draws: xr.Dataset) -> dict:
     return out
 
 
+def burn_and_thin(tau_max: float, length: int) -> tuple[int, int]:
+    """Burn-in (5 tau, at most half the chain) and thinning (tau / 2) of a chain of ``length``.
+
+    At least two draws per walker are kept.  An undefined ``tau`` burns half the chain and
+    keeps every step.  # common practice, no published source (burn-in of a few tau,
+    thinning below tau loses little effective sample size)
+    """
+    if math.isfinite(tau_max):
+        burn = min(int(math.ceil(5.0 * tau_max)), length // 2)
+        thin = max(1, int(0.5 * tau_max))
+    else:
+        burn, thin = length // 2, 1
+    thin = min(thin, max(1, (length - burn) // 2))
+    return burn, thin
+
+
+def _draws_dataset(kept: np.ndarray, names: Sequence[str]) -> xr.Dataset:
+    """(D, W, P) kept steps -> Dataset with walkers as chains, dims (chain, draw)."""
+    return xr.Dataset({n: (("chain", "draw"), kept[:, :, j].T) for j, n in enumerate(names)})
+
+
+def grouped_rhat(kept: np.ndarray, names: Sequence[str], groups: int = 4) -> dict[str, float]:
+    """Rank-normalised split R-hat over disjoint groups of walkers of one ensemble.
+
+    The walkers are cut into ``groups`` groups of neighbouring indices (emcee draws the
+    complementary halves of its moves at random at every step, so the indices carry no
+    meaning); each group's draws, in step order and walker by walker within a step, are
+    one chain of ArviZ's R-hat (Vehtari et al., Bayesian Analysis 16, 667 (2021)).  A
+    group that wandered off, or a trend within the window, shows as R-hat above 1.
+
+    Parameters
+    ----------
+    kept
+        Burned-in, thinned steps, shape ``(D, W, P)``.
+    names
+        Parameter names.
+    groups
+        Number of groups (at most ``W // 2``; walkers beyond equal groups are left out).
+    """
+    n_draw, n_walk, _ = kept.shape
+    g = max(2, min(int(groups), n_walk // 2))
+    size = n_walk // g
+    cut = kept[:, : g * size].reshape(n_draw, g, size, -1)  # (D, G, Wg, P)
+    chains = np.moveaxis(cut, 1, 0).reshape(g, n_draw * size, -1)  # step-major within a group
+    ds = xr.Dataset({n: (("chain", "draw"), chains[..., j]) for j, n in enumerate(names)})
+    az = _arviz()
+    with warnings.catch_warnings(), np.errstate(invalid="ignore", divide="ignore"):
+        warnings.simplefilter("ignore", RuntimeWarning)
+        rhat = az.rhat(ds, method="rank")
+    return {n: float(rhat[n].values) for n in names}
+
+
 @dataclass
 class GateCheck:
-    """One evaluation of the convergence gate on the first ``steps`` steps of a chain."""
+    """One evaluation of the convergence gate on the first ``steps`` steps of a chain.
+
+    ``ess`` (ArviZ bulk/tail ESS of the draws the run would report, see
+    :func:`arviz_diagnostics`) and ``group_rhat`` are ``None`` when the cheaper tests
+    failed first and they were not computed.
+    """
 
     steps: int
     tau: np.ndarray
@@ -233,26 +293,60 @@ class GateCheck:
     stuck: np.ndarray
     passed: bool
     reasons: list[str] = field(default_factory=list)
+    burn_in: int = 0
+    thin: int = 1
+    ess: dict | None = None
+    group_rhat: dict | None = None
+
+
+def ess_targets(names: Sequence[str], target: float | Mapping[str, float],
+                nuisance: Sequence[str] = (), nuisance_target: float = 400.0
+                ) -> dict[str, float]:
+    """Per-parameter ESS targets: ``target`` for physics parameters, less for nuisance ones.
+
+    A noise scale is never reported for itself; ``nuisance_target`` (default 400, the
+    floor Vehtari et al., Bayesian Analysis 16, 667 (2021) recommend for bulk and tail
+    ESS) is enough for it to be marginalised over.  A mapping gives the targets by name.
+    """
+    if isinstance(target, Mapping):
+        return {n: float(target.get(n, nuisance_target if n in nuisance else 0.0))
+                for n in names}
+    return {n: float(min(target, nuisance_target) if n in nuisance else target)
+            for n in names}
 
 
 def convergence_gate(
     chain: np.ndarray,
     log_prob: np.ndarray,
-    previous_tau: np.ndarray | None,
+    previous_tau: np.ndarray | None = None,
     *,
     names: Sequence[str],
-    autocorr_factor: float = 50.0,
-    tau_rtol: float = 0.01,
+    autocorr_factor: float = 25.0,
+    tau_rtol: float | None = None,
     acceptance_range: tuple[float, float] = (0.15, 0.7),
+    ess_target: float | Mapping[str, float] | None = 1000.0,
+    rhat_max: float = 1.01,
+    walker_groups: int = 4,
 ) -> GateCheck:
     """Evaluate the convergence gate on a chain of ``n`` steps.
 
-    The gate passes when (1) ``n >= autocorr_factor * max(tau)``, (2) every
-    ``tau`` changed by less than ``tau_rtol`` (relative) since the previous check,
-    (3) every walker's acceptance lies in ``acceptance_range`` and (4) no walker is
-    stuck (:func:`stuck_walkers`).  ``tau`` is estimated after discarding the first
-    quarter of the chain; acceptance and stuck walkers use the same window.  The
-    result depends on the chain alone, so a resumed run takes the same decisions.
+    The gate passes when
+
+    1. the chain is at least ``autocorr_factor`` autocorrelation times long (a safety
+       floor: ``tau`` must be estimable; it need not have settled);
+    2. every walker's acceptance lies in ``acceptance_range`` and no walker is stuck
+       (:func:`stuck_walkers`);
+    3. the draws the run would report (burn-in and thinning of :func:`burn_and_thin`)
+       have bulk and tail ESS of at least ``ess_target`` for every parameter (ArviZ,
+       walkers as chains, as in the run's diagnostics);
+    4. rank-normalised R-hat over ``walker_groups`` groups of walkers
+       (:func:`grouped_rhat`) is at most ``rhat_max`` for every parameter;
+    5. with ``tau_rtol`` given, also every ``tau`` changed by less than ``tau_rtol``
+       (relative) since ``previous_tau`` (the former, stricter rule).
+
+    ``tau``, acceptance and stuck walkers use the chain after its first quarter.  Tests 3
+    and 4 are computed only when 1 and 2 pass.  The result depends on the chain alone, so
+    a resumed run takes the same decisions.
 
     Parameters
     ----------
@@ -261,9 +355,12 @@ def convergence_gate(
     log_prob
         Shape ``(n, walkers)``.
     previous_tau
-        ``tau`` from the previous check (``None`` at the first).
+        ``tau`` from the previous check (used only with ``tau_rtol``).
     names
         Parameter names, for the reasons.
+    ess_target
+        One target for all parameters or ``{name: target}`` (see :func:`ess_targets`);
+        ``None`` skips tests 3 and 4 (a short run whose draws are not reported).
     """
     n = chain.shape[0]
     start = n // 4
@@ -281,18 +378,19 @@ def convergence_gate(
             f"time ({autocorr_factor * tau_max:.0f} steps; tau = {tau_max:.1f} for "
             f"{names[jmax]!r})"
         )
-    if previous_tau is None:
-        change = math.nan
-        reasons.append("no previous autocorrelation estimate to compare with")
-    else:
-        with np.errstate(invalid="ignore", divide="ignore"):
-            rel = np.abs(tau - previous_tau) / tau
-        change = float(np.max(np.where(np.isfinite(rel), rel, np.inf)))
-        if not change < tau_rtol:
-            reasons.append(
-                f"autocorrelation time still changing ({100 * change:.1f} % since the "
-                f"previous check; limit {100 * tau_rtol:g} %)"
-            )
+    change = math.nan
+    if tau_rtol is not None:
+        if previous_tau is None:
+            reasons.append("no previous autocorrelation estimate to compare with")
+        else:
+            with np.errstate(invalid="ignore", divide="ignore"):
+                rel = np.abs(tau - previous_tau) / tau
+            change = float(np.max(np.where(np.isfinite(rel), rel, np.inf)))
+            if not change < tau_rtol:
+                reasons.append(
+                    f"autocorrelation time still changing ({100 * change:.1f} % since the "
+                    f"previous check; limit {100 * tau_rtol:g} %)"
+                )
     acceptance = walker_acceptance(window)
     lo, hi = acceptance_range
     outside = np.flatnonzero((acceptance < lo) | (acceptance > hi))
@@ -308,4 +406,32 @@ def convergence_gate(
             f"stuck walkers {stuck[:10].tolist()} (acceptance < 0.05 or log-probability far "
             "below the rest)"
         )
-    return GateCheck(n, tau, change, acceptance, stuck, not reasons, reasons)
+    burn, thin = burn_and_thin(tau_max, n)
+    ess = group = None
+    if not reasons and ess_target is not None:
+        kept = chain[burn::thin]
+        ess = arviz_diagnostics(_draws_dataset(kept, names))
+        targets = ess_targets(names, ess_target)
+        for kind in ("ess_bulk", "ess_tail"):
+            short = [f"{p} {ess[kind][p]:.0f}" for p in names
+                     if not ess[kind][p] >= targets[p]]
+            if short:
+                reasons.append(
+                    f"{kind.replace('ess_', '')} ESS below the target "
+                    f"({', '.join(short)}; target {_target_text(targets)})"
+                )
+        group = grouped_rhat(kept, names, walker_groups)
+        high = [f"{p} {v:.4f}" for p, v in group.items() if not v <= rhat_max]
+        if high:
+            reasons.append(f"R-hat over groups of walkers above {rhat_max:g} "
+                           f"({', '.join(high)})")
+    return GateCheck(n, tau, change, acceptance, stuck, not reasons, reasons, burn, thin,
+                     ess, group)
+
+
+def _target_text(targets: Mapping[str, float]) -> str:
+    values = sorted(set(targets.values()))
+    if len(values) == 1:
+        return f"{values[0]:g}"
+    return ", ".join(f"{n} {t:g}" for n, t in targets.items() if t != max(values)) + \
+        f", others {max(values):g}"

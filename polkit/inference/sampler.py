@@ -11,10 +11,19 @@ Run plan (a pure function of the stored chains, so a resumed run takes the same
 decisions and produces the same chain as an uninterrupted one):
 
 1. each ensemble runs on its own until its gate passes (checked every
-   ``check_every`` steps from ``min_steps`` on) or ``max_steps`` is reached;
-2. all ensembles are then continued to a common length; in strict mode the common
-   length grows (by half, at least ``check_every`` steps) until nested R-hat over
-   the ensembles is at most ``nested_rhat_max`` or ``max_steps`` is reached.
+   ``check_every`` steps from ``min_steps`` on) or ``max_steps`` is reached.  The gate
+   (:func:`~polkit.inference.diagnostics.convergence_gate`) asks for what a user needs:
+   bulk and tail ESS of the reported draws of at least ``ess_target`` per parameter
+   (less for noise parameters), rank-normalised R-hat over groups of walkers at most
+   ``rhat_max``, a chain of at least ``autocorr_factor`` autocorrelation times as a
+   safety floor, acceptance in range and no stuck walkers;
+2. all ensembles are then continued to a common length; with several ensembles the
+   common length grows (by half, at least ``check_every`` steps) until the pooled ESS
+   reaches ``ess_target`` and, in strict mode, nested R-hat over the ensembles is at
+   most ``nested_rhat_max``, or ``max_steps`` is reached.
+
+Every check reads only the stored steps (the checkpoint is flushed before each), so a
+resumed run takes the same decisions.
 
 The HDF5 checkpoint (its layout, writes and room checks) lives in
 :mod:`polkit.inference.checkpoint`.
@@ -64,19 +73,24 @@ log = logging.getLogger(__name__)
 
 
 def default_moves() -> list:
-    """Differential-evolution moves: ``[(DEMove(), 0.8), (DESnookerMove(), 0.2)]``.
+    """Differential-evolution moves: ``[(DEMove(), 1.0)]``.
 
     Why: each walker's DE proposal is built from the difference of two other
     walkers (Ter Braak 2006; Nelson et al. 2014), so proposals adapt to the scale
-    and correlations of the posterior while every walker gets its own; the snooker
-    variant (Ter Braak and Vrugt 2008) adds moves along lines through other walkers,
-    which helps on curved and multimodal posteriors.  The stretch move loses
+    and correlations of the posterior while every walker gets its own.  The snooker
+    variant (Ter Braak and Vrugt 2008) was part of the set (weight 0.2) and was
+    measured against DE alone by effective samples per second
+    (``tests/benchmarks/bench_moves.py``, README "Performance"): its per-walker
+    proposal loop costs more than it gains, on a curved (banana) posterior as well
+    as on a bimodal one and on the demo map's posterior; and on a correlated Gaussian
+    emcee's snooker move gave 68 % intervals about 3 % too narrow (checked in
+    ``tests/test_inference_sampler.py``).  The stretch move loses
     efficiency as the dimension grows, and a full-covariance Gaussian move would
     give every walker the same proposal distribution.
     """
     import emcee
 
-    return [(emcee.moves.DEMove(), 0.8), (emcee.moves.DESnookerMove(), 0.2)]
+    return [(emcee.moves.DEMove(), 1.0)]
 
 
 # ----------------------------------------------------------------------------------------
@@ -293,10 +307,27 @@ class _Ensemble:
         steps = iter(range(start, start + n_steps))
 
         def before_step() -> None:
-            # someone else may be filling the disk: check again before every step
+            # someone else may be filling the disk: check again before every step, for this
+            # step and the finished ones still waiting in memory (see checkpoint.FLUSH_SECONDS)
             step = next(steps)
-            need = _with_margin(sum(g.new_bytes(step, step + 1) for g in growth))
-            check_room(path, need, purpose="the next MCMC step", fix=_ROOM_FIX)
+            waiting = self.backend.flushed_steps(step)
+            fresh = sum(g.new_bytes(step, step + 1) for g in growth)
+            try:
+                check_room(path, _with_margin(fresh), purpose="the next MCMC step",
+                           fix=_ROOM_FIX)
+            except OSError:
+                # a step that starts a new chunk is written at once (below), so the steps
+                # waiting in memory only fill chunks already on disk: writing them takes
+                # no new room.  Anything else is dropped (the file keeps the last flushed
+                # step and its random state)
+                if sum(g.new_bytes(waiting, step) for g in growth) == 0:
+                    self.backend.flush_pending()
+                else:
+                    self.backend.drop_pending()
+                raise
+            # the step that first touches a chunk is flushed with it, while the room
+            # just found is still there
+            self.backend.flush_now = fresh > 0
 
         self.backend.before_step = before_step
         try:
@@ -410,12 +441,17 @@ def run_ensemble(
     strict: bool = False,
     n_ensembles: int | None = None,
     moves: Any = None,
-    autocorr_factor: float = 50.0,
+    autocorr_factor: float = 25.0,
     log_prob_extras: Mapping[str, str] | Sequence[str] | None = None,
     stop_event: threading.Event | None = None,
-    tau_rtol: float = 0.01,
+    tau_rtol: float | None = None,
     acceptance_range: tuple[float, float] = (0.15, 0.7),
     nested_rhat_max: float = 1.01,
+    ess_target: float = 1000.0,
+    nuisance: Sequence[str] | None = None,
+    nuisance_ess_target: float = 400.0,
+    rhat_max: float = 1.01,
+    walker_groups: int = 4,
     ess_rhat: bool = True,
     identity: Mapping[str, Any] | None = None,
     progress_label: str = "MCMC",
@@ -462,7 +498,7 @@ def run_ensemble(
     moves
         emcee moves; default :func:`default_moves`.
     autocorr_factor
-        The chain must be at least this many autocorrelation times long.
+        Safety floor: the chain must be at least this many autocorrelation times long.
     log_prob_extras
         Names (``{name: units}`` or a list, units ``"1"``) of per-walker side results
         returned by the log-likelihood; they are stored with the chain and appear in
@@ -471,14 +507,27 @@ def run_ensemble(
         A :class:`threading.Event`; when set, sampling ends cleanly after the current
         step and the result is marked not converged (the checkpoint can be resumed).
     tau_rtol
-        Largest relative change of the autocorrelation time between checks.
+        With a value, the autocorrelation time must also have changed by less than this
+        (relative) since the previous check (the former rule; ``None``: not required).
     acceptance_range
         Allowed per-walker acceptance fraction after burn-in.
     nested_rhat_max
         Strict-mode limit on nested R-hat.
+    ess_target
+        Bulk and tail ESS each parameter's reported draws must reach (ArviZ, walkers as
+        chains).  With several ensembles each must reach its share, ``ess_target /
+        n_ensembles``, and the pooled draws the whole target.
+    nuisance, nuisance_ess_target
+        Parameters that are never reported for themselves (default: those whose name
+        contains ``noise``) and their lower ESS target (``min(ess_target,
+        nuisance_ess_target)``).
+    rhat_max, walker_groups
+        Limit on rank-normalised R-hat over ``walker_groups`` groups of the walkers of an
+        ensemble (:func:`polkit.inference.diagnostics.grouped_rhat`).
     ess_rhat
-        Compute ArviZ's bulk/tail ESS and R-hat for the diagnostics (``False`` leaves
-        them NaN: for a short preliminary run whose draws are not reported).
+        Compute ArviZ's bulk/tail ESS and R-hat for the diagnostics and gate on them
+        (``False`` leaves them NaN and out of the gate: for a short preliminary run whose
+        draws are not reported).
     identity
         ``{field: value}`` of what decides the posterior beyond the parameter space (input
         SHA-256, model, route, likelihood and preprocessing settings); with the effective
@@ -531,19 +580,37 @@ def run_ensemble(
     if clash:
         raise ConfigError(f"extras {clash} share names with parameters", key="log_prob_extras")
     moves = default_moves() if moves is None else moves
+    for key, value, ok, want in (
+        ("ess_target", ess_target, ess_target > 0, "> 0"),
+        ("nuisance_ess_target", nuisance_ess_target, nuisance_ess_target > 0, "> 0"),
+        ("rhat_max", rhat_max, rhat_max >= 1.0, ">= 1"),
+        ("walker_groups", walker_groups,
+         isinstance(walker_groups, (int, np.integer)) and walker_groups >= 2, "an int >= 2"),
+    ):
+        if not ok:
+            raise ConfigError(f"{key} must be {want}; got {value!r}", key=key)
+    if nuisance is None:
+        nuisance = [n for n in space.names if "noise" in n]
+    gate_rule = _GateRule(
+        autocorr_factor=float(autocorr_factor),
+        tau_rtol=None if tau_rtol is None else float(tau_rtol),
+        acceptance_range=tuple(acceptance_range),
+        targets=diag.ess_targets(space.names, float(ess_target), list(nuisance),
+                                 float(nuisance_ess_target)) if ess_rhat else None,
+        n_ensembles=n_ens, rhat_max=float(rhat_max), walker_groups=int(walker_groups),
+        check_every=int(check_every))
 
     path = Path(checkpoint) if checkpoint is not None else None
     with folder_lock(path.parent if path is not None else None):
         return _run(log_likelihood, space, x0, path, n_walkers, seed, max_steps, min_steps,
-                    check_every, resume, progress, strict, n_ens, moves, autocorr_factor,
-                    extras_units, stop_event, tau_rtol, acceptance_range, nested_rhat_max,
-                    ess_rhat, identity, progress_label)
+                    check_every, resume, progress, strict, n_ens, moves, gate_rule,
+                    extras_units, stop_event, nested_rhat_max, ess_rhat, identity,
+                    progress_label)
 
 
 def _run(log_likelihood, space, x0, path, n_walkers, seed, max_steps, min_steps, check_every,
-         resume, progress, strict, n_ens, moves, autocorr_factor, extras_units, stop_event,
-         tau_rtol, acceptance_range, nested_rhat_max, ess_rhat, identity,
-         progress_label) -> SamplerOutput:
+         resume, progress, strict, n_ens, moves, rule, extras_units, stop_event,
+         nested_rhat_max, ess_rhat, identity, progress_label) -> SamplerOutput:
     from tqdm.auto import tqdm
 
     if path is not None:
@@ -578,8 +645,7 @@ def _run(log_likelihood, space, x0, path, n_walkers, seed, max_steps, min_steps,
             steps = ens.steps
             pbar.update(min(steps, max_steps))
             if done is not None:
-                check = _gate_at(ens, int(done), space, autocorr_factor, tau_rtol,
-                                 acceptance_range, check_every)
+                check = _gate_at(ens, int(done), space, rule)
                 if check.passed or int(done) >= max_steps:
                     gate[ens.index] = check
                     continue
@@ -593,8 +659,7 @@ def _run(log_likelihood, space, x0, path, n_walkers, seed, max_steps, min_steps,
                     n >= max_steps or (n >= min_steps and n % check_every == 0)
                 )
                 if at_check:
-                    check = _gate_at(ens, n, space, autocorr_factor, tau_rtol,
-                                     acceptance_range, check_every)
+                    check = _gate_at(ens, n, space, rule)
                     pbar.set_postfix_str(
                         f"ensemble {ens.index}, tau {np.nanmax(check.tau):.1f}", refresh=False
                     )
@@ -612,14 +677,23 @@ def _run(log_likelihood, space, x0, path, n_walkers, seed, max_steps, min_steps,
                     if ens.state is None:
                         ens.start(None, space)
                     ens.advance(length - ens.steps, pbar, stop_event)
-            if strict and length < max_steps:
+            if (n_ens > 1 and length < max_steps and rule.targets is not None
+                    and all(g.passed for g in gate.values())):
                 chains = np.stack([ens.chain(length)[0] for ens in ensembles])
                 _, burn, thin = _burn_thin(chains, length)
-                rhat = float(np.max(diag.nested_rhat(_to_nested(chains[:, burn::thin]))))
-                if not rhat <= nested_rhat_max:
-                    log.info("nested R-hat %.4f at %d steps; extending", rhat, length)
+                kept = chains[:, burn::thin]
+                short = _pooled_ess_short(kept, space.names, rule.targets)
+                if short:
+                    log.info("pooled ESS below the target at %d steps (%s); extending",
+                             length, short)
                     length = min(max_steps, length + max(check_every, length // 2))
                     continue
+                if strict:
+                    rhat = float(np.max(diag.nested_rhat(_to_nested(kept))))
+                    if not rhat <= nested_rhat_max:
+                        log.info("nested R-hat %.4f at %d steps; extending", rhat, length)
+                        length = min(max_steps, length + max(check_every, length // 2))
+                        continue
             break
     except _Stopped:
         stopped = True
@@ -628,33 +702,61 @@ def _run(log_likelihood, space, x0, path, n_walkers, seed, max_steps, min_steps,
         pbar.close()
 
     return _collect(ensembles, gate, length, space, root, stopped, strict, n_walkers,
-                    extras_units, moves, autocorr_factor, tau_rtol, nested_rhat_max,
-                    acceptance_range, ess_rhat)
+                    extras_units, moves, rule, nested_rhat_max, ess_rhat)
 
 
-def _gate_at(ens, n, space, autocorr_factor, tau_rtol, acceptance_range, check_every):
+@dataclass(frozen=True)
+class _GateRule:
+    """The settings of the convergence gate (see :func:`diag.convergence_gate`)."""
+
+    autocorr_factor: float
+    tau_rtol: float | None
+    acceptance_range: tuple[float, float]
+    targets: dict[str, float] | None  # None: ESS and R-hat not gated (ess_rhat=False)
+    n_ensembles: int
+    rhat_max: float
+    walker_groups: int
+    check_every: int
+
+    def per_ensemble(self) -> dict[str, float] | None:
+        """Each ensemble's share of the ESS targets."""
+        if self.targets is None:
+            return None
+        return {k: v / self.n_ensembles for k, v in self.targets.items()}
+
+
+def _gate_at(ens, n, space, rule: _GateRule):
     chain, lp = ens.chain(n)
-    previous = n - check_every
-    prev_tau = ens.tau_at(previous) if previous >= 2 else None
+    prev_tau = None
+    if rule.tau_rtol is not None:
+        previous = n - rule.check_every
+        prev_tau = ens.tau_at(previous) if previous >= 2 else None
     check = diag.convergence_gate(
-        chain, lp, prev_tau, names=space.names, autocorr_factor=autocorr_factor,
-        tau_rtol=tau_rtol, acceptance_range=acceptance_range,
+        chain, lp, prev_tau, names=space.names, autocorr_factor=rule.autocorr_factor,
+        tau_rtol=rule.tau_rtol, acceptance_range=rule.acceptance_range,
+        ess_target=rule.per_ensemble(), rhat_max=rule.rhat_max,
+        walker_groups=rule.walker_groups,
     )
     ens.taus[n] = check.tau
     log.debug("%s at %d steps: %s", ens.name, n, "; ".join(check.reasons) or "passed")
     return check
 
 
+def _pooled_ess_short(kept: np.ndarray, names, targets) -> str:
+    """Parameters whose pooled bulk or tail ESS over (E, D, W, P) draws is below target."""
+    e, d, w, p = kept.shape
+    pooled = np.moveaxis(kept, 2, 1).reshape(e * w, d, p)  # chains = ensemble-major walkers
+    ds = diag._draws_dataset(np.moveaxis(pooled, 0, 1), names)
+    found = diag.arviz_diagnostics(ds)
+    return ", ".join(
+        f"{n} {min(found['ess_bulk'][n], found['ess_tail'][n]):.0f}" for n in names
+        if not min(found["ess_bulk"][n], found["ess_tail"][n]) >= targets[n])
+
+
 def _burn_thin(chains: np.ndarray, length: int) -> tuple[np.ndarray, int, int]:
     """Autocorrelation times (E, P), burn-in (5 tau, at most half) and thin (tau / 2)."""
     taus = np.stack([diag.autocorr_time(c[length // 4 : length]) for c in chains])
-    tau_max = float(np.max(taus))
-    if math.isfinite(tau_max):
-        burn = min(int(math.ceil(5.0 * tau_max)), length // 2)
-        thin = max(1, int(0.5 * tau_max))
-    else:
-        burn, thin = length // 2, 1
-    thin = min(thin, max(1, (length - burn) // 2))  # keep at least two draws per walker
+    burn, thin = diag.burn_and_thin(float(np.max(taus)), length)
     return taus, burn, thin
 
 
@@ -664,8 +766,7 @@ def _to_nested(kept: np.ndarray) -> np.ndarray:
 
 
 def _collect(ensembles, gate, length, space, root, stopped, strict, n_walkers, extras_units,
-             moves, autocorr_factor, tau_rtol, nested_rhat_max, acceptance_range,
-             ess_rhat=True) -> SamplerOutput:
+             moves, rule, nested_rhat_max, ess_rhat=True) -> SamplerOutput:
     reasons: list[str] = []
     available = [ens for ens in ensembles if ens.steps > 0]
     if not available:
@@ -714,7 +815,12 @@ def _collect(ensembles, gate, length, space, root, stopped, strict, n_walkers, e
         seed_spawn_key=tuple(int(k) for k in root.spawn_key), extras=extras,
         extras_units=extras_units,
     )
-    if ess_rhat:
+    reuse = (gate.get(0) if len(available) == 1 and not stopped else None)
+    group_rhat = None
+    if reuse is not None and reuse.steps == length and reuse.ess is not None:
+        # the gate's last check saw exactly these draws: its ArviZ numbers are reused
+        az_diag, group_rhat = reuse.ess, reuse.group_rhat
+    elif ess_rhat:
         az_diag = diag.arviz_diagnostics(output.posterior_draws()[space.names])
     else:
         nan = {name: math.nan for name in space.names}
@@ -758,9 +864,13 @@ def _collect(ensembles, gate, length, space, root, stopped, strict, n_walkers, e
         "strict": bool(strict),
         "stopped": bool(stopped),
         "moves": _describe_moves(moves),
-        "autocorr_factor": float(autocorr_factor),
-        "tau_rtol": float(tau_rtol),
-        "acceptance_range": [float(a) for a in acceptance_range],
+        "autocorr_factor": rule.autocorr_factor,
+        "tau_rtol": rule.tau_rtol,
+        "ess_target": dict(rule.targets) if rule.targets is not None else None,
+        "group_rhat": group_rhat,
+        "group_rhat_max": rule.rhat_max,
+        "walker_groups": rule.walker_groups,
+        "acceptance_range": [float(a) for a in rule.acceptance_range],
         "nested_rhat_max": float(nested_rhat_max),
         "seed_entropy": str(output.seed_entropy),
         "seed_spawn_key": list(output.seed_spawn_key),

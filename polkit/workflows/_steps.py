@@ -8,6 +8,8 @@
 * a short pre-burn that moves straggling walkers onto good ones (:func:`preburn`);
 * the sampler run of a problem from its mode (:func:`sample_problem`) and its draws as
   parameter vectors (:func:`posterior_theta`);
+* the quick answer at the mode, before MCMC (:func:`quick_answer`, the Laplace summary of
+  :mod:`polkit.inference.laplace`, written as ``quick_summary.json``);
 * the SHA-256 of an input file for the provenance (:func:`file_sha256`);
 * one writer per output folder: a job decorated with :func:`locks_output` holds the lock
   of its ``out`` folder (:mod:`polkit.folder_lock`) for the whole call.
@@ -29,7 +31,7 @@ import numpy as np
 
 from ..errors import ConvergenceWarning, PolkitError
 from ..folder_lock import folder_lock
-from ..inference import MapResult, SamplerOutput, run_ensemble
+from ..inference import MapResult, SamplerOutput, laplace, run_ensemble
 from ..inference.checkpoint import prepare_checkpoint, start_stored
 
 __all__ = [
@@ -41,6 +43,8 @@ __all__ = [
     "preburn",
     "sample_problem",
     "posterior_theta",
+    "quick_answer",
+    "QUICK_SUMMARY",
     "file_sha256",
     "locks_output",
     "job_identity",
@@ -52,6 +56,36 @@ log = logging.getLogger(__name__)
 
 #: name of the HDF5 checkpoint inside a job's output folder
 CHECKPOINT = "chains.h5"
+#: name of the quick (Laplace) answer inside a job's output folder
+QUICK_SUMMARY = "quick_summary.json"
+
+
+def quick_answer(problem, start: MapResult, *, log_likelihood: Callable | None = None,
+                 out: str | os.PathLike | None = None, required: bool = True) -> dict:
+    """The Laplace summary at the mode, logged and (with ``out``) saved as quick_summary.json.
+
+    Labelled :data:`polkit.inference.laplace.LABEL` wherever it appears.  The summary is
+    JSON-ready (see :func:`polkit.inference.laplace.laplace_summary`); every value has its
+    ``units``.  With ``out`` it is written atomically to ``out/quick_summary.json``; when that
+    fails, the :class:`OSError` is raised if ``required`` (the quick answer is the result),
+    else logged (a full run goes on).
+    """
+    from ..io import write_json
+
+    like = problem.log_likelihood if log_likelihood is None else log_likelihood
+    summary = laplace.laplace_summary(like, problem.space, start)
+    log.info("%s", laplace.format_quick(summary))
+    if out is not None:
+        try:
+            Path(out).mkdir(parents=True, exist_ok=True)
+            write_json(Path(out) / QUICK_SUMMARY, summary)
+        except OSError as exc:
+            if required:
+                raise
+            # before a full run the quick answer is a courtesy: the run goes on, and a disk
+            # that is really full stops it with the checkpoint's own clear error
+            log.warning("quick answer not saved: %s", exc)
+    return summary
 
 
 def file_sha256(path: str | os.PathLike) -> str:
@@ -328,10 +362,18 @@ def sample_problem(
     Returns
     -------
     SamplerOutput
+        Its ``diagnostics["laplace_vs_mcmc"]`` says how far the quick answer at the mode
+        (:func:`quick_answer`, computed first, logged and saved beside the checkpoint as
+        ``quick_summary.json``) lies from the MCMC medians, per parameter, in MCMC sd.
     """
     like = problem.log_likelihood if log_likelihood is None else log_likelihood
     space = problem.space
     steps = dict(steps)
+    quick = None
+    if isinstance(start, MapResult):  # the first answer, in seconds, before any MCMC step
+        quick = quick_answer(problem, start, log_likelihood=like,
+                             out=checkpoint.parent if checkpoint is not None else None,
+                             required=False)
     walkers = walker_count(n_walkers, space)
     job = dict(identity) if identity is not None else None
     with folder_lock(checkpoint.parent if checkpoint is not None else None):
@@ -344,9 +386,14 @@ def sample_problem(
                 seed = np.random.SeedSequence()
             start = preburn(like, space, start, walkers, seed, steps["max_steps"],
                             progress=progress)
-        return run_ensemble(like, space, start, n_walkers=walkers, seed=seed,
-                            checkpoint=checkpoint, resume=resume, progress=progress,
-                            strict=strict, stop_event=stop_event, identity=job, **steps)
+        output = run_ensemble(like, space, start, n_walkers=walkers, seed=seed,
+                              checkpoint=checkpoint, resume=resume, progress=progress,
+                              strict=strict, stop_event=stop_event, identity=job, **steps)
+    if quick is not None:
+        post = output.posterior_draws()
+        output.diagnostics["laplace_vs_mcmc"] = laplace.compare_with_mcmc(
+            quick, {n: post[n].values for n in space.names})
+    return output
 
 
 def posterior_theta(output: SamplerOutput, space) -> np.ndarray:

@@ -46,6 +46,7 @@ from ._steps import (
     job_identity,
     locks_output,
     posterior_theta,
+    quick_answer,
     sample_problem,
     step_limits,
     warn_large_map,
@@ -276,7 +277,8 @@ def fit_dispersion(
     figures: bool = True,
     profile: str = "lorentzian",
     camera=None,
-) -> DispersionFit:
+    quick: bool = False,
+) -> DispersionFit | dict:
     """Fit a coupled-oscillator model to an angle-resolved map.
 
     Parameters
@@ -319,6 +321,9 @@ def fit_dispersion(
         subtracted before unit conversion, saturated pixels and cosmic-ray spikes masked,
         excluded windows, the peak table's detection threshold.  What was masked is counted
         in the observed map's ``preprocessing`` attribute and in the provenance.
+    quick
+        Stop after the quick answer at the mode (Laplace summary, labelled approximate):
+        it is returned as a dict and written to ``out/quick_summary.json``; no chains.
 
     Returns
     -------
@@ -331,7 +336,7 @@ def fit_dispersion(
         angle_window=angle_window, energy_window=energy_window, load_options=load_options,
         profile=profile, camera=camera,
     )
-    checkpoint = checkpoint_file(out, resume, refusal=DataError(
+    checkpoint = None if quick else checkpoint_file(out, resume, refusal=DataError(
         "resume needs the output folder that holds the checkpoint; pass out=.", field="resume"))
     steps = step_limits(DEFAULT_STEPS, max_steps, min_steps)
 
@@ -349,6 +354,8 @@ def fit_dispersion(
         start, noise_note = protected_mode(problem, search.best, begin.source.data, begin.x0,
                                            table_map.x)
         search = search.rescored(problem, start)
+    if quick:  # the Laplace summary at the mode only: no chains
+        return quick_answer(problem, start, log_likelihood=like, out=out)
 
     identity = job_identity(begin.source.sha256, f"{model} {begin.source.kind}", path_used,
                             noise_note, dict(angle_window=angle_window, energy_window=energy_window,

@@ -44,6 +44,7 @@ from ._steps import (
     job_identity,
     locks_output,
     posterior_theta,
+    quick_answer,
     sample_problem,
     step_limits,
 )
@@ -227,7 +228,8 @@ def fit_power(
     reservoir_lifetime_ps: float | tuple[float, float] | None = None,
     min_steps: int | None = None,
     spot: str | None = None,
-) -> PowerFit:
+    quick: bool = False,
+) -> PowerFit | dict:
     """Fit a mean-field nonlinear model to a pump-power series.
 
     Parameters
@@ -283,6 +285,9 @@ def fit_power(
         integrates, :mod:`polkit.models.pump_spot`) or ``"flat"`` (a flat top: the
         single-mode loop).  ``None`` takes the calibration file's ``spot`` key, else
         ``"point"``.
+    quick
+        Stop after the quick answer at the mode (Laplace summary, labelled approximate):
+        it is returned as a dict and written to ``out/quick_summary.json``; no chains.
 
     Returns
     -------
@@ -303,7 +308,7 @@ def fit_power(
         energy_window=energy_window, angle_window=angle_window, n_wells=n_wells,
         exciton_binding_meV=exciton_binding_meV, bohr_radius_nm=bohr_radius_nm,
         reservoir_lifetime_ps=reservoir_lifetime_ps, spot=spot)
-    checkpoint = checkpoint_file(out, resume, refusal=ConfigError(
+    checkpoint = None if quick else checkpoint_file(out, resume, refusal=ConfigError(
         "resume needs the output folder that holds the checkpoint; pass out=", key="resume"))
     steps = step_limits(DEFAULT_STEPS, max_steps, min_steps)
 
@@ -311,6 +316,8 @@ def fit_power(
     start = refine_mode(problem, x0)
     log.info("power-series mode: %s",
              dict(zip(problem.space.names, np.round(start.x, 6), strict=True)))
+    if quick:  # the Laplace summary at the mode only: no chains
+        return quick_answer(problem, start, out=out)
     output = sample_problem(problem, start, steps=steps, n_walkers=n_walkers, seed=seed,
                             checkpoint=checkpoint, resume=resume, progress=progress,
                             strict=strict, stop_event=stop_event, identity=job_identity(
