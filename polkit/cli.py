@@ -423,9 +423,10 @@ def _cmd_dispersion(args) -> int:
 
     out = args.out or Path("polkit-out") / args.map.stem
     if args.quick:
-        summary = fit_dispersion(args.map, model=args.model, kind=args.kind,
+        summary = fit_dispersion(args.map, model=_MODEL_WORDS[args.model], kind=args.kind,
                                  peaks_only=args.peaks_only, **_fit_options(args, out),
-                                 wavelength_medium=args.wavelength_medium, quick=True)
+                                 wavelength_medium=args.wavelength_medium, quick=True,
+                                 camera=_camera(args))
         return _print_quick(summary, out)
     # a second process gets matplotlib ready while the fit samples, then draws the corner
     # plot alongside the other figures (see polkit._corner_process)
