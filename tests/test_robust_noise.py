@@ -37,8 +37,12 @@ def test_ten_spikes_move_the_rabi_splitting_less_than_its_sd(tmp_path):
     sd = m0.scale[i]
     # the requirement: less than one posterior sd  # common practice, no published source
     assert abs(m1.x[i] - m0.x[i]) < sd, (m1.x[i], m0.x[i], sd)
-    # and the spikes are the pixels left out (about 10-13 of them), not the branches
-    assert 10 <= p1.noise_calibration["outliers"] <= 20
+    # and the spikes are the pixels left out, not the branches: masked with a one-pixel
+    # margin by the camera step when the data show them alone (up to 9 pixels each), else
+    # left out of the likelihood as outliers
+    left_out = int(np.isnan(p1.y).sum()) + p1.noise_calibration["outliers"]
+    assert 10 <= left_out <= 10 * 9 + 20
+    assert int(np.isnan(p0.y).sum()) + p0.noise_calibration["outliers"] <= 2
     assert check["passed"], check
 
 

@@ -175,10 +175,9 @@ def guess_from_peaks(table: xr.Dataset, *, n_excitons: int = 1) -> dict[str, flo
     n_found = found.sum(axis=1)
     two = n_found >= 2
     if two.any():
-        gaps = np.nanmax(np.where(found, e, np.nan), axis=1) - np.nanmin(
-            np.where(found, e, np.nan), axis=1
-        )
-        g0 = max(float(np.nanmin(gaps[two])) / 2.0, 1e-4)
+        both = np.where(found[two], e[two], np.nan)  # rows with two lines: never all-NaN
+        gaps = np.nanmax(both, axis=1) - np.nanmin(both, axis=1)
+        g0 = max(float(np.nanmin(gaps)) / 2.0, 1e-4)
     else:
         g0 = span / 4.0
 
