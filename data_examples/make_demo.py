@@ -197,7 +197,10 @@ def make_series(seeds) -> dict:
     shift = blue_c * n_c + blue_r * frac
     e_lp = 1.53668  # lower polariton at k = 0 at P1 (dispersion truth)
     peak = e_lp + shift * MEV + rng.normal(0, 0.02 * MEV, power.size)
-    lw = 0.30 * np.where(power < p_th, 1.0, 0.4) + rng.normal(0, 0.01, power.size)
+    # linewidth narrows smoothly with the condensate occupation (0.30 meV far below
+    # threshold, 0.12 meV far above, half-way at an occupation of 20)
+    w_low, w_high, n_w = 0.30, 0.12, 20.0
+    lw = w_high + (w_low - w_high) / (1.0 + n_c / n_w) + rng.normal(0, 0.01, power.size)
     rows = [
         "# invented demo sample DS-1, position P1: nonresonant pump power series (simulated)",
         "# sample: DS-1 (invented demo sample); position: P1",
@@ -211,7 +214,8 @@ def make_series(seeds) -> dict:
         )
     (HERE / "ds1_p1_power_nonresonant.csv").write_text("\n".join(rows) + "\n")
     truth["ds1_p1_power_nonresonant.csv"] = dict(
-        threshold_power_mw=p_th, saturation_number=n_s, intensity_scale=scale, e_lp_ev=e_lp
+        threshold_power_mw=p_th, saturation_number=n_s, intensity_scale=scale, e_lp_ev=e_lp,
+        linewidth_low_mev=w_low, linewidth_high_mev=w_high, narrowing_occupation=n_w,
     )
 
     # 6. coherent drive 0.94 meV above the lower polariton at P1 (whose linewidth at k = 0 is
