@@ -38,8 +38,11 @@ _Z68 = float(stats.norm.ppf(0.84))
 _Z95 = float(stats.norm.ppf(0.975))
 
 
-def _hessian(log_post: Callable, x: np.ndarray, h: np.ndarray) -> np.ndarray:
+def central_hessian(log_post: Callable, x: np.ndarray, h: np.ndarray) -> np.ndarray:
     """Central-difference Hessian of ``log_post`` at ``x`` with steps ``h`` (one batch).
+
+    Every point is evaluated in one vectorised call; a point where ``log_post`` is not
+    finite leaves non-finite entries (callers check ``np.isfinite``).
 
     Source: the standard second-order central differences, e.g. Abramowitz and Stegun,
     Handbook of Mathematical Functions, 25.3.23 and 25.3.26.
@@ -114,7 +117,7 @@ def laplace_summary(log_likelihood: Callable[[np.ndarray], np.ndarray], space: P
         out["reason"] = (f"the mode sits on the prior bound of {stuck}: the curvature there "
                          "does not describe the posterior")
         return out
-    hess = _hessian(log_post, x, h)
+    hess = central_hessian(log_post, x, h)
     if not np.all(np.isfinite(hess)):
         out["reason"] = "the log posterior is not finite around the mode"
         return out

@@ -44,6 +44,7 @@ from threadpoolctl import threadpool_limits
 
 from ..errors import ConvergenceWarning
 from ..inference import LogPosterior, MapResult, SamplerOutput, find_map
+from ..inference.laplace import central_hessian
 
 __all__ = [
     "MODE_MARGIN_NATS",
@@ -549,25 +550,9 @@ def laplace_log_evidence(post, space, x: np.ndarray, scale: np.ndarray,
     if np.any(x - 2 * h <= lo) or np.any(x + 2 * h >= hi):
         near = [space.names[j] for j in np.flatnonzero((x - 2 * h <= lo) | (x + 2 * h >= hi))]
         return None, None, f"mode on or next to a prior bound ({near}): no Laplace evidence"
-    eye = np.eye(p) * h
-    pts = [x]
-    for j in range(p):
-        pts += [x + eye[j], x - eye[j]]
-    pairs = [(j, k) for j in range(p) for k in range(j + 1, p)]
-    for j, k in pairs:
-        pts += [x + eye[j] + eye[k], x + eye[j] - eye[k], x - eye[j] + eye[k],
-                x - eye[j] - eye[k]]
-    f = np.asarray(post(np.array(pts)), dtype=float)
-    if not np.all(np.isfinite(f)):
+    hess = central_hessian(post, x, h)
+    if not np.all(np.isfinite(hess)):
         return None, None, "log posterior not finite around the mode: no Laplace evidence"
-    f0 = f[0]
-    hess = np.empty((p, p))
-    for j in range(p):
-        hess[j, j] = (f[1 + 2 * j] - 2 * f0 + f[2 + 2 * j]) / h[j] ** 2
-    base = 1 + 2 * p
-    for n, (j, k) in enumerate(pairs):
-        a, b, c, d = f[base + 4 * n: base + 4 * n + 4]
-        hess[j, k] = hess[k, j] = (a - b - c + d) / (4 * h[j] * h[k])
     neg = -hess
     # eigenvalues in the scaled coordinates x / h (the matrix is badly conditioned in
     # physical units)
