@@ -783,7 +783,7 @@ def calibrated_quantities(
       ``g_R = reservoir_blueshift / rho_R``.
 
     ``exciton_interaction_constant = g N / |X|^4`` inverts ``g_LP = g_X |X|^4 / N``
-    (DESIGN section 4; N = ``n_wells``, else 1, i.e. per mode).
+    (Ciuti et al., Phys. Rev. B 58, 7926 (1998); N = ``n_wells``, else 1, i.e. per mode).
 
     Parameters
     ----------
