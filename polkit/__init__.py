@@ -18,7 +18,7 @@ import importlib
 
 __version__ = "0.1.0"
 
-from .errors import (  # noqa: E402
+from polkit.errors import (  # noqa: E402
     ConfigError,
     ConvergenceWarning,
     DataError,
@@ -33,11 +33,11 @@ _LAZY = {
     "load_map": "polkit.data",
     "load_series": "polkit.data",
     "FitResult": "polkit.inference",
-    "fit_dispersion": "polkit.workflows.dispersion",
-    "compare_dispersion_models": "polkit.workflows.dispersion_compare",
-    "fit_power": "polkit.workflows.power",
-    "energy_budget": "polkit.workflows.budget",
-    "run_survey": "polkit.workflows.survey",
+    "fit_dispersion": "polkit.jobs.dispersion.run",
+    "compare_dispersion_models": "polkit.jobs.dispersion.compare",
+    "fit_power": "polkit.jobs.power.run",
+    "energy_budget": "polkit.jobs.budget.run",
+    "run_survey": "polkit.jobs.survey.run",
 }
 
 __all__ = [

@@ -10,7 +10,7 @@ from __future__ import annotations
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
-from .errors import DataError
+from polkit.errors import DataError
 
 __all__ = ["real_array"]
 

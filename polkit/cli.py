@@ -20,9 +20,9 @@ import sys
 import warnings
 from pathlib import Path
 
-from . import __version__
-from .errors import ConvergenceWarning, PolkitError, PolkitWarning
-from .safety import POWER_NOTE, SAFETY_NOTE
+from polkit import __version__
+from polkit.errors import ConvergenceWarning, PolkitError, PolkitWarning
+from polkit.safety import POWER_NOTE, SAFETY_NOTE
 
 EXIT_OK = 0
 EXIT_WRITE = 1
@@ -67,7 +67,7 @@ def _add_camera_options(p: argparse.ArgumentParser, *, detection: bool) -> None:
 
 
 def _camera(args):
-    from .data import CameraOptions
+    from polkit.data import CameraOptions
 
     return CameraOptions.from_text(
         args.dark, mask_saturated=not args.keep_saturated, mask_spikes=not args.keep_spikes,
@@ -277,7 +277,7 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def _cmd_survey(args) -> int:
-    from .workflows.survey import run_survey
+    from polkit.jobs.survey.run import run_survey
 
     result = run_survey(
         args.manifest,
@@ -303,7 +303,7 @@ def _cmd_survey(args) -> int:
 def _parse_params(items: list[str]) -> dict:
     import ast
 
-    from .errors import ConfigError
+    from polkit.errors import ConfigError
 
     params = {}
     for item in items:
@@ -318,7 +318,7 @@ def _parse_params(items: list[str]) -> dict:
 
 
 def _cmd_report(args) -> int:
-    from .report import make_report
+    from polkit.report import make_report
 
     out = args.out or Path("polkit-out") / "reports" / args.notebook.stem
     paths = make_report(args.notebook, params=_parse_params(args.param), out=out)
@@ -332,8 +332,8 @@ _QUICK_HELP = ("stop after the quick answer at the most probable point (Laplace 
 
 
 def _print_quick(summary: dict, out: Path) -> int:
-    from .inference.laplace import format_quick
-    from .workflows._steps import QUICK_SUMMARY
+    from polkit.inference.laplace import format_quick
+    from polkit.jobs.steps import QUICK_SUMMARY
 
     print(format_quick(summary))
     print(f"approximate answer written to {out / QUICK_SUMMARY}; run without --quick for "
@@ -354,7 +354,7 @@ def _fit_options(args, out: Path) -> dict:
 
 
 def _cmd_power(args) -> int:
-    from .workflows.power import fit_power
+    from polkit.jobs.power.run import fit_power
 
     out = args.out or Path("polkit-out") / args.series.stem
     result = fit_power(
@@ -373,7 +373,7 @@ def _cmd_power(args) -> int:
     check = result.model_check
     failed = check is not None and not check["passed"]
     if failed:
-        from .workflows.power_check import check_line
+        from polkit.jobs.power.check import check_line
 
         print(f"polkit: warning: {args.series}: {_one_line(check_line(check))}",
               file=sys.stderr)
@@ -383,7 +383,7 @@ def _cmd_power(args) -> int:
 
 
 def _cmd_budget(args) -> int:
-    from .workflows.budget import energy_budget
+    from polkit.jobs.budget.run import energy_budget
 
     result = energy_budget(
         args.dispersion,
@@ -401,7 +401,7 @@ def _cmd_budget(args) -> int:
 
 
 def _cmd_inspect(args) -> int:
-    from .data import inspect_file
+    from polkit.data import inspect_file
 
     png = args.png or (args.out / (args.file.name + ".png"))
     opts = {} if args.wavelength_medium is None else {"wavelength_medium": args.wavelength_medium}
@@ -410,7 +410,7 @@ def _cmd_inspect(args) -> int:
 
 
 def _cmd_demo(args) -> int:
-    from .demo import run_demo
+    from polkit.demo import run_demo
 
     return run_demo(
         data=args.data, out=args.out, seed=args.seed, quick=args.quick, progress=_progress(args)
@@ -418,8 +418,8 @@ def _cmd_demo(args) -> int:
 
 
 def _cmd_dispersion(args) -> int:
-    from ._corner_process import CornerProcess
-    from .workflows.dispersion import fit_dispersion
+    from polkit.jobs.dispersion.run import fit_dispersion
+    from polkit.plotting.corner_process import CornerProcess
 
     out = args.out or Path("polkit-out") / args.map.stem
     if args.quick:
@@ -429,7 +429,7 @@ def _cmd_dispersion(args) -> int:
                                  camera=_camera(args))
         return _print_quick(summary, out)
     # a second process gets matplotlib ready while the fit samples, then draws the corner
-    # plot alongside the other figures (see polkit._corner_process)
+    # plot alongside the other figures (see polkit.plotting.corner_process)
     corner_process = CornerProcess.start()
     try:
         result = fit_dispersion(
@@ -446,7 +446,7 @@ def _cmd_dispersion(args) -> int:
     finally:
         if corner_process is not None:
             corner_process.close()
-    from .data.camera import describe_record
+    from polkit.data.camera import describe_record
 
     for line in describe_record(result.provenance.get("preprocessing", {})):
         print(line)
@@ -478,7 +478,7 @@ def _print_model_check(check) -> bool:
 
 
 def _cmd_compare(args) -> int:
-    from .workflows.dispersion_compare import compare_dispersion_models
+    from polkit.jobs.dispersion.compare import compare_dispersion_models
 
     out = args.out or Path("polkit-out") / f"{args.map.stem}-compare"
     result = compare_dispersion_models(

@@ -11,8 +11,8 @@ import time
 import warnings
 from pathlib import Path
 
-from .errors import ConvergenceWarning
-from .safety import SAFETY_LINE
+from polkit.errors import ConvergenceWarning
+from polkit.safety import SAFETY_LINE
 
 log = logging.getLogger(__name__)
 
@@ -49,11 +49,11 @@ def run_demo(
     ``quick`` uses short chains (a smoke run; its fits are reported as not converged
     when the gate is not passed, never as converged).
     """
-    from .data import inspect_file
-    from .errors import DataError
-    from .workflows.budget import energy_budget
-    from .workflows.dispersion import fit_dispersion
-    from .workflows.power import fit_power
+    from polkit.data import inspect_file
+    from polkit.errors import DataError
+    from polkit.jobs.budget.run import energy_budget
+    from polkit.jobs.dispersion.run import fit_dispersion
+    from polkit.jobs.power.run import fit_power
 
     folder = Path(data) if data is not None else demo_folder()
     if not folder.is_dir():

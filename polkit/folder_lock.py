@@ -36,7 +36,7 @@ import time
 from datetime import UTC, datetime
 from pathlib import Path
 
-from .errors import DataError
+from polkit.errors import DataError
 
 __all__ = ["LOCK_FILE", "FolderLockedError", "folder_lock", "read_lock"]
 

@@ -22,7 +22,7 @@ rewritten, also when it looks like a path.  The kernel runs in the notebook's ow
 so a relative path is read relative to the notebook (as its own defaults are); pass an
 absolute path to name a file elsewhere.
 
-Every file is written atomically (:mod:`polkit.io`) and only after the notebook ran
+Every file is written atomically (:mod:`polkit.files`) and only after the notebook ran
 without error; a failing cell raises :class:`~polkit.errors.DataError` naming the cell, and
 the partly executed notebook is kept as ``<name>.failed.ipynb`` for diagnosis.
 """
@@ -43,10 +43,10 @@ from importlib import metadata
 from pathlib import Path
 from typing import Any
 
-from . import io
-from ._paths import shareable
-from .errors import ConfigError, DataError
-from .safety import safety_markdown
+from polkit import files
+from polkit._paths import shareable
+from polkit.errors import ConfigError, DataError
+from polkit.safety import safety_markdown
 
 __all__ = ["make_report", "parse_params", "ReportPaths", "PARAMETERS_TAG", "INJECTED_TAG",
            "PROVENANCE_TAG"]
@@ -181,7 +181,7 @@ def _sha256(path: Path) -> str:
 
 
 def _versions() -> dict[str, str]:
-    from . import __version__
+    from polkit import __version__
 
     out = {"polkit": __version__}
     for name in _LIBRARIES:
@@ -419,7 +419,7 @@ def make_report(
     except CellExecutionError as exc:
         failed = next((i for i, c in enumerate(nb.cells) if c.cell_type == "code" and any(
             o.get("output_type") == "error" for o in c.get("outputs", []))), None)
-        keep = io.write_text(out / f"{nb_path.stem}.failed.ipynb", nbformat.writes(nb))
+        keep = files.write_text(out / f"{nb_path.stem}.failed.ipynb", nbformat.writes(nb))
         where = f"cell {failed + 1}" if failed is not None else "a cell"
         err = next((o for c in nb.cells for o in c.get("outputs", [])
                     if o.get("output_type") == "error"), {})
@@ -452,10 +452,10 @@ def make_report(
         provenance=out / "provenance.json",
         result_files=tuple(results / e["path"] for e in manifest),
     )
-    io.write_json(paths.manifest, {"results": manifest})
-    io.write_json(paths.provenance, prov)
-    io.write_text(paths.notebook, nbformat.writes(nb))
-    io.write_text(paths.html, _html(nb))
+    files.write_json(paths.manifest, {"results": manifest})
+    files.write_json(paths.provenance, prov)
+    files.write_text(paths.notebook, nbformat.writes(nb))
+    files.write_text(paths.html, _html(nb))
     stale = out / f"{stem}.failed.ipynb"
     if stale.exists():
         stale.unlink()

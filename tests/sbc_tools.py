@@ -13,13 +13,13 @@ stays sensible (all numbers invented):
 
 * :class:`PeakTableCase` -- a peak table simulated straight from the branch model
   (line maxima and widths of the two polariton lines) with Gaussian errors, fitted with
-  :meth:`polkit.workflows.dispersion_model.DispersionProblem.table_log_likelihood`;
+  :meth:`polkit.jobs.dispersion.problem.DispersionProblem.table_log_likelihood`;
 * :class:`WholeMapCase` -- a small emission map simulated with
   :func:`polkit.models.spectral.simulate_map` plus Gaussian noise, fitted with
-  :meth:`~polkit.workflows.dispersion_model.DispersionProblem.log_likelihood`;
+  :meth:`~polkit.jobs.dispersion.problem.DispersionProblem.log_likelihood`;
 * :class:`CoherentCase` -- an up-and-down power sweep of a coherently driven mode simulated
   with :func:`polkit.models.coherent.steady_state_sweep` plus Gaussian errors, fitted with
-  :meth:`polkit.workflows.power_model.PowerProblem.log_likelihood` (the power workflow's own
+  :meth:`polkit.jobs.power.problem.PowerProblem.log_likelihood` (the power workflow's own
   likelihood and automatic start).
 
 Every fit runs the project's own path: an automatic start that does not know the truth,
@@ -52,10 +52,10 @@ from polkit.inference import (
     find_map,
     run_ensemble,
 )
+from polkit.jobs.dispersion.problem import DispersionProblem, fitted_line_centre
+from polkit.jobs.power.problem import PowerProblem
 from polkit.models import spectral
 from polkit.models.coherent import steady_state_sweep
-from polkit.workflows.dispersion_model import DispersionProblem, fitted_line_centre
-from polkit.workflows.power_model import PowerProblem
 
 MEV = 1e-3
 

@@ -11,7 +11,7 @@ measured.
 
 prints a table and one JSON object (a measurement, like the benchmarks: it asserts nothing;
 the numbers go to the README and to the caveat of the peak-table path's results,
-``polkit/workflows/dispersion_caveats.py``).
+``polkit/jobs/dispersion/caveats.py``).
 """
 
 from __future__ import annotations

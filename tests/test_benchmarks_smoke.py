@@ -92,7 +92,7 @@ def test_hot_path_benchmark_runs(tiny_results):
     assert any("spectral.py" in row["function"] or "_kernels.py" in row["function"]
                for row in r["profile_top"])
     assert math.isfinite(r["numpy_path_ms"]) and r["numpy_path_ms"] > 0
-    # the compiled and numpy paths agree (tolerance argued in tests/test_spectral_kernels.py)
+    # the compiled and numpy paths agree (tolerance argued in/numerics/test_spectral_kernels.py)
     assert r["compiled_minus_numpy_max_abs"] < 1e-6
     if r["compiled_path"]:
         assert r["numba"] is not None

@@ -8,7 +8,7 @@ from pathlib import Path
 
 import pytest
 
-from polkit import io
+from polkit import files
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -28,7 +28,7 @@ def test_ci_runs_the_readme_test_command_verbatim():
 def test_atomic_write_replaces_or_keeps(tmp_path):
     # common practice, no published source: write-to-temp, fsync, rename.
     target = tmp_path / "r.json"
-    io.write_json(target, {"a": 1.0, "nan": float("nan")})
+    files.write_json(target, {"a": 1.0, "nan": float("nan")})
     assert target.read_text().startswith("{")
     assert '"nan": null' in target.read_text()
 
@@ -36,7 +36,7 @@ def test_atomic_write_replaces_or_keeps(tmp_path):
         pass
 
     with pytest.raises(Boom):
-        with io.atomic_path(target) as tmp:
+        with files.atomic_path(target) as tmp:
             tmp.write_text("half")
             raise Boom
     assert '"a": 1.0' in target.read_text()
@@ -51,7 +51,7 @@ def test_read_only_folder_gives_clear_error(tmp_path):
     folder.chmod(0o500)
     try:
         with pytest.raises(OSError, match="cannot write"):
-            io.write_json(folder / "old.json", {"new": 1})
+            files.write_json(folder / "old.json", {"new": 1})
         assert (folder / "old.json").read_text() == "{}"
     finally:
         folder.chmod(0o700)

@@ -26,13 +26,13 @@ import numpy as np
 import pytest
 import xarray as xr
 
-from polkit import io
+from polkit import files
 from polkit.cli import main
 from polkit.data import make_map
 from polkit.errors import ConvergenceWarning
 from polkit.inference import FitResult, Parameter, ParameterSpace, Prior, run_ensemble
+from polkit.jobs.dispersion.run import fit_dispersion
 from polkit.models.spectral import simulate_map
-from polkit.workflows.dispersion import fit_dispersion
 
 MEV = 1e-3
 SEED = 5
@@ -57,7 +57,7 @@ def _write_map(path: Path, seed: int = 3) -> Path:
     y = rng.poisson(mean) + rng.normal(0.0, 3.0, mean.shape)
     da = make_map(y, angle=ang, energy=energy, units="counts", kind="emission", gain=1.0,
                   read_noise=3.0, sample="invented DS-R")
-    io.write_netcdf(path, da)
+    files.write_netcdf(path, da)
     return path
 
 
@@ -79,7 +79,7 @@ def _run_args(map_path: Path, out: Path, *extra: str, cli=_cli) -> list[str]:
 #: moment lands inside sampling however fast the machine; the sleep changes no value
 _SLOWED_CLI = (
     "import sys, time\n"
-    "from polkit.workflows.dispersion_model import DispersionProblem as P\n"
+    "from polkit.jobs.dispersion.problem import DispersionProblem as P\n"
     "fast = P.table_log_likelihood\n"
     "P.table_log_likelihood = lambda self, theta: (time.sleep(0.003), fast(self, theta))[1]\n"
     "from polkit.cli import main\n"
@@ -185,7 +185,7 @@ import matplotlib.pyplot as plt
 import numpy as np
 import xarray as xr
 
-from polkit import io
+from polkit import files
 
 folder = Path(sys.argv[1])
 version = int(sys.argv[2])
@@ -193,14 +193,14 @@ fig, ax = plt.subplots(figsize=(3, 2))
 ax.plot(np.linspace(0, 1, 50) ** 2)
 while True:
     version += 1
-    io.write_json(folder / "summary.json",
+    files.write_json(folder / "summary.json",
                   {"version": version, "values": list(range(4000)), "complete": True})
-    io.write_netcdf(folder / "posterior.nc", xr.Dataset(
+    files.write_netcdf(folder / "posterior.nc", xr.Dataset(
         {"x": ("draw", np.full(30000, float(version)), {"units": "meV"})},
         attrs={"version": version}))
     ax.set_title(f"version {version}")
-    io.save_figure(folder / "fit.png", fig)
-    io.write_text(folder / "table.txt",
+    files.save_figure(folder / "fit.png", fig)
+    files.write_text(folder / "table.txt",
                   "".join(f"row {k} version {version}\n" for k in range(3000)) + "end\n")
     if version == int(sys.argv[2]) + 1:
         print("ready", flush=True)
@@ -262,7 +262,7 @@ def test_results_killed_mid_write_are_old_or_new_never_truncated(tmp_path):
         assert len(list(folder.glob(".*.part"))) <= 1
     assert len(seen) > 3, "the writer made progress between kills"
     for name in ("summary.json", "table.txt", "posterior.nc", "fit.png"):
-        io.write_bytes(folder / name, (folder / name).read_bytes())
+        files.write_bytes(folder / name, (folder / name).read_bytes())
     assert sorted(p.name for p in folder.iterdir()) == sorted(
         ["summary.json", "table.txt", "posterior.nc", "fit.png"])
 
@@ -270,12 +270,12 @@ def test_results_killed_mid_write_are_old_or_new_never_truncated(tmp_path):
 def test_a_write_that_fails_leaves_no_temporary_file_and_keeps_permissions(tmp_path):
     # common practice, no published source: new files get 0666 less the umask (as open()
     # would), a replaced file keeps its mode, and a failed write removes its temporary file
-    new = io.write_text(tmp_path / "new.txt", "x")
+    new = files.write_text(tmp_path / "new.txt", "x")
     mask = os.umask(0o022)
     os.umask(mask)
     assert (new.stat().st_mode & 0o777) == 0o666 & ~mask
     new.chmod(0o640)
-    io.write_text(new, "y")
+    files.write_text(new, "y")
     assert (new.stat().st_mode & 0o777) == 0o640 and new.read_text() == "y"
 
     # a library writer (HDF5) that reports a full disk inside a RuntimeError, half-way
@@ -283,7 +283,7 @@ def test_a_write_that_fails_leaves_no_temporary_file_and_keeps_permissions(tmp_p
                     "errno = 28, error message = 'No space left on device', buf = ...)")
     with pytest.raises(OSError, match=r"cannot write .*new\.txt: No space left on device; "
                        r"the disk is full") as info:
-        with io.atomic_path(new) as tmp:
+        with files.atomic_path(new) as tmp:
             tmp.write_bytes(b"half")
             raise RuntimeError(hdf5_message)
     assert info.value.errno == errno.ENOSPC
@@ -395,7 +395,7 @@ def test_cli_reports_a_full_disk_at_result_time_in_one_line(map_file, tmp_path, 
     def no_space(*args, **kwargs):
         raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
 
-    monkeypatch.setattr(io.tempfile, "mkstemp", no_space)
+    monkeypatch.setattr(files.tempfile, "mkstemp", no_space)
     with warnings.catch_warnings():  # the short run does not converge: printed, not raised
         warnings.simplefilter("default", ConvergenceWarning)
         status = main(["dispersion", str(map_file), "--peaks-only", "--out", str(out),
@@ -458,7 +458,7 @@ def test_read_only_output_folder_gives_a_clear_error_and_keeps_old_results(map_f
     if not _can_drop_capabilities():
         pytest.skip("running as root without CAP_SETPCAP: cannot make a folder read-only")
     with _read_only_folder(tmp_path) as folder:
-        code = "from polkit import io; io.write_json(__import__('sys').argv[1], {'new': 1})"
+        code = "from polkit import files; files.write_json(__import__('sys').argv[1], {'new': 1})"
         proc = subprocess.run([sys.executable, "-c", code, str(folder / "summary.json")],
                               preexec_fn=_as_ordinary_user, capture_output=True, text=True,
                               timeout=HANG_GUARD_S)
@@ -489,13 +489,13 @@ def test_permission_refused_is_reported_and_the_old_file_kept(tmp_path, monkeypa
         raise PermissionError(errno.EACCES, os.strerror(errno.EACCES))
 
     if where == "temporary file":
-        monkeypatch.setattr(io.tempfile, "mkstemp", refuse)
+        monkeypatch.setattr(files.tempfile, "mkstemp", refuse)
     else:
-        monkeypatch.setattr(io.os, "replace", refuse)
+        monkeypatch.setattr(files.os, "replace", refuse)
     with pytest.raises(PermissionError, match=r"cannot write .*summary\.json: Permission "
                        r"denied; the folder .* is read-only .*: choose another output "
                        r"folder") as info:
-        io.write_json(target, {"new": 1})
+        files.write_json(target, {"new": 1})
     message = str(info.value)
     assert f"the folder {tmp_path} is read-only" in message  # names the folder
     assert "\n" not in message and "[Errno" not in message  # one clean line
@@ -510,10 +510,10 @@ def test_permission_refused_is_reported_and_the_old_file_kept(tmp_path, monkeypa
 _HOLD_TEMPORARIES = r"""
 import sys, time
 from pathlib import Path
-from polkit import io
+from polkit import files
 
 folder = Path(sys.argv[1])
-with io.atomic_path(folder / "summary.json") as a, io.atomic_path(folder / "table.txt") as b:
+with files.atomic_path(folder / "summary.json") as a, files.atomic_path(folder / "table.txt") as b:
     a.write_bytes(b"half of a summary")
     b.write_bytes(b"half of a table")
     print(a.name, b.name, flush=True)
@@ -560,11 +560,11 @@ def test_next_write_removes_temporary_files_of_killed_writers_only(tmp_path):
             (folder / name).write_text("not ours to remove")
         old = folder / ".summary.json.otherhost-4243.abcd_fgh.part"
         old.write_text("left two days ago on another host")
-        two_days_ago = time.time() - 2 * io.STALE_AGE_S
+        two_days_ago = time.time() - 2 * files.STALE_AGE_S
         os.utime(old, (two_days_ago, two_days_ago))
         assert (folder / killed_summary).exists() and (folder / killed_table).exists()
 
-        io.write_json(folder / "summary.json", {"new": True})
+        files.write_json(folder / "summary.json", {"new": True})
 
         assert json.loads((folder / "summary.json").read_text()) == {"new": True}
         assert not (folder / killed_summary).exists()  # its writer is dead
@@ -574,7 +574,7 @@ def test_next_write_removes_temporary_files_of_killed_writers_only(tmp_path):
         assert (folder / running_table).exists()
         assert all((folder / name).exists() for name in decoys)
 
-        io.write_text(folder / "table.txt", "rows\n")
+        files.write_text(folder / "table.txt", "rows\n")
         assert not (folder / killed_table).exists()
         assert (folder / running_table).exists()
     finally:

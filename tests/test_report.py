@@ -26,7 +26,8 @@ CELLS = [
     ("markdown", "# A small report\nAn invented map, fitted on the peak table.", None),
     ("code", 'map_file = "map.nc"\nseed = 1\nmax_steps = 60\nout_dir = "out"', ["parameters"]),
     ("code", "import warnings\nimport matplotlib.pyplot as plt\nimport ipywidgets\n"
-             "from polkit import plots\nfrom polkit.workflows.dispersion import fit_dispersion\n"
+             "from polkit.plotting import dispersion as plots\n"
+             "from polkit.jobs.dispersion.run import fit_dispersion\n"
              "warnings.simplefilter('ignore')", None),
     ("code", "result = fit_dispersion(map_file, peaks_only=True, seed=seed, max_steps=max_steps,\n"
              "                         out=out_dir, progress=False, figures=False)\n"

@@ -26,12 +26,18 @@ from __future__ import annotations
 
 import xarray as xr
 
-from .assemble import raw_to_map
-from .build import make_map, make_series
-from .camera import CameraOptions, ExcludeWindow, detector_variance_terms, parse_exclude
-from .fourier import find_pupil_edges, pixel_to_angle, sin_theta_from_pixel, to_k, wavevector
-from .inspect import inspect_file
-from .preprocess import (
+from polkit.data.assemble import raw_to_map
+from polkit.data.build import make_map, make_series
+from polkit.data.camera import CameraOptions, ExcludeWindow, detector_variance_terms, parse_exclude
+from polkit.data.fourier import (
+    find_pupil_edges,
+    pixel_to_angle,
+    sin_theta_from_pixel,
+    to_k,
+    wavevector,
+)
+from polkit.data.inspect import inspect_file
+from polkit.data.preprocess import (
     SymmetryReport,
     bin_map,
     check_symmetry,
@@ -42,11 +48,17 @@ from .preprocess import (
     subtract_background,
     subtract_dark,
 )
-from .registry import READERS, choose_reader, read_raw
-from .series import raw_to_series
-from .spikes import find_spikes, mask_saturated_map, mask_spikes, mask_windows, prepare_camera_map
-from .units import air_to_vacuum_nm, refractive_index_air, vacuum_to_air_nm
-from .validate import validate_map, validate_series
+from polkit.data.registry import READERS, choose_reader, read_raw
+from polkit.data.series import raw_to_series
+from polkit.data.spikes import (
+    find_spikes,
+    mask_saturated_map,
+    mask_spikes,
+    mask_windows,
+    prepare_camera_map,
+)
+from polkit.data.validate import validate_map, validate_series
+from polkit.units import air_to_vacuum_nm, refractive_index_air, vacuum_to_air_nm
 
 __all__ = [
     "load_map",

@@ -4,7 +4,7 @@ Every reader returns a *raw* :class:`xarray.Dataset`: the file's own names, a
 ``units`` attribute wherever the file gave units, and the file's metadata as
 attributes.  This module does everything that is common to all readers: it finds the
 signal and tells the axes apart (units first, names second, see
-:mod:`polkit.data.roles`), converts units (:mod:`polkit.data.units`), calibrates
+:mod:`polkit.data.roles`), converts units (:mod:`polkit.units`), calibrates
 Fourier-plane pixel axes (:mod:`polkit.data.fourier`), scales spectral densities on a
 wavelength axis by the Jacobian, sorts axes ascending, masks non-finite values on
 request, and finally hands the object to :mod:`polkit.data.validate`.
@@ -43,12 +43,11 @@ import warnings
 import numpy as np
 import xarray as xr
 
-from ..errors import DataError, DataWarning
-from . import units as U
-from .camera_raw import camera_step, jacobian_coord, record_lines
-from .fourier import calibrate_pixel_axis
-from .roles import SIGNAL_NAMES, axis_role
-from .schema import (
+from polkit import units as U
+from polkit.data.camera_raw import camera_step, jacobian_coord, record_lines
+from polkit.data.fourier import calibrate_pixel_axis
+from polkit.data.roles import SIGNAL_NAMES, axis_role
+from polkit.data.schema import (
     CARRIED_ATTRS,
     COORD_ATTRS,
     DENSITY_KINDS,
@@ -57,7 +56,8 @@ from .schema import (
     MEDIA,
     append_history,
 )
-from .validate import validate_map, validate_series
+from polkit.data.validate import validate_map, validate_series
+from polkit.errors import DataError, DataWarning
 
 __all__ = ["raw_to_map", "cube_to_series", "raw_content", "find_signal"]
 

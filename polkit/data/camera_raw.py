@@ -12,14 +12,14 @@ from pathlib import Path
 import numpy as np
 import xarray as xr
 
-from ..errors import DataError
-from . import camera as C
+from polkit.data import camera as C
+from polkit.errors import DataError
 
 __all__ = ["camera_step", "jacobian_coord", "record_lines"]
 
 
 def _assemble():
-    from . import assemble
+    from polkit.data import assemble
 
     return assemble
 
@@ -71,7 +71,7 @@ def _offset_source(dark, attrs: dict, *, path):
 
 def _dark_frame(dark, var: xr.DataArray, *, path) -> np.ndarray:
     """A dark-frame file's raw values, checked against the map's raw axes."""
-    from .registry import read_raw
+    from polkit.data.registry import read_raw
 
     if not Path(dark).is_file():
         raise DataError(

@@ -29,15 +29,15 @@ from pathlib import Path
 import numpy as np
 import xarray as xr
 
-from ..errors import DataError
-from .roles import is_series_column
-from .text import (
+from polkit.data.roles import is_series_column
+from polkit.data.text import (
     decode_text,
     parse_header_name,
     parse_metadata,
     parse_number,
     split_comments,
 )
+from polkit.errors import DataError
 
 __all__ = ["read", "TEXT_COLUMNS"]
 

@@ -33,9 +33,9 @@ import numpy as np
 import xarray as xr
 from scipy.ndimage import gaussian_filter1d
 
-from ..constants import HBARC_EV_UM
-from ..errors import ConfigError, DataError, DataWarning
-from .schema import COORD_ATTRS, append_history
+from polkit.constants import HBARC_EV_UM
+from polkit.data.schema import COORD_ATTRS, append_history
+from polkit.errors import ConfigError, DataError, DataWarning
 
 __all__ = [
     "FOURIER_KEYS",
@@ -315,7 +315,7 @@ def to_k(da: xr.DataArray, k=None) -> xr.DataArray:
     xarray.DataArray
         Canonical map on dim ``k``.
     """
-    from .validate import validate_map
+    from polkit.data.validate import validate_map
 
     da = validate_map(da)
     if da.dims[0] != "angle":

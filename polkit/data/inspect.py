@@ -8,9 +8,9 @@ import warnings
 import numpy as np
 import xarray as xr
 
-from ..io import save_figure
-from .camera import describe_record, preprocessing_record
-from .schema import MAP_NUMBER_ATTRS
+from polkit.data.camera import describe_record, preprocessing_record
+from polkit.data.schema import MAP_NUMBER_ATTRS
+from polkit.files import save_figure
 
 __all__ = ["inspect_file", "describe"]
 
@@ -175,9 +175,9 @@ def inspect_file(path, *, png=None, camera=None, **load_options) -> str:
     DataError
         When the file cannot be loaded (the message says why).
     """
-    from . import load_map, load_series
-    from .assemble import raw_content
-    from .registry import read_raw
+    from polkit.data import load_map, load_series
+    from polkit.data.assemble import raw_content
+    from polkit.data.registry import read_raw
 
     reader_options = {
         k: load_options.pop(k) for k in ("rows", "columns", "delimiter") if k in load_options
@@ -192,7 +192,7 @@ def inspect_file(path, *, png=None, camera=None, **load_options) -> str:
                 load_options.setdefault("mask_saturated", camera.mask_saturated)
             obj = load_map(path, reader=reader, **load_options, **reader_options)
             if camera is not None:
-                from .spikes import prepare_camera_map
+                from polkit.data.spikes import prepare_camera_map
 
                 obj = prepare_camera_map(obj, camera)
         else:

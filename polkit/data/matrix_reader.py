@@ -26,8 +26,14 @@ from pathlib import Path
 import numpy as np
 import xarray as xr
 
-from ..errors import DataError
-from .text import decode_text, parse_header_name, parse_metadata, parse_number, split_comments
+from polkit.data.text import (
+    decode_text,
+    parse_header_name,
+    parse_metadata,
+    parse_number,
+    split_comments,
+)
+from polkit.errors import DataError
 
 __all__ = ["read", "looks_like_matrix"]
 

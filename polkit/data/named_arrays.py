@@ -21,8 +21,8 @@ import itertools
 import numpy as np
 import xarray as xr
 
-from ..errors import DataError
-from .roles import ROLE_RANK, SIGNAL_NAMES, axis_role
+from polkit.data.roles import ROLE_RANK, SIGNAL_NAMES, axis_role
+from polkit.errors import DataError
 
 __all__ = ["arrays_to_raw"]
 

@@ -15,8 +15,8 @@ from pathlib import Path
 import numpy as np
 import xarray as xr
 
-from ..errors import DataError
-from .named_arrays import arrays_to_raw
+from polkit.data.named_arrays import arrays_to_raw
+from polkit.errors import DataError
 
 __all__ = ["read"]
 

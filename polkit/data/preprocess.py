@@ -43,10 +43,10 @@ import xarray as xr
 from scipy.interpolate import interp1d
 from scipy.optimize import minimize_scalar
 
-from ..errors import ConfigError, DataError
-from .camera import detector_variance_terms, raw_counts
-from .schema import append_history
-from .validate import validate_map
+from polkit.data.camera import detector_variance_terms, raw_counts
+from polkit.data.schema import append_history
+from polkit.data.validate import validate_map
+from polkit.errors import ConfigError, DataError
 
 __all__ = [
     "crop",

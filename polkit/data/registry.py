@@ -17,9 +17,9 @@ from pathlib import Path
 
 import xarray as xr
 
-from ..errors import ConfigError, DataError
-from . import csv_reader, matrix_reader, netcdf_reader, npz_reader
-from .text import decode_text, split_comments
+from polkit.data import csv_reader, matrix_reader, netcdf_reader, npz_reader
+from polkit.data.text import decode_text, split_comments
+from polkit.errors import ConfigError, DataError
 
 __all__ = ["READERS", "choose_reader", "read_raw"]
 

@@ -6,7 +6,7 @@ when no units are given.  The name lists are polkit's vocabulary for input files
 
 from __future__ import annotations
 
-from .units import (
+from polkit.units import (
     ANGLE_UNITS,
     PIXEL_UNITS,
     POWER_UNITS,

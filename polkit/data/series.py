@@ -18,9 +18,8 @@ import logging
 import numpy as np
 import xarray as xr
 
-from ..errors import DataError
-from . import units as U
-from .assemble import (
+from polkit import units as U
+from polkit.data.assemble import (
     _SPECTRAL_FIX,
     _carried,
     _choose_medium,
@@ -30,10 +29,11 @@ from .assemble import (
     cube_to_series,
     raw_content,
 )
-from .build import make_series
-from .roles import COLUMN_ALIASES as _COLUMN_ALIASES
-from .roles import ERROR_SUFFIXES as _ERROR_SUFFIXES
-from .schema import append_history
+from polkit.data.build import make_series
+from polkit.data.roles import COLUMN_ALIASES as _COLUMN_ALIASES
+from polkit.data.roles import ERROR_SUFFIXES as _ERROR_SUFFIXES
+from polkit.data.schema import append_history
+from polkit.errors import DataError
 
 __all__ = ["raw_to_series"]
 

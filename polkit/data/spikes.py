@@ -45,8 +45,7 @@ import numpy as np
 import xarray as xr
 from scipy.ndimage import binary_dilation, maximum_filter1d, median_filter
 
-from ..errors import ConfigError, DataWarning
-from .camera import (
+from polkit.data.camera import (
     CameraOptions,
     detector_variance_terms,
     find_saturated_raw,
@@ -55,8 +54,9 @@ from .camera import (
     raw_counts,
     record_step,
 )
-from .schema import append_history
-from .validate import validate_map
+from polkit.data.schema import append_history
+from polkit.data.validate import validate_map
+from polkit.errors import ConfigError, DataWarning
 
 __all__ = ["find_spikes", "mask_spikes", "mask_saturated_map", "mask_windows",
            "prepare_camera_map"]
@@ -296,7 +296,7 @@ def prepare_camera_map(da: xr.DataArray, options: CameraOptions | None = None) -
     Order: offset (for in-memory maps; a file's offset is subtracted by the loader),
     saturation, spikes, excluded windows.  Steps switched off are recorded as such.
     """
-    from . import subtract_dark
+    from polkit.data import subtract_dark
 
     opts = options if options is not None else CameraOptions()
     da = validate_map(da)
@@ -305,7 +305,7 @@ def prepare_camera_map(da: xr.DataArray, options: CameraOptions | None = None) -
         if isinstance(opts.dark, (int, float)):
             dark, what = float(opts.dark), f"level {float(opts.dark):g} counts (option)"
         else:
-            from . import load_map
+            from polkit.data import load_map
 
             dark, what = load_map(opts.dark), f"dark frame {opts.dark}"
         da = subtract_dark(da, dark)

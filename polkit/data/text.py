@@ -17,7 +17,7 @@ import re
 
 import numpy as np
 
-from ..errors import DataError
+from polkit.errors import DataError
 
 __all__ = [
     "decode_text",

@@ -25,8 +25,7 @@ from numbers import Integral, Real
 import numpy as np
 import xarray as xr
 
-from ..errors import DataError, DataWarning
-from .schema import (
+from polkit.data.schema import (
     ANGLE_DIMS,
     COORD_ATTRS,
     ENERGY_DIM,
@@ -41,6 +40,7 @@ from .schema import (
     SERIES_VARIABLES,
     SWEEPS,
 )
+from polkit.errors import DataError, DataWarning
 
 __all__ = [
     "fail",

@@ -9,7 +9,7 @@ per posterior draw.  Sampling is left to emcee, diagnostics to ArviZ.
 
 from __future__ import annotations
 
-from .diagnostics import (
+from polkit.inference.diagnostics import (
     arviz_diagnostics,
     autocorr_time,
     convergence_gate,
@@ -17,11 +17,11 @@ from .diagnostics import (
     stuck_walkers,
     walker_acceptance,
 )
-from .optimize import MapResult, check_ensemble, find_map, initial_ball
-from .posterior import LogPosterior
-from .priors import PRIOR_KINDS, Parameter, ParameterSpace, Prior, apply_priors
-from .result import FitResult
-from .sampler import SamplerOutput, default_moves, run_ensemble
+from polkit.inference.optimize import MapResult, check_ensemble, find_map, initial_ball
+from polkit.inference.posterior import LogPosterior
+from polkit.inference.priors import PRIOR_KINDS, Parameter, ParameterSpace, Prior, apply_priors
+from polkit.inference.result import FitResult
+from polkit.inference.sampler import SamplerOutput, default_moves, run_ensemble
 
 __all__ = [
     "PRIOR_KINDS",

@@ -13,7 +13,7 @@ of steps) resumes from the last flushed step to the chain an uninterrupted run g
 
 Room on disk: before each stretch of steps, and again before each stored step, the
 free space and the file-size limit are checked against what the checkpoint will need
-(whole HDF5 chunks plus a margin, see :func:`polkit.io.check_room`).  When it does not
+(whole HDF5 chunks plus a margin, see :func:`polkit.files.check_room`).  When it does not
 fit, the run stops with one :class:`OSError` naming the checkpoint and the fix before
 h5py is asked to write; the stored steps stay readable and ``resume=True`` continues
 them.  Only a disk that fills up within a single step (another program writing) meets
@@ -35,9 +35,9 @@ from pathlib import Path
 
 import numpy as np
 
-from ..errors import ConfigError, PolkitError
-from ..io import check_room, write_error
-from .identity import IDENTITY_ATTR, compare_identity, fit_identity
+from polkit.errors import ConfigError, PolkitError
+from polkit.files import check_room, write_error
+from polkit.inference.identity import IDENTITY_ATTR, compare_identity, fit_identity
 
 __all__ = ["root_seed", "prepare_checkpoint", "start_stored"]
 
@@ -290,14 +290,14 @@ def _checkpoint_writes(path: Path):
 
     h5py reports a full disk or a file-size limit as an :class:`OSError` or
     :class:`RuntimeError` carrying HDF5's own error stack; the clear error names the
-    checkpoint, the problem and the fix (see :func:`polkit.io.write_error`).
+    checkpoint, the problem and the fix (see :func:`polkit.files.write_error`).
     """
     try:
         yield
     except PolkitError:
         raise
     except (OSError, RuntimeError) as exc:
-        if str(exc).startswith("cannot write "):  # already clear (polkit.io)
+        if str(exc).startswith("cannot write "):  # already clear (polkit.files)
             raise
         clear = write_error(path, exc)
         if clear is None:

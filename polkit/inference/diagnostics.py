@@ -42,7 +42,7 @@ log = logging.getLogger(__name__)
 
 
 def _arviz():
-    from .._arviz import arviz
+    from polkit._arviz import arviz
 
     return arviz()
 

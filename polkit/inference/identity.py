@@ -30,7 +30,7 @@ from collections.abc import Mapping
 from importlib import metadata
 from typing import Any
 
-from ..errors import DataError, DataWarning
+from polkit.errors import DataError, DataWarning
 
 __all__ = ["IDENTITY_ATTR", "CheckpointMismatch", "fit_identity", "compare_identity"]
 
@@ -53,7 +53,7 @@ def _text(value: Any) -> str:
 
 def _version(name: str) -> str:
     if name == "polkit":
-        from .. import __version__
+        from polkit import __version__
 
         return __version__
     try:

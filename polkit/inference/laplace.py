@@ -24,9 +24,9 @@ from typing import Any
 import numpy as np
 from scipy import stats
 
-from .optimize import MapResult
-from .posterior import LogPosterior
-from .priors import ParameterSpace
+from polkit.inference.optimize import MapResult
+from polkit.inference.posterior import LogPosterior
+from polkit.inference.priors import ParameterSpace
 
 __all__ = ["LABEL", "laplace_summary", "format_quick", "compare_with_mcmc"]
 

@@ -16,9 +16,9 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import optimize
 
-from ..errors import FitError
-from .posterior import describe_point
-from .priors import ParameterSpace
+from polkit.errors import FitError
+from polkit.inference.posterior import describe_point
+from polkit.inference.priors import ParameterSpace
 
 __all__ = ["MapResult", "find_map", "initial_ball", "check_ensemble"]
 

@@ -12,8 +12,8 @@ from collections.abc import Callable
 
 import numpy as np
 
-from ..errors import FitError
-from .priors import ParameterSpace
+from polkit.errors import FitError
+from polkit.inference.priors import ParameterSpace
 
 __all__ = ["LogPosterior", "describe_point"]
 

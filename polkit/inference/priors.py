@@ -27,7 +27,7 @@ from typing import Any
 import numpy as np
 from scipy import special
 
-from ..errors import ConfigError
+from polkit.errors import ConfigError
 
 __all__ = ["PRIOR_KINDS", "Prior", "Parameter", "ParameterSpace", "apply_priors", "read_prior_file"]
 

@@ -46,11 +46,11 @@ from typing import Any
 import numpy as np
 import xarray as xr
 
-from .._paths import shareable_attrs
-from ..errors import ConfigError, DataError
-from ..io import json_safe, write_json, write_netcdf
-from .priors import ParameterSpace
-from .sampler import SamplerOutput
+from polkit._paths import shareable_attrs
+from polkit.errors import ConfigError, DataError
+from polkit.files import json_safe, write_json, write_netcdf
+from polkit.inference.priors import ParameterSpace
+from polkit.inference.sampler import SamplerOutput
 
 __all__ = ["FitResult", "POSTERIOR_FILE", "SUMMARY_FILE"]
 
@@ -94,7 +94,7 @@ def _library_versions() -> dict[str, str]:
 
 
 def _polkit_version() -> str:
-    from .. import __version__
+    from polkit import __version__
 
     return __version__
 

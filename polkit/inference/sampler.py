@@ -45,11 +45,11 @@ from typing import Any
 import numpy as np
 import xarray as xr
 
-from ..errors import ConfigError, ConvergenceWarning, FitError
-from ..folder_lock import folder_lock
-from ..io import check_room
-from . import diagnostics as diag
-from .checkpoint import (
+from polkit.errors import ConfigError, ConvergenceWarning, FitError
+from polkit.files import check_room
+from polkit.folder_lock import folder_lock
+from polkit.inference import diagnostics as diag
+from polkit.inference.checkpoint import (
     _ROOM_FIX,
     _checkpoint_backend,
     _checkpoint_writes,
@@ -62,10 +62,10 @@ from .checkpoint import (
     _with_margin,
     root_seed,
 )
-from .identity import fit_identity
-from .optimize import MapResult, check_ensemble, initial_ball
-from .posterior import LogPosterior, describe_point
-from .priors import ParameterSpace
+from polkit.inference.identity import fit_identity
+from polkit.inference.optimize import MapResult, check_ensemble, initial_ball
+from polkit.inference.posterior import LogPosterior, describe_point
+from polkit.inference.priors import ParameterSpace
 
 __all__ = ["SamplerOutput", "run_ensemble", "default_moves", "root_seed"]
 
@@ -84,7 +84,7 @@ def default_moves() -> list:
     proposal loop costs more than it gains, on a curved (banana) posterior as well
     as on a bimodal one and on the demo map's posterior; and on a correlated Gaussian
     emcee's snooker move gave 68 % intervals about 3 % too narrow (checked in
-    ``tests/test_inference_sampler.py``).  The stretch move loses
+    ``tests/inference/test_inference_sampler.py``).  The stretch move loses
     efficiency as the dimension grows, and a full-covariance Gaussian move would
     give every walker the same proposal distribution.
     """

@@ -5,14 +5,14 @@ fractions), :mod:`~polkit.models.spectral` (whole-map spectral model, variable p
 :mod:`~polkit.models.lineshapes`, :mod:`~polkit.models.coherent` (driven-dissipative
 steady states), :mod:`~polkit.models.reservoir` (nonresonant drive),
 :mod:`~polkit.models.calibration` (pump power to density),
-:mod:`~polkit.models.energy` (energy per operation).
+:mod:`~polkit.models.device_energy` (energy per operation).
 """
 
-from . import (  # noqa: F401
+from polkit.models import (  # noqa: F401
     calibration,
     coherent,
+    device_energy,
     dispersion,
-    energy,
     lineshapes,
     reservoir,
     spectral,

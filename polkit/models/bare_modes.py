@@ -25,9 +25,9 @@ from __future__ import annotations
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
-from ..errors import DataError
-from .dispersion import cavity_energy
-from .spectral import MapBasis
+from polkit.errors import DataError
+from polkit.models.dispersion import cavity_energy
+from polkit.models.spectral import MapBasis
 
 __all__ = ["bare_mode_basis"]
 

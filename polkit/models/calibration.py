@@ -37,8 +37,8 @@ from numpy.typing import ArrayLike, NDArray
 from scipy import constants as _c
 from scipy import stats
 
-from ..config_entries import quantity, read_table, refuse_unknown, require_quantity
-from ..errors import ConfigError, DataError
+from polkit.config.quantities import quantity, read_table, refuse_unknown, require_quantity
+from polkit.errors import ConfigError, DataError
 
 logger = logging.getLogger(__name__)
 

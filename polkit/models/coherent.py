@@ -34,8 +34,8 @@ from typing import Literal, NamedTuple
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
-from .._checks import real_array
-from ..errors import DataError
+from polkit._checks import real_array
+from polkit.errors import DataError
 
 logger = logging.getLogger(__name__)
 

@@ -28,8 +28,8 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
-from ..constants import HBAR_MEV_PS, HBARC_EV_UM, ME_C2_EV
-from ..errors import DataError
+from polkit.constants import HBAR_MEV_PS, HBARC_EV_UM, ME_C2_EV
+from polkit.errors import DataError
 
 __all__ = [
     "cavity_energy",

@@ -50,8 +50,8 @@ from typing import Literal
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
-from ..errors import DataError
-from . import coherent
+from polkit.errors import DataError
+from polkit.models import coherent
 
 logger = logging.getLogger(__name__)
 

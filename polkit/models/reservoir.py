@@ -29,9 +29,9 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 from scipy.integrate import solve_ivp
 
-from .._checks import real_array
-from ..constants import HBAR_MEV_PS
-from ..errors import DataError, FitError
+from polkit._checks import real_array
+from polkit.constants import HBAR_MEV_PS
+from polkit.errors import DataError, FitError
 
 logger = logging.getLogger(__name__)
 

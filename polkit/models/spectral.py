@@ -34,15 +34,15 @@ are accumulated.  ``numpy.asarray(basis)`` materialises the whole array when wan
 Compiled path
 -------------
 The bases built here also carry the few numbers a compiled kernel needs
-(:mod:`polkit.models._kernels`, numba): it evaluates each row's line shapes and
+(:mod:`polkit.numerics.kernels`, numba): it evaluates each row's line shapes and
 accumulates its Gram sums in one pass over the energy axis, then solves the small
 problems in closed form, with the same formulas as the numpy path (the tests hold the
 two to rounding).  For three oscillators (two excitons) the branch poles and photon
-residues of the whole-map bases are compiled too (:mod:`polkit.models._kernels3`: the
+residues of the whole-map bases are compiled too (:mod:`polkit.numerics.kernels3`: the
 roots of the characteristic cubic and ``(z - x1)(z - x2) / D'(z)``, held to
 ``numpy.linalg.eig`` to 1e-10 by the tests); :func:`branch_poles` keeps the numpy
 eigen-solver as the reference.  It is used whenever numba imports; ``POLKIT_COMPILED=0`` (or
-``polkit.models._kernels.use_compiled(False)``) selects the numpy path.  A basis built
+``polkit.numerics.kernels.use_compiled(False)``) selects the numpy path.  A basis built
 another way (an ndarray, or a :class:`MapBasis` from elsewhere) always takes the numpy
 path.
 """
@@ -58,8 +58,8 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 from scipy.special import wofz
 
-from ..errors import DataError
-from .dispersion import cavity_energy, coupled_modes, two_mode_eigenvalues
+from polkit.errors import DataError
+from polkit.models.dispersion import cavity_energy, coupled_modes, two_mode_eigenvalues
 
 __all__ = [
     "exciton_propagator",
@@ -344,7 +344,7 @@ def _poles_flat(e_c, flat, compiled: bool = False):
     """Poles (W, A, K) and photon residues of the Lorentzian model.
 
     ``compiled`` lets three oscillators take the compiled poles of
-    :mod:`polkit.models._kernels3` (when the kernels are on); the whole-map bases ask for
+    :mod:`polkit.numerics.kernels3` (when the kernels are on); the whole-map bases ask for
     it.  :func:`branch_poles` does not: it stays the numpy reference (``numpy.linalg.eig``)
     that the peak-table path and the figures read.
     """
@@ -392,7 +392,7 @@ def _poles_flat(e_c, flat, compiled: bool = False):
 
 def _compiled_three_modes():
     """The compiled three-oscillator pole module if it should be used, else None."""
-    from . import _kernels3  # imported on first use: it loads numba
+    from polkit.numerics import kernels3 as _kernels3  # imported on first use: it loads numba
 
     return _kernels3 if _kernels3.enabled() else None
 
@@ -462,7 +462,7 @@ class MapBasis:
         Names of the ``K`` columns (e.g. ``("lower", "upper")``).
     """
 
-    #: ``(mode, arguments)`` of a compiled kernel of :mod:`polkit.models._kernels` that
+    #: ``(mode, arguments)`` of a compiled kernel of :mod:`polkit.numerics.kernels` that
     #: gives the same weighted Gram sums as the blocks (set by the basis builders), or None
     _fused: tuple | None = None
 
@@ -974,7 +974,7 @@ def _compiled_kernels(basis):
     """The compiled-kernel module if it should evaluate this basis, else None."""
     if getattr(basis, "_fused", None) is None:
         return None
-    from . import _kernels  # imported on first use: it loads numba
+    from polkit.numerics import kernels as _kernels  # imported on first use: it loads numba
 
     return _kernels if _kernels.enabled() else None
 

@@ -8,7 +8,7 @@ run widgets offline: each panel offers ``snapshot()``, a static image to show be
 
 from __future__ import annotations
 
-from .dispersion_panel import DispersionPanel, dispersion_panel
-from .power_panel import PowerPanel, power_panel
+from polkit.widgets.dispersion_panel import DispersionPanel, dispersion_panel
+from polkit.widgets.power_panel import PowerPanel, power_panel
 
 __all__ = ["dispersion_panel", "DispersionPanel", "power_panel", "PowerPanel"]

@@ -16,8 +16,8 @@ from typing import Any
 
 import numpy as np
 
-from ..errors import PolkitError
-from ..workflows import _steps
+from polkit.errors import PolkitError
+from polkit.jobs import steps as _steps
 
 log = logging.getLogger(__name__)
 
@@ -201,8 +201,8 @@ def corner_png(result, names: list[str], *, dpi: int = 70) -> bytes:
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
 
-    from .._mpl import corner_data
-    from ._canvas import figure_png
+    from polkit.plotting.base import corner_data
+    from polkit.widgets._canvas import figure_png
 
     data, labels = corner_data(result, names)
     k = len(names)

@@ -18,9 +18,9 @@ from typing import Any
 
 import numpy as np
 
-from ..errors import DataError, PolkitError
-from ..workflows._steps import step_limits, walker_count
-from ._common import SamplingJob, corner_png, status_html
+from polkit.errors import DataError, PolkitError
+from polkit.jobs.steps import step_limits, walker_count
+from polkit.widgets._common import SamplingJob, corner_png, status_html
 
 __all__ = ["FitPanel", "offscreen_figure"]
 

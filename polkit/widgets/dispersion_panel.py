@@ -10,12 +10,12 @@ What each control does (and the decision it supports):
 * the map, on a log or linear colour scale, with an angle (or k) and an energy window:
   the window is the part of the map that the refinement and the sampler fit;
 * sliders for the sampled physics parameters (noise excluded), starting from the
-  automatic guess of :func:`~polkit.workflows.dispersion_model.guess_from_peaks`; each
+  automatic guess of :func:`~polkit.jobs.dispersion.problem.guess_from_peaks`; each
   move redraws the polariton branches, the bare cavity and the bare exciton(s) over the
   map and updates a readout of detuning, Hopfield fractions, lower-polariton energy and
   linewidth at k = 0 and the strong-coupling criterion;
 * *Most probable point*: the maximum a posteriori point from the slider values (as in
-  :func:`~polkit.workflows.dispersion.fit_dispersion`: MAP, noise model calibrated on its
+  :func:`~polkit.jobs.dispersion.run.fit_dispersion`: MAP, noise model calibrated on its
   residuals, MAP again), sliders moved there, normalised residuals shown;
 * *Sample*: emcee from that point in a background thread, with a progress bar and
   *Stop* (a stopped run is kept and marked not converged); then the summary table with
@@ -39,14 +39,14 @@ from typing import Any
 import numpy as np
 import xarray as xr
 
-from ..errors import DataError
-from ..plots import normalised_residuals
-from ..workflows import dispersion as wf
-from ..workflows import dispersion_stages as st
-from ..workflows.dispersion_model import DispersionProblem
-from ._canvas import LiveFigure
-from ._common import clip_into, parameter_slider, status_html
-from ._panel import FitPanel, offscreen_figure
+from polkit.errors import DataError
+from polkit.jobs.dispersion import run as wf
+from polkit.jobs.dispersion import stages as st
+from polkit.jobs.dispersion.problem import DispersionProblem
+from polkit.plotting.dispersion import normalised_residuals
+from polkit.widgets._canvas import LiveFigure
+from polkit.widgets._common import clip_into, parameter_slider, status_html
+from polkit.widgets._panel import FitPanel, offscreen_figure
 
 __all__ = ["dispersion_panel", "DispersionPanel"]
 
@@ -105,7 +105,7 @@ class DispersionPanel(FitPanel):
     map_result
         The last :class:`~polkit.inference.MapResult` of *Most probable point* (``None`` before).
     result
-        The last :class:`~polkit.workflows.dispersion.DispersionFit` (``None`` before).
+        The last :class:`~polkit.jobs.dispersion.run.DispersionFit` (``None`` before).
     job
         The last :class:`~polkit.widgets._common.SamplingJob`.
     """
@@ -231,7 +231,7 @@ class DispersionPanel(FitPanel):
 
     def peak_table(self) -> xr.Dataset:
         """The per-angle peak table of the current window (computed once per window)."""
-        from ..extract import peak_table
+        from polkit.linefit.lines import peak_table
 
         win = self.window()
         if win not in self._tables:
@@ -343,7 +343,7 @@ class DispersionPanel(FitPanel):
     # -- actions ----------------------------------------------------------------------------
     def _find_mode(self):
         """The mode from the slider values, in the steps of
-        :func:`~polkit.workflows.dispersion.fit_dispersion`: the peak-table mode (started at
+        :func:`~polkit.jobs.dispersion.run.fit_dispersion`: the peak-table mode (started at
         the sliders), the whole-window mode started there (and, kept if better, started at
         the sliders themselves), the noise model (variance = a model + b) calibrated on its
         residuals, and the mode again under that noise model."""
@@ -358,7 +358,7 @@ class DispersionPanel(FitPanel):
         return st.refine_mode(problem, start.x)
 
     def _residual_png(self, theta: np.ndarray, label: str) -> bytes:
-        from ._canvas import figure_png
+        from polkit.widgets._canvas import figure_png
 
         problem = self.problem()
         resid = normalised_residuals(problem, theta)
@@ -435,7 +435,7 @@ def dispersion_panel(
     seed
         Root seed of the sampler (recorded in the result).
     max_steps, min_steps, n_walkers
-        Sampler settings (defaults as :func:`~polkit.workflows.dispersion.fit_dispersion`).
+        Sampler settings (defaults as :func:`~polkit.jobs.dispersion.run.fit_dispersion`).
     out
         Default folder of the *Save* button.
     angle_window, energy_window

@@ -13,7 +13,7 @@ read ``panel.curve_data()`` and ``panel.result``).
   readout shows the bistability criterion and turning-point powers (coherent) or the
   threshold and the occupation at the largest power (reservoir);
 * *Most probable point*, *Sample* (background thread, progress bar, *Stop*) and *Save* as in the
-  dispersion panel; the result is the one :func:`~polkit.workflows.power.fit_power` makes
+  dispersion panel; the result is the one :func:`~polkit.jobs.power.run.fit_power` makes
   (calibration and dispersion inputs propagated per draw), started from the refined point.
 """
 
@@ -27,13 +27,13 @@ from typing import Any
 
 import numpy as np
 
-from ..models import coherent
-from ..plots_power import SWEEP_COLOURS, power_grid, residual_points
-from ..workflows import power as pw
-from ..workflows.power_model import PowerProblem
-from ._canvas import LiveFigure
-from ._common import clip_into, parameter_slider
-from ._panel import FitPanel, offscreen_figure
+from polkit.jobs.power import run as pw
+from polkit.jobs.power.problem import PowerProblem
+from polkit.models import coherent
+from polkit.plotting.power import SWEEP_COLOURS, power_grid, residual_points
+from polkit.widgets._canvas import LiveFigure
+from polkit.widgets._common import clip_into, parameter_slider
+from polkit.widgets._panel import FitPanel, offscreen_figure
 
 __all__ = ["power_panel", "PowerPanel"]
 
@@ -51,7 +51,7 @@ class PowerPanel(FitPanel):
     widget
         The whole panel (``ipywidgets.VBox``).
     problem
-        The :class:`~polkit.workflows.power_model.PowerProblem` (data and parameter space).
+        The :class:`~polkit.jobs.power.problem.PowerProblem` (data and parameter space).
     sliders
         ``{parameter name: slider}`` for the physics parameters.
     refine_button, sample_button, stop_button, save_button, progress, status, readout,
@@ -229,7 +229,7 @@ class PowerPanel(FitPanel):
         return max(candidates, key=lambda c: c.log_post)
 
     def _residual_png(self, theta: np.ndarray, label: str) -> bytes:
-        from ._canvas import figure_png
+        from polkit.widgets._canvas import figure_png
 
         theta = np.atleast_2d(theta)
         pb = self.problem
@@ -297,14 +297,14 @@ def power_panel(
     ----------
     source
         A series table (CSV with bracketed units, netCDF, ``.npz``) or an in-memory series
-        Dataset (spectra cubes: run :func:`polkit.extract.extract_observables` first, or
-        use :func:`~polkit.workflows.power.fit_power`).
+        Dataset (spectra cubes: run :func:`polkit.linefit.lines.extract_observables` first, or
+        use :func:`~polkit.jobs.power.run.fit_power`).
     model
         ``"coherent"`` or ``"reservoir"``.
     calibration, dispersion, priors
-        As in :func:`~polkit.workflows.power.fit_power` (used when the result is built).
+        As in :func:`~polkit.jobs.power.run.fit_power` (used when the result is built).
     n_wells, exciton_binding_meV, bohr_radius_nm, reservoir_lifetime_ps
-        As in :func:`~polkit.workflows.power.fit_power` (used when the result is built).
+        As in :func:`~polkit.jobs.power.run.fit_power` (used when the result is built).
     seed, max_steps, min_steps, n_walkers
         Sampler settings.
     out
@@ -324,7 +324,7 @@ def power_panel(
         n_wells=n_wells, exciton_binding_meV=exciton_binding_meV, bohr_radius_nm=bohr_radius_nm,
         reservoir_lifetime_ps=reservoir_lifetime_ps,
         cube_refusal="the panel takes a table of observables, found a spectra cube; reduce it "
-        "with polkit.extract.extract_observables first")
+        "with polkit.linefit.lines.extract_observables first")
     steps = int(max_steps) if max_steps is not None else pw.DEFAULT_STEPS["max_steps"]
     return PowerPanel(problem, table=setup.table, sha=setup.sha256,
                       source_name=setup.source_name, model=model, cal=setup.calibration,

@@ -7,7 +7,7 @@ which the likelihood is given exactly), each map is fitted twice with polkit's s
 
 * the whole-map path, :meth:`DispersionProblem.log_likelihood` (MAP, then emcee);
 * the peak-table path, :meth:`DispersionProblem.table_log_likelihood` on the per-angle
-  line fits of :func:`polkit.extract.peak_table`.
+  line fits of :func:`polkit.linefit.lines.peak_table`.
 
 The Cramer-Rao bound comes from the Fisher information of the whole-map Gaussian
 likelihood at the truth, ``F = J^T W J``, where ``J`` is the model's Jacobian with respect
@@ -61,7 +61,7 @@ def cramer_rao(problem, theta: np.ndarray, occupations: np.ndarray) -> dict:
     Parameters
     ----------
     problem
-        A :class:`~polkit.workflows.dispersion_model.DispersionProblem` (emission, constant
+        A :class:`~polkit.jobs.dispersion.problem.DispersionProblem` (emission, constant
         background); its inverse variances are the weights.
     theta
         The parameter vector in the order of ``problem.space`` (a ``noise_scale`` entry,
@@ -167,7 +167,7 @@ def run(
         Override the sizes.
     """
     from polkit.errors import DataWarning
-    from polkit.extract import peak_table
+    from polkit.linefit.lines import peak_table
 
     n_angles = n_angles or (40 if quick else 80)
     n_energies = n_energies or (300 if quick else 600)

@@ -3,7 +3,7 @@
     python tests/benchmarks/bench_hot_path.py [--quick]
 
 The hot path of a whole-map dispersion fit is
-:meth:`polkit.workflows.dispersion_model.DispersionProblem.log_likelihood` called on the
+:meth:`polkit.jobs.dispersion.problem.DispersionProblem.log_likelihood` called on the
 whole ensemble at once (``theta`` of shape ``(W, P)``): the branch bases of every walker
 and angle, the weighted Gram blocks, the background eliminated per angle and the
 non-negative amplitudes solved in closed form.  The floor is the time numpy needs for one
@@ -21,7 +21,7 @@ hot path, so the medians flatter the ratio and the minima are the check.
 A cProfile summary shows where the time goes.  The script prints numbers and never
 asserts on them.
 
-The hot path runs polkit's compiled kernels (:mod:`polkit.models._kernels`, numba) when
+The hot path runs polkit's compiled kernels (:mod:`polkit.numerics.kernels`, numba) when
 they are available; the same call on the pure-numpy path is timed beside it (interleaved)
 as context, and the cost of the first compiled call in a fresh state (numba compiling, or
 loading its on-disk cache) is measured in a separate interpreter and reported apart: a
@@ -114,7 +114,7 @@ def simulated_map(
 def problem_for(da: xr.DataArray, inv_var: np.ndarray, *, space=None, table=None,
                 sample_noise: bool = True):
     """The :class:`DispersionProblem` of a simulated map (default priors around the truth)."""
-    from polkit.workflows.dispersion_model import DispersionProblem, default_space
+    from polkit.jobs.dispersion.problem import DispersionProblem, default_space
 
     energy = da["energy"].values.astype(float)
     if space is None:
@@ -275,7 +275,7 @@ def run(
         "preallocated_float32": (floor_in_place, (e32, c32, h32),
                                  np.empty(grid, dtype=np.float32)),
     }
-    from polkit.models import _kernels
+    from polkit.numerics import kernels as _kernels
 
     compiled = _kernels.enabled()
     first = problem.log_likelihood(theta)  # warm-up (and a check that it is finite)

@@ -58,8 +58,8 @@ def bimodal(theta):
 
 
 def _demo_problem():
-    from polkit.workflows.dispersion import prepare_dispersion
-    from polkit.workflows.dispersion_stages import table_mode, whole_map_start
+    from polkit.jobs.dispersion.run import prepare_dispersion
+    from polkit.jobs.dispersion.stages import table_mode, whole_map_start
 
     problem, begin = prepare_dispersion(ROOT / "data_examples" / "ds1_p1_emission.nc",
                                         model="two")

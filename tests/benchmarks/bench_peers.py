@@ -7,7 +7,7 @@ All three answer the same question on the same invented emission map
 parameters of polkit's default whole-map model (exciton and cavity energies, n_eff, Rabi
 splitting, two linewidths, noise scale) with their uncertainties.
 
-* polkit: the stages of :func:`polkit.workflows.dispersion.fit_dispersion` in its order
+* polkit: the stages of :func:`polkit.jobs.dispersion.run.fit_dispersion` in its order
   (load, peak table and automatic guess, peak-table mode, whole-map mode, noise
   calibration, refined mode, pre-burn and emcee to the convergence gate), no files written.
   Its time to answer is the whole of that; its ESS per second counts the sampling alone.
@@ -252,11 +252,11 @@ def emcee_script(model: ScriptModel, names: list[str], start_point: np.ndarray,
 def polkit_default_fit(da, *, seed: int, max_steps: int | None = None):
     """polkit's default whole-map fit, stage by stage as ``fit_dispersion`` runs them."""
     from polkit.errors import ConvergenceWarning
-    from polkit.workflows._steps import posterior_theta, sample_problem, step_limits
-    from polkit.workflows.dispersion import DEFAULT_STEPS, prepare_dispersion
-    from polkit.workflows.dispersion_robust import protected_mode
-    from polkit.workflows.dispersion_search import search_modes
-    from polkit.workflows.dispersion_stages import table_mode, whole_map_start
+    from polkit.jobs.dispersion.robust import protected_mode
+    from polkit.jobs.dispersion.run import DEFAULT_STEPS, prepare_dispersion
+    from polkit.jobs.dispersion.search import search_modes
+    from polkit.jobs.dispersion.stages import table_mode, whole_map_start
+    from polkit.jobs.steps import posterior_theta, sample_problem, step_limits
 
     t0 = time.perf_counter()
     problem, begin = prepare_dispersion(da)

@@ -61,7 +61,7 @@ def write_wafer(folder: Path, n_positions: int) -> Path:
 
 
 def _one(manifest: Path, out: Path, workers: int) -> dict:
-    from polkit.workflows.survey import run_survey
+    from polkit.jobs.survey.run import run_survey
 
     t0 = time.perf_counter()
     result = run_survey(manifest, out=out, workers=workers, seed=SEED, progress=False,

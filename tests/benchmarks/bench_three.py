@@ -29,7 +29,7 @@ SECOND_EXCITON = {"exciton2_energy": 1.556, "rabi_splitting2": 6.0, "exciton2_li
 
 def three_problem(da, inv_var):
     """The three-oscillator :class:`DispersionProblem` of the same map (default priors)."""
-    from polkit.workflows.dispersion_model import DispersionProblem, default_space
+    from polkit.jobs.dispersion.problem import DispersionProblem, default_space
 
     energy = da["energy"].values.astype(float)
     space = default_space(energy, dict(TRUTH, **SECOND_EXCITON), n_excitons=2)
@@ -47,7 +47,7 @@ def _ball(space, n_walkers: int, rng: np.random.Generator) -> np.ndarray:
 def run(quick: bool = False, *, n_angles: int = 80, n_energies: int = 600, n_walkers: int = 32,
         repeats: int | None = None) -> dict:
     """Time one likelihood call with two and with three oscillators; returns the figures."""
-    from polkit.models import _kernels
+    from polkit.numerics import kernels as _kernels
 
     reps = repeats if repeats is not None else (15 if quick else 41)
     rng = np.random.default_rng(SEED)

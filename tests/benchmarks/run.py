@@ -293,7 +293,7 @@ def main(argv: list[str] | None = None) -> int:
     out["total_wall_s"] = round(time.perf_counter() - t_all, 1)
     out["machine"] = info
     if args.details is not None:
-        from polkit.io import write_json
+        from polkit.files import write_json
 
         write_json(args.details, {"figures": out, "results": results})
     print()

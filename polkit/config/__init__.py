@@ -1,0 +1,1 @@
+"""Every settings file polkit reads: quantities, priors, calibration, device, manifest."""

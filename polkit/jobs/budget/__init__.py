@@ -1,0 +1,1 @@
+"""The energy-budget job: what a device built from the sample would cost, per posterior draw."""

@@ -1,0 +1,1 @@
+"""The wafer survey: every measured position of a wafer fitted, then mapped."""

@@ -1,0 +1,1 @@
+"""Numerical engines with no physics of their own: compiled kernels and their numpy twins."""

@@ -1,0 +1,1021 @@
+"""Compiled, fused kernels for the whole-map variable projection (numba), with a numpy fallback.
+
+The hot path of a whole-map fit is :func:`polkit.models.spectral.project_linear` on a
+lazily evaluated :class:`~polkit.models.spectral.MapBasis`: for every walker ``w`` and
+in-plane point ``a`` it needs the weighted Gram blocks::
+
+    G[w, a, k, l] = sum_E s(E)^2 B_k(E) B_l(E)          (basis x basis)
+    H[w, a, k, j] = sum_E s(E) B_k(E) R_j(E)            (basis x [background, data])
+
+with ``s = sqrt(weight)`` and ``R = s * [background columns, y]`` (the prepared map).  The
+kernels evaluate the basis of one ``(w, a)`` row and accumulate the sums in the same pass
+over the energy axis (for two or three branches and a constant background every sum
+stays in a register; otherwise the row's ``K x E`` values go through a buffer of a few
+kB that stays in the level-1 cache): no ``W x A x K x E`` array is ever formed, and the
+data row of an angle is reused by every walker while it is in cache (angles outer,
+walkers inner).
+
+Three basis families are covered, the same formulas as the numpy blocks of
+:mod:`polkit.models.spectral` (pole form, eV throughout):
+
+* ``lorentz``: ``B_k = (ah_k - b_k u) / (u^2 + h2_k)``, ``u = E - x_k`` (branch lines of
+  the Lorentzian model, emission);
+* ``disorder``: those lines rescaled by ``A_C^sigma / sum_k B_k`` with
+  ``A_C^sigma = -Im[1 / (base(E) - E_C)] / pi`` (emission with Gaussian exciton disorder;
+  ``base`` is the walker's self-energy row, computed in numpy with the Faddeeva function);
+* ``reflectance``: ``|1 - i kappa / (base(E) - E_C)|^2`` (one column).
+
+The peak-table likelihood (``DispersionProblem.table_log_likelihood``) has a kernel of
+its own, :func:`table_chi2`: given the branch poles and residue ratios of every walker
+(computed in numpy by :func:`polkit.models.spectral.branch_poles`), it matches the table
+peaks to branches and sums the Gaussian chi-square in one pass, instead of a dozen numpy
+operations on small ``(W, A, P, K)`` arrays whose cost is call overhead, not arithmetic.
+For one exciton (two branches) :func:`two_mode_table_chi2` goes further and starts from
+the sampled parameters: cavity energy, closed-form poles and photon residues per walker and
+angle (the formulas of :func:`polkit.models.dispersion.cavity_energy`,
+:func:`polkit.models.dispersion.two_mode_eigenvalues` and ``spectral._poles_flat``, the
+numpy functions that stay their reference), then the same chi-square, in one compiled call
+without intermediate arrays.
+
+Switch: the compiled path is used when numba imports and the environment variable
+``POLKIT_COMPILED`` is not ``0``; :func:`use_compiled` switches it at run time (tests run
+both paths).  The kernels run on one thread: on a shared two-core machine (load about 3)
+numba's parallel loops (threading layer GNU OpenMP) made the 32 walkers x 80 x 600
+benchmark call about four times slower (8 ms against 2 ms), and a wafer survey already
+runs one fit per core.
+"""
+
+from __future__ import annotations
+
+import cmath
+import logging
+import math
+import os
+
+import numpy as np
+
+__all__ = [
+    "ENV_SWITCH",
+    "available",
+    "enabled",
+    "use_compiled",
+    "gram_lorentz",
+    "gram_disorder",
+    "gram_reflectance",
+    "solve_rows",
+    "MAX_SOLVE_COLUMNS",
+    "table_chi2",
+    "table_chi2_prepared",
+    "TWO_MODE_PARAMETERS",
+    "in_plane_terms",
+    "parameter_map",
+    "table_operands",
+    "two_mode_poles",
+    "two_mode_table_chi2",
+]
+
+logger = logging.getLogger(__name__)
+
+#: environment variable: ``0`` forces the numpy path
+ENV_SWITCH = "POLKIT_COMPILED"
+
+_state: dict = {"forced": None}
+
+
+def available() -> bool:
+    """True if numba imports on this machine (else the reason is logged once at INFO)."""
+    if _numba is None and not _state.get("logged"):
+        _state["logged"] = True
+        logger.info("numba unavailable (%s); the numpy projection path is used", _IMPORT_ERROR)
+    return _numba is not None
+
+
+def enabled() -> bool:
+    """True if the compiled kernels will be used (whole-map projection and peak table).
+
+    Order: :func:`use_compiled` if it was called, else ``POLKIT_COMPILED`` (``0`` means no),
+    and in any case only if numba imports.
+    """
+    forced = _state["forced"]
+    wanted = forced if forced is not None else os.environ.get(ENV_SWITCH, "1").strip() != "0"
+    return bool(wanted) and available()
+
+
+def use_compiled(flag: bool | None) -> bool | None:
+    """Force the compiled path on (``True``) or off (``False``); ``None`` follows the environment.
+
+    Returns the previous setting, so a caller can restore it.
+    """
+    previous = _state["forced"]
+    _state["forced"] = None if flag is None else bool(flag)
+    return previous
+
+
+# --------------------------------------------------------------------------------------
+# kernels (numba compiles them on first use and caches the machine code on disk)
+# --------------------------------------------------------------------------------------
+#: floating-point freedoms given to the compiler: reassociation (vectorised sums) and
+#: fused multiply-add; NaN and infinity semantics are kept (a broken basis must give NaN)
+_FASTMATH = {"reassoc", "contract", "nsz"}
+
+try:
+    import numba as _numba
+except Exception as _exc:  # ImportError, or a broken llvmlite/numpy pairing
+    _numba = None
+    _IMPORT_ERROR = repr(_exc)
+else:
+    _IMPORT_ERROR = ""
+
+
+def _lorentz2(en, xr, h2, ah, b, sw, rhs, g, c):
+    """Two branches and one background column, in one pass.
+
+    The common case (one exciton, constant background) with every sum in a register.
+    """
+    n_w, n_a = xr.shape[0], xr.shape[1]
+    n_e = en.size
+    for row in range(n_w * n_a):
+        a = row // n_w  # angles outer: the data row of an angle stays in cache
+        w = row - a * n_w
+        x0, x1 = xr[w, a, 0], xr[w, a, 1]
+        d0, d1 = h2[w, a, 0], h2[w, a, 1]
+        p0, p1 = ah[w, a, 0], ah[w, a, 1]
+        q0, q1 = b[w, a, 0], b[w, a, 1]
+        s00 = s01 = s11 = 0.0
+        c00 = c01 = c10 = c11 = 0.0
+        for e in range(n_e):
+            u0 = en[e] - x0
+            u1 = en[e] - x1
+            v0 = (p0 - q0 * u0) / (u0 * u0 + d0) * sw[a, e]
+            v1 = (p1 - q1 * u1) / (u1 * u1 + d1) * sw[a, e]
+            r0 = rhs[a, 0, e]
+            r1 = rhs[a, 1, e]
+            s00 += v0 * v0
+            s01 += v0 * v1
+            s11 += v1 * v1
+            c00 += v0 * r0
+            c01 += v0 * r1
+            c10 += v1 * r0
+            c11 += v1 * r1
+        g[w, a, 0, 0] = s00
+        g[w, a, 0, 1] = s01
+        g[w, a, 1, 0] = s01
+        g[w, a, 1, 1] = s11
+        c[w, a, 0, 0] = c00
+        c[w, a, 0, 1] = c01
+        c[w, a, 1, 0] = c10
+        c[w, a, 1, 1] = c11
+
+
+def _lorentz3(en, xr, h2, ah, b, sw, rhs, g, c):
+    """Three branches and one background column, in one pass."""
+    n_w, n_a = xr.shape[0], xr.shape[1]
+    n_e = en.size
+    for row in range(n_w * n_a):
+        a = row // n_w
+        w = row - a * n_w
+        x0, x1, x2 = xr[w, a, 0], xr[w, a, 1], xr[w, a, 2]
+        d0, d1, d2 = h2[w, a, 0], h2[w, a, 1], h2[w, a, 2]
+        p0, p1, p2 = ah[w, a, 0], ah[w, a, 1], ah[w, a, 2]
+        q0, q1, q2 = b[w, a, 0], b[w, a, 1], b[w, a, 2]
+        s00 = s01 = s02 = s11 = s12 = s22 = 0.0
+        c00 = c01 = c10 = c11 = c20 = c21 = 0.0
+        for e in range(n_e):
+            u0 = en[e] - x0
+            u1 = en[e] - x1
+            u2 = en[e] - x2
+            v0 = (p0 - q0 * u0) / (u0 * u0 + d0) * sw[a, e]
+            v1 = (p1 - q1 * u1) / (u1 * u1 + d1) * sw[a, e]
+            v2 = (p2 - q2 * u2) / (u2 * u2 + d2) * sw[a, e]
+            r0 = rhs[a, 0, e]
+            r1 = rhs[a, 1, e]
+            s00 += v0 * v0
+            s01 += v0 * v1
+            s02 += v0 * v2
+            s11 += v1 * v1
+            s12 += v1 * v2
+            s22 += v2 * v2
+            c00 += v0 * r0
+            c01 += v0 * r1
+            c10 += v1 * r0
+            c11 += v1 * r1
+            c20 += v2 * r0
+            c21 += v2 * r1
+        g[w, a, 0, 0] = s00
+        g[w, a, 1, 1] = s11
+        g[w, a, 2, 2] = s22
+        g[w, a, 0, 1] = g[w, a, 1, 0] = s01
+        g[w, a, 0, 2] = g[w, a, 2, 0] = s02
+        g[w, a, 1, 2] = g[w, a, 2, 1] = s12
+        c[w, a, 0, 0] = c00
+        c[w, a, 0, 1] = c01
+        c[w, a, 1, 0] = c10
+        c[w, a, 1, 1] = c11
+        c[w, a, 2, 0] = c20
+        c[w, a, 2, 1] = c21
+
+
+def _lorentz(en, xr, h2, ah, b, sw, rhs, g, c):
+    """Lorentzian branch lines ``(ah - b u) / (u^2 + h2)``, ``u = E - x``, and their sums."""
+    n_w, n_a, n_k = xr.shape
+    n_e = en.size
+    if rhs.shape[1] == 2 and n_k == 2:
+        _lorentz2(en, xr, h2, ah, b, sw, rhs, g, c)
+        return
+    if rhs.shape[1] == 2 and n_k == 3:
+        _lorentz3(en, xr, h2, ah, b, sw, rhs, g, c)
+        return
+    buf = np.empty((n_k, n_e))
+    for row in range(n_w * n_a):
+        a = row // n_w
+        w = row - a * n_w
+        for k in range(n_k):
+            x = xr[w, a, k]
+            hh = h2[w, a, k]
+            p = ah[w, a, k]
+            q = b[w, a, k]
+            for e in range(n_e):
+                u = en[e] - x
+                buf[k, e] = (p - q * u) / (u * u + hh) * sw[a, e]
+        _accumulate(buf, rhs, a, g, c, w)
+
+
+def _disorder(en, xr, h2, ah, b, base_re, base_im, e_c, sw, rhs, g, c):
+    """Emission lines with exciton disorder: Lorentzian lines rescaled to ``A_C^sigma``."""
+    n_w, n_a, n_k = xr.shape
+    n_e = en.size
+    inv_pi = 1.0 / np.pi
+    buf = np.empty((n_k, n_e))
+    share = np.empty(n_e)
+    for row in range(n_w * n_a):
+        a = row // n_w
+        w = row - a * n_w
+        share[:] = 0.0
+        for k in range(n_k):
+            x = xr[w, a, k]
+            hh = h2[w, a, k]
+            p = ah[w, a, k]
+            q = b[w, a, k]
+            for e in range(n_e):
+                u = en[e] - x
+                v = (p - q * u) / (u * u + hh)
+                buf[k, e] = v
+                share[e] += v
+        ec = e_c[w, a]
+        for e in range(n_e):
+            dr = base_re[w, e] - ec
+            di = base_im[w, e]
+            a_sigma = di / (dr * dr + di * di) * inv_pi  # -Im[1 / (dr + i di)] / pi
+            s = share[e]
+            share[e] = (a_sigma / s if s != 0.0 else 0.0) * sw[a, e]
+        for k in range(n_k):
+            for e in range(n_e):
+                buf[k, e] *= share[e]
+        _accumulate(buf, rhs, a, g, c, w)
+
+
+def _reflectance(base_re, base_im, e_c, kap, sw, rhs, g, c):
+    """Reflectance column ``|1 - i kappa / (base - E_C)|^2`` and its sums."""
+    n_w, n_a = e_c.shape
+    n_e = base_re.shape[1]
+    buf = np.empty((1, n_e))
+    for row in range(n_w * n_a):
+        a = row // n_w
+        w = row - a * n_w
+        ec = e_c[w, a]
+        kw = kap[w]
+        for e in range(n_e):
+            dr = base_re[w, e] - ec
+            di = base_im[w, e]
+            f = kw / (dr * dr + di * di)
+            re = 1.0 - f * di  # 1 - i kappa (dr - i di) / |d|^2
+            im = f * dr
+            buf[0, e] = (re * re + im * im) * sw[a, e]
+        _accumulate(buf, rhs, a, g, c, w)
+
+
+def _accumulate(buf, rhs, a, g, c, w):
+    """Gram sums of one row: ``buf`` holds ``s B_k`` (K, E); ``rhs[a]`` holds ``s R_j``."""
+    n_k, n_e = buf.shape
+    n_j = rhs.shape[1]
+    for k in range(n_k):
+        for j in range(n_j):
+            acc = 0.0
+            for e in range(n_e):
+                acc += buf[k, e] * rhs[a, j, e]
+            c[w, a, k, j] = acc
+        for q in range(k + 1):
+            acc = 0.0
+            for e in range(n_e):
+                acc += buf[k, e] * buf[q, e]
+            g[w, a, k, q] = acc
+            g[w, a, q, k] = acc
+
+
+def _solve_rows(g, cross, pinv, hb, c0, subsets, sizes, nonneg, rtol, chi2_out, amps_out):
+    """Background elimination and the exact small non-negative solves, row by row.
+
+    The same arithmetic as ``spectral.project_linear``'s numpy path: the background
+    columns are eliminated by their Schur complement, then every active set (in the
+    order of ``subsets``, sizes 1 to K <= 3) is solved in closed form with the same
+    singularity test, and the admissible solution with the smallest ``chi^2`` is kept.
+    """
+    n_w, n_a, n_k = g.shape[0], g.shape[1], g.shape[2]
+    n_j = cross.shape[3]
+    m = n_j - 1
+    t = np.empty((n_k, max(m, 1)))
+    gr = np.empty((n_k, n_k))
+    hr = np.empty(n_k)
+    x = np.empty(3)
+    for w in range(n_w):
+        for a in range(n_a):
+            finite = True
+            for k in range(n_k):
+                for q in range(n_k):
+                    if not np.isfinite(g[w, a, k, q]):
+                        finite = False
+                for j in range(n_j):
+                    if not np.isfinite(cross[w, a, k, j]):
+                        finite = False
+            for k in range(n_k):
+                for i in range(m):
+                    acc = 0.0
+                    for j in range(m):
+                        acc += cross[w, a, k, j] * pinv[a, j, i]
+                    t[k, i] = acc
+            for k in range(n_k):
+                for q in range(n_k):
+                    acc = 0.0
+                    for i in range(m):
+                        acc += t[k, i] * cross[w, a, q, i]
+                    gr[k, q] = g[w, a, k, q] - acc
+                acc = 0.0
+                for i in range(m):
+                    acc += t[k, i] * hb[a, i]
+                hr[k] = cross[w, a, k, m] - acc
+            base = c0[a]
+            best = base
+            for k in range(n_k):
+                amps_out[w, a, k] = 0.0
+            for s in range(sizes.size):
+                p = sizes[s]
+                i0 = subsets[s, 0]
+                if p == 1:
+                    d = gr[i0, i0]
+                    ok = d > rtol * g[w, a, i0, i0]
+                    x[0] = hr[i0] / (d if ok else 1.0)
+                elif p == 2:
+                    i1 = subsets[s, 1]
+                    ga, gb, gc = gr[i0, i0], gr[i0, i1], gr[i1, i1]
+                    det = ga * gc - gb * gb
+                    ok = det > rtol * g[w, a, i0, i0] * g[w, a, i1, i1]
+                    inv = 1.0 / (det if ok else 1.0)
+                    x[0] = (gc * hr[i0] - gb * hr[i1]) * inv
+                    x[1] = (ga * hr[i1] - gb * hr[i0]) * inv
+                else:
+                    i1 = subsets[s, 1]
+                    i2 = subsets[s, 2]
+                    g00, g01, g02 = gr[i0, i0], gr[i0, i1], gr[i0, i2]
+                    g10, g11, g12 = gr[i1, i0], gr[i1, i1], gr[i1, i2]
+                    g20, g21, g22 = gr[i2, i0], gr[i2, i1], gr[i2, i2]
+                    c00 = g11 * g22 - g12 * g21
+                    c01 = g12 * g20 - g10 * g22
+                    c02 = g10 * g21 - g11 * g20
+                    c11 = g00 * g22 - g02 * g20
+                    c12 = g01 * g20 - g00 * g21
+                    c22 = g00 * g11 - g01 * g10
+                    det = g00 * c00 + g01 * c01 + g02 * c02
+                    scale = g[w, a, i0, i0] * g[w, a, i1, i1] * g[w, a, i2, i2]
+                    ok = det > rtol * scale
+                    inv = 1.0 / (det if ok else 1.0)
+                    r0, r1, r2 = hr[i0], hr[i1], hr[i2]
+                    x[0] = (c00 * r0 + c01 * r1 + c02 * r2) * inv
+                    x[1] = (c01 * r0 + c11 * r1 + c12 * r2) * inv
+                    x[2] = (c02 * r0 + c12 * r1 + c22 * r2) * inv
+                if ok and nonneg:
+                    for i in range(p):
+                        if not x[i] >= 0.0:
+                            ok = False
+                if not ok:
+                    continue
+                dot = 0.0
+                for i in range(p):
+                    dot += x[i] * hr[subsets[s, i]]
+                chi = base - dot
+                if chi < best:
+                    best = chi
+                    for k in range(n_k):
+                        amps_out[w, a, k] = 0.0
+                    for i in range(p):
+                        amps_out[w, a, subsets[s, i]] = x[i]
+            if not finite:
+                best = np.nan
+            chi2_out[w, a] = 0.0 if best < 0.0 else best
+
+
+def _table_walker_chi2(pr, h, ratio, t_e, t_de, t_wr, t_wd, t_w_ok, t_own, t_resp, t_all,
+                       t_found, has_resp):
+    """Peak-table chi-square of one walker: peaks matched to branches, Gaussian terms summed.
+
+    ``pr``, ``h`` and ``ratio`` are the walker's ``(A, K)`` rows.  The same arithmetic as the
+    numpy path of ``DispersionProblem.table_log_likelihood``.  Peak ``p`` at angle ``a``
+    compared with branch ``k`` contributes::
+
+        ((e - pos) / de)^2 + [w_ok] ((wr - 2 h) / wd)^2
+
+    with ``pos = Re eps - h beta`` (no response table) or ``Re eps + R[a, p, p] beta``
+    (``beta`` the residue ratio of branch ``k``).  Where every branch is found at an angle
+    and the table has one column per branch, peak ``p`` is branch ``p``, and with a
+    response table its centre carries the joint response ``sum_k R[a, p, k] beta_k``;
+    elsewhere each found peak takes the branch with the smallest term (NaN if any term is
+    NaN, as ``numpy.min``).  Peaks not found contribute nothing.
+    """
+    n_a, n_k = pr.shape
+    n_p = t_e.shape[1]
+    ordered_ok = n_p == n_k
+    acc = 0.0
+    for a in range(n_a):
+        ordered = ordered_ok and t_all[a]
+        for p in range(n_p):
+            if not t_found[a, p]:
+                continue
+            e = t_e[a, p]
+            de = t_de[a, p]
+            if ordered:
+                if has_resp:
+                    shift = 0.0
+                    for k in range(n_k):
+                        shift += t_resp[a, p, k] * ratio[a, k]
+                    pos = pr[a, p] + shift
+                else:
+                    pos = pr[a, p] - h[a, p] * ratio[a, p]
+                r = (e - pos) / de
+                term = r * r
+                if t_w_ok[a, p]:
+                    q = (t_wr[a, p] - 2.0 * h[a, p]) / t_wd[a, p]
+                    term += q * q
+            else:
+                term = np.inf
+                for k in range(n_k):
+                    if has_resp:
+                        pos = pr[a, k] + t_own[a, p] * ratio[a, k]
+                    else:
+                        pos = pr[a, k] - h[a, k] * ratio[a, k]
+                    r = (e - pos) / de
+                    v = r * r
+                    if t_w_ok[a, p]:
+                        q = (t_wr[a, p] - 2.0 * h[a, k]) / t_wd[a, p]
+                        v += q * q
+                    if v != v:  # NaN wins, as in numpy.min
+                        term = v
+                        break
+                    if v < term:
+                        term = v
+            acc += term
+    return acc
+
+
+def _table_chi2(pr, h, ratio, t_e, t_de, t_wr, t_wd, t_w_ok, t_own, t_resp, t_all, t_found,
+                has_resp, chi2_out):
+    """Peak-table chi-square per walker from branch poles given as ``(W, A, K)`` arrays."""
+    for w in range(pr.shape[0]):
+        chi2_out[w] = _table_walker_chi2(pr[w], h[w], ratio[w], t_e, t_de, t_wr, t_wd, t_w_ok,
+                                         t_own, t_resp, t_all, t_found, has_resp)
+
+
+def _two_mode_rows(ec0, n_eff, e_x, g, gamma_c, gamma_x, grid, k_axis, pr, h, rr, ri):
+    """Branch poles and photon residues of one walker, one exciton, along the in-plane axis.
+
+    Fills the ``(A, 2)`` rows ``pr = Re eps``, ``h = -Im eps`` and ``rr + i ri = r`` (lower,
+    upper branch).  The numpy functions it mirrors stay the reference (the tests hold the
+    two together):
+
+    * :func:`polkit.models.dispersion.cavity_energy`, operation for operation:
+      ``E_C = E_C0 / sqrt(1 - s2 / n^2)`` with ``grid = s2 = sin^2(angle)`` (angle axis), or
+      ``E_C = sqrt(E_C0^2 + (q / n)^2)`` with ``grid = q = hbar c k`` in eV (k axis);
+    * :func:`polkit.models.dispersion.two_mode_eigenvalues`, operation for operation:
+      ``eps = mean -/+ root``, ``mean = (E_C + E_X)/2 - i (gamma_C + gamma_X)/4``, ``root``
+      the principal square root (``cmath.sqrt``, real part >= 0) of ``g^2 + half^2``,
+      ``half = (E_C - E_X)/2 - i (gamma_C - gamma_X)/4``.  A zero imaginary part of the
+      radicand is +0, as numpy's complex addition of ``g^2 + 0j`` leaves it, so below the
+      exceptional point at zero detuning the lower label goes to the broader pole there too;
+    * the photon residues of :func:`polkit.models.spectral.branch_poles`,
+      ``r_lo = (eps_lo - E_X + i gamma_X/2) / (eps_lo - eps_up)`` and ``r_up = 1 - r_lo``,
+      in the equal form ``r_lo = (root - half) / (2 root)``, ``r_up = (root + half) /
+      (2 root)``, where whichever of ``root -/+ half`` is the smaller comes from
+      ``(root - half)(root + half) = g^2``.  The numpy form subtracts energies of order
+      1 eV to get the residue of an exciton-like branch, which loses about
+      ``u |eps| / |eps_up - eps_lo|`` (u = 2^-53); at ``g = 0`` it is all rounding and
+      ``Im r / Re r`` becomes noise, while here the residues of uncoupled modes are
+      exactly 0 and 1.
+    """
+    mean_i = 0.0 - 0.25 * (gamma_c + gamma_x)
+    half_i = 0.5 * (0.0 - 0.5 * (gamma_c - gamma_x))
+    half_i2 = half_i * half_i
+    gg = g * g
+    nn = n_eff * n_eff
+    for a in range(grid.size):
+        if k_axis:
+            q = grid[a] / n_eff
+            ec = math.sqrt(ec0 * ec0 + q * q)
+        else:
+            ec = ec0 / math.sqrt(1.0 - grid[a] / nn)
+        mean_r = 0.5 * (ec + e_x)
+        half_r = 0.5 * (ec - e_x)
+        z_r = gg + (half_r * half_r - half_i2)
+        z_i = 0.0 + (half_r * half_i + half_i * half_r)  # -0 becomes +0, as in numpy
+        root = cmath.sqrt(complex(z_r, z_i))
+        lo_r = mean_r - root.real
+        lo_i = mean_i - root.imag
+        up_r = mean_r + root.real
+        up_i = mean_i + root.imag
+        pr[a, 0] = lo_r
+        pr[a, 1] = up_r
+        h[a, 0] = -lo_i
+        h[a, 1] = -up_i
+        # photon residues r_lo = (root - half) / (2 root), r_up = (root + half) / (2 root)
+        # (= (lo - x) / (lo - up) and 1 - r_lo); the factor of the two that cancels is
+        # taken from (root - half)(root + half) = g^2 instead
+        m_r = root.real - half_r
+        m_i = root.imag - half_i
+        p_r = root.real + half_r
+        p_i = root.imag + half_i
+        p2 = p_r * p_r + p_i * p_i
+        m2 = m_r * m_r + m_i * m_i
+        if p2 >= m2:  # m = g^2 / p = g^2 conj(p) / |p|^2
+            f = gg / p2
+            m_r = f * p_r
+            m_i = -f * p_i
+        else:
+            f = gg / m2
+            p_r = f * m_r
+            p_i = -f * m_i
+        # 1 / (2 root) = conj(root) / (2 |root|^2); inf or nan at root = 0, as numpy's
+        f = 0.5 / (root.real * root.real + root.imag * root.imag)
+        inv_r = f * root.real
+        inv_i = -f * root.imag
+        rr[a, 0] = m_r * inv_r - m_i * inv_i
+        ri[a, 0] = m_r * inv_i + m_i * inv_r
+        rr[a, 1] = p_r * inv_r - p_i * inv_i
+        ri[a, 1] = p_r * inv_i + p_i * inv_r
+
+
+def _walker_physics(theta, w, columns, scales, phys):
+    """Physics parameters of walker ``w``: ``theta[w, columns[j]] * scales[j]`` (0 if -1)."""
+    for j in range(columns.size):
+        c = columns[j]
+        phys[j] = theta[w, c] * scales[j] if c >= 0 else 0.0
+
+
+def _in_domain(phys, n_eff_limit):
+    """The checks of ``spectral._check_physics``: g >= 0, levels and widths > 0, n_eff > limit.
+
+    ``phys`` is ``(e_c0, n_eff, e_x, g, gamma_c, gamma_x)``; NaN fails every test.
+    """
+    return (phys[3] >= 0.0 and phys[0] > 0.0 and phys[2] > 0.0 and phys[4] > 0.0
+            and phys[5] > 0.0 and phys[1] > n_eff_limit)
+
+
+def _two_mode_poles(theta, columns, scales, grid, k_axis, pr, h, rr, ri):
+    """Poles and residues of every walker, ``(W, A, 2)`` arrays (for the tests)."""
+    phys = np.empty(6)
+    for w in range(theta.shape[0]):
+        _walker_physics(theta, w, columns, scales, phys)
+        _two_mode_rows(phys[0], phys[1], phys[2], phys[3], phys[4], phys[5], grid, k_axis,
+                       pr[w], h[w], rr[w], ri[w])
+
+
+def _two_mode_table(theta, columns, scales, grid, k_axis, n_eff_limit, t_e, t_de, t_wr, t_wd,
+                    t_w_ok, t_own, t_resp, t_all, t_found, has_resp, chi2_out):
+    """Peak-table chi-square per walker for one exciton, from the sampled parameters.
+
+    Per walker: the physics columns, the domain test (a walker outside it gets NaN and is
+    counted; the caller then takes the numpy path, which raises), the branch rows of
+    :func:`_two_mode_rows` and the chi-square of :func:`_table_walker_chi2`.  Returns the
+    number of walkers outside the domain.
+    """
+    n_a = grid.size
+    pr = np.empty((n_a, 2))
+    h = np.empty((n_a, 2))
+    rr = np.empty((n_a, 2))
+    ri = np.empty((n_a, 2))
+    ratio = np.empty((n_a, 2))
+    phys = np.empty(6)
+    outside = 0
+    for w in range(theta.shape[0]):
+        _walker_physics(theta, w, columns, scales, phys)
+        if not _in_domain(phys, n_eff_limit):
+            outside += 1
+            chi2_out[w] = np.nan
+            continue
+        _two_mode_rows(phys[0], phys[1], phys[2], phys[3], phys[4], phys[5], grid, k_axis,
+                       pr, h, rr, ri)
+        for a in range(n_a):
+            for k in range(2):
+                # Im r / Re r where Re r > 0, else 0 (numpy.divide with where=)
+                ratio[a, k] = ri[a, k] / rr[a, k] if rr[a, k] > 0.0 else 0.0
+        chi2_out[w] = _table_walker_chi2(pr, h, ratio, t_e, t_de, t_wr, t_wd, t_w_ok, t_own,
+                                         t_resp, t_all, t_found, has_resp)
+    return outside
+
+
+if _numba is not None:
+    _inner = _numba.njit(cache=True, fastmath=_FASTMATH, error_model="numpy")
+    _accumulate = _inner(_accumulate)
+    _lorentz2 = _inner(_lorentz2)
+    _lorentz3 = _inner(_lorentz3)
+    _outer = _numba.njit(cache=True, fastmath=_FASTMATH, error_model="numpy")
+    # the peak-table helpers keep strict IEEE arithmetic (no fastmath)
+    _strict = _numba.njit(cache=True, error_model="numpy")
+    _table_walker_chi2 = _strict(_table_walker_chi2)
+    _two_mode_rows = _strict(_two_mode_rows)
+    _walker_physics = _strict(_walker_physics)
+    _in_domain = _strict(_in_domain)
+    _KERNELS = {
+        "lorentz": _outer(_lorentz),
+        "disorder": _outer(_disorder),
+        "reflectance": _outer(_reflectance),
+        # the solve keeps strict IEEE arithmetic: it mirrors the numpy closed forms
+        "solve": _numba.njit(cache=True, error_model="numpy")(_solve_rows),
+        # strict IEEE arithmetic too: the same numbers as the numpy peak-table path
+        "table": _strict(_table_chi2),
+        "two_mode_poles": _strict(_two_mode_poles),
+        "two_mode_table": _strict(_two_mode_table),
+    }
+else:  # pragma: no cover - only where numba does not import
+    _KERNELS = {}
+
+
+def _f64(a) -> np.ndarray:
+    """``a`` as a C-contiguous, writeable float64 array (one numba signature whatever came in)."""
+    if (type(a) is np.ndarray and a.dtype == np.float64 and a.flags.c_contiguous
+            and a.flags.writeable):
+        return a
+    return np.array(a, dtype=np.float64, order="C")
+
+
+def _outputs(n_w: int, n_a: int, n_k: int, n_j: int) -> tuple[np.ndarray, np.ndarray]:
+    return np.empty((n_w, n_a, n_k, n_k)), np.empty((n_w, n_a, n_k, n_j))
+
+
+def gram_lorentz(energy, xr, h2, ah, b, sqrt_weight, weighted_rhs):
+    """Gram blocks of the Lorentzian branch basis ``B_k = (ah - b u) / (u^2 + h2)``.
+
+    Parameters
+    ----------
+    energy
+        Energy axis ``(E,)``, eV.
+    xr, h2, ah, b
+        Per-row line coefficients, shape ``(W, A, K)`` (pole position eV, squared half
+        width eV^2, residue terms; see ``spectral._lorentz_coefficients``).
+    sqrt_weight, weighted_rhs
+        ``(A, E)`` and ``(A, J, E)`` from :func:`polkit.models.spectral.prepare_map`.
+
+    Returns
+    -------
+    gram, cross : ndarray
+        ``(W, A, K, K)`` and ``(W, A, K, J)``.
+    """
+    xr = _f64(xr)
+    g, c = _outputs(*xr.shape, weighted_rhs.shape[1])
+    _KERNELS["lorentz"](_f64(energy), xr, _f64(h2), _f64(ah), _f64(b), _f64(sqrt_weight),
+                        _f64(weighted_rhs), g, c)
+    return g, c
+
+
+def gram_disorder(energy, xr, h2, ah, b, base, e_c, sqrt_weight, weighted_rhs):
+    """Gram blocks of the emission basis with exciton disorder.
+
+    The Lorentzian lines of :func:`gram_lorentz` are rescaled per pixel to
+    ``A_C^sigma / sum_k B_k`` with ``A_C^sigma = -Im[1 / (base - E_C)] / pi``.
+
+    Parameters
+    ----------
+    base
+        Complex ``(W, E)``: ``E + i gamma_C / 2 - Sigma(E)`` (self-energy with disorder), eV.
+    e_c
+        Cavity energy ``(W, A)``, eV.
+    energy, xr, h2, ah, b, sqrt_weight, weighted_rhs
+        As in :func:`gram_lorentz`.
+
+    Returns
+    -------
+    gram, cross : ndarray
+        ``(W, A, K, K)`` and ``(W, A, K, J)``.
+    """
+    xr = _f64(xr)
+    base = np.asarray(base)
+    g, c = _outputs(*xr.shape, weighted_rhs.shape[1])
+    _KERNELS["disorder"](_f64(energy), xr, _f64(h2), _f64(ah), _f64(b), _f64(base.real),
+                         _f64(base.imag), _f64(e_c), _f64(sqrt_weight), _f64(weighted_rhs),
+                         g, c)
+    return g, c
+
+
+def gram_reflectance(base, e_c, kappa, sqrt_weight, weighted_rhs):
+    """Gram blocks of the reflectance basis ``|1 - i kappa / (base - E_C)|^2`` (one column).
+
+    Parameters
+    ----------
+    base
+        Complex ``(W, E)``: ``E + i gamma_C / 2 - Sigma(E)``, eV.
+    e_c
+        Cavity energy ``(W, A)``, eV.
+    kappa
+        Top-mirror coupling ``(W,)``, eV.
+    sqrt_weight, weighted_rhs
+        As in :func:`gram_lorentz`.
+
+    Returns
+    -------
+    gram, cross : ndarray
+        ``(W, A, 1, 1)`` and ``(W, A, 1, J)``.
+    """
+    base = np.asarray(base)
+    e_c = _f64(e_c)
+    g, c = _outputs(e_c.shape[0], e_c.shape[1], 1, weighted_rhs.shape[1])
+    _KERNELS["reflectance"](_f64(base.real), _f64(base.imag), e_c, _f64(kappa),
+                            _f64(sqrt_weight), _f64(weighted_rhs), g, c)
+    return g, c
+
+
+#: largest number of basis columns the compiled solve handles (closed forms up to 3 x 3)
+MAX_SOLVE_COLUMNS = 3
+_SUBSETS: dict = {}
+
+
+def _subset_table(n_k: int) -> tuple[np.ndarray, np.ndarray]:
+    """Active sets in the order of ``itertools.combinations`` by size (padded with -1)."""
+    table = _SUBSETS.get(n_k)
+    if table is None:
+        from itertools import combinations
+
+        sets = [c for size in range(1, n_k + 1) for c in combinations(range(n_k), size)]
+        idx = np.full((len(sets), max(n_k, 1)), -1, dtype=np.int64)
+        for i, c in enumerate(sets):
+            idx[i, : len(c)] = c
+        table = _SUBSETS[n_k] = (idx, np.array([len(c) for c in sets], dtype=np.int64))
+    return table
+
+
+def solve_rows(gram, cross, background_pinv, h_background, chi2_background, *, nonneg: bool,
+               rtol: float) -> tuple[np.ndarray, np.ndarray]:
+    """Per-row background elimination and exact small (non-negative) least squares.
+
+    Parameters
+    ----------
+    gram, cross
+        ``(W, A, K, K)`` and ``(W, A, K, m + 1)`` from one of the ``gram_*`` kernels
+        (``K <= 3``).
+    background_pinv, h_background, chi2_background
+        ``(A, m, m)``, ``(A, m)`` and ``(A,)`` from the prepared map.
+    nonneg
+        Constrain the basis amplitudes to be >= 0.
+    rtol
+        Relative pivot below which a sub-problem counts as singular.
+
+    Returns
+    -------
+    chi2_per_row, amplitudes : ndarray
+        ``(W, A)`` (NaN where the basis was not finite) and ``(W, A, K)``.
+    """
+    n_w, n_a, n_k = gram.shape[:3]
+    if n_k > MAX_SOLVE_COLUMNS:
+        raise ValueError(f"the compiled solve handles at most {MAX_SOLVE_COLUMNS} columns, "
+                         f"found {n_k}")
+    subsets, sizes = _subset_table(n_k)
+    chi2 = np.empty((n_w, n_a))
+    amps = np.empty((n_w, n_a, n_k))
+    m = background_pinv.shape[1]
+    pinv = _f64(background_pinv) if m else np.zeros((n_a, 1, 1))
+    hb = _f64(h_background) if m else np.zeros((n_a, 1))
+    _KERNELS["solve"](_f64(gram), _f64(cross), pinv, hb, _f64(chi2_background),
+                               subsets, sizes, bool(nonneg), float(rtol), chi2, amps)
+    return chi2, amps
+
+
+def _flag(a) -> np.ndarray:
+    """``a`` as a C-contiguous boolean array."""
+    if type(a) is np.ndarray and a.dtype == np.bool_ and a.flags.c_contiguous:
+        return a
+    return np.array(a, dtype=np.bool_, order="C")
+
+
+def table_chi2(pole_energy, half_width, residue_ratio, table_energy, table_energy_error,
+               table_width, table_width_error, width_ok, own_response, response, all_found,
+               found) -> np.ndarray:
+    """Chi-square of a peak table against the branches of every walker, shape ``(W,)``.
+
+    Each found peak is compared with a branch through its centre and width::
+
+        chi2 = sum_(a, p found) ((e - pos) / de)^2 + [width_ok] ((wr - 2 h) / wd)^2
+
+    ``pos = Re eps - h beta`` without a response table, ``Re eps + R[a, p, p] beta`` with
+    one, ``beta = Im r / Re r`` the branch's residue ratio.  Where every branch is found at
+    an angle (``all_found``) and the table has one column per branch, peak ``p`` is matched
+    to branch ``p`` (with the joint centre ``Re eps_p + sum_k R[a, p, k] beta_k`` when
+    ``response`` is given); elsewhere each peak takes the branch that gives the smallest
+    term.
+
+    Parameters
+    ----------
+    pole_energy, half_width, residue_ratio
+        ``Re eps`` (eV), ``h = -Im eps`` (eV) and ``Im r / Re r`` (0 where ``Re r <= 0``)
+        of the branches, shape ``(W, A, K)``, branches in energy order.
+    table_energy, table_energy_error
+        Peak centres and their standard errors (eV), shape ``(A, P)``; only the entries
+        where ``found`` is true are read.
+    table_width, table_width_error, width_ok
+        Peak FWHM and its standard error (eV), and where the width is usable, ``(A, P)``.
+    own_response, response
+        ``R[a, p, p]`` as ``(A, P)`` and ``R`` as ``(A, P, P)`` (eV per unit ``beta``; see
+        ``dispersion_model.table_centre_response``), or both None for the first-order
+        centre of a uniform-weight fit.
+    all_found, found
+        ``(A,)``: every branch found at that angle; ``(A, P)``: the peak was found.
+
+    Returns
+    -------
+    ndarray
+        Chi-square per walker (NaN where a compared branch was NaN).
+    """
+    operands = table_operands(table_energy, table_energy_error, table_width,
+                              table_width_error, width_ok, own_response, response, all_found,
+                              found)
+    return table_chi2_prepared(pole_energy, half_width, residue_ratio, operands)
+
+
+def table_chi2_prepared(pole_energy, half_width, residue_ratio, operands) -> np.ndarray:
+    """:func:`table_chi2` with the table side already converted by :func:`table_operands`.
+
+    For a likelihood called thousands of times per fit: the table is converted once.
+    """
+    pole_energy = _f64(pole_energy)
+    chi2 = np.empty(pole_energy.shape[0])
+    _KERNELS["table"](pole_energy, _f64(half_width), _f64(residue_ratio), *operands, chi2)
+    return chi2
+
+
+# --------------------------------------------------------------------------------------
+# peak table, one exciton: from the sampled parameters to the chi-square in one call
+# --------------------------------------------------------------------------------------
+#: order of the physics parameters the one-exciton kernels read from ``theta``
+TWO_MODE_PARAMETERS = ("e_c0", "n_eff", "e_x", "g", "gamma_c", "gamma_x")
+
+
+def in_plane_terms(in_plane, axis: str) -> tuple[np.ndarray, bool, float]:
+    """What the one-exciton kernels need of the in-plane axis, computed once per fit.
+
+    Parameters
+    ----------
+    in_plane
+        1-D angle (degree) or k (1/um) axis.
+    axis
+        ``"angle"`` or ``"k"``.
+
+    Returns
+    -------
+    grid : ndarray
+        ``sin^2(angle)`` per angle (angle axis), or ``hbar c k`` in eV (k axis), computed as
+        :func:`polkit.models.dispersion.cavity_energy` computes them.
+    k_axis : bool
+        True for the k axis.
+    n_eff_limit : float
+        ``max |sin(angle)|`` (0 on the k axis or an empty axis): ``n_eff`` must exceed it,
+        the test of ``spectral._check_physics``.
+    """
+    from polkit.constants import HBARC_EV_UM
+
+    x = np.asarray(in_plane, dtype=float)
+    if axis == "angle":
+        s = np.sin(np.deg2rad(x))
+        limit = float(np.abs(s).max()) if x.size else 0.0
+        return np.ascontiguousarray(s * s), False, limit
+    if axis == "k":
+        return np.ascontiguousarray(HBARC_EV_UM * x), True, 0.0
+    raise ValueError(f"expected axis 'angle' or 'k', found {axis!r}")
+
+
+def table_operands(table_energy, table_energy_error, table_width, table_width_error,
+                   width_ok, own_response, response, all_found, found) -> tuple:
+    """The table side of the peak-table kernels, converted once per fit.
+
+    Arguments as in :func:`table_chi2`; the result is passed whole to
+    :func:`two_mode_table_chi2` (an absent response table becomes zeros and a flag).
+    """
+    table_energy = _f64(table_energy)
+    n_a, n_p = table_energy.shape
+    has_resp = response is not None
+    if has_resp:
+        own = _f64(own_response)
+        resp = _f64(response)
+    else:
+        own = np.zeros((n_a, n_p))
+        resp = np.zeros((n_a, n_p, n_p))
+    return (table_energy, _f64(table_energy_error), _f64(table_width),
+            _f64(table_width_error), _flag(width_ok), own, resp, _flag(all_found),
+            _flag(found), has_resp)
+
+
+def parameter_map(columns, scales, n_parameters: int) -> tuple[np.ndarray, np.ndarray, int]:
+    """How the one-exciton kernels read the physics from ``theta``, checked once per fit.
+
+    Parameters
+    ----------
+    columns
+        For each of :data:`TWO_MODE_PARAMETERS` (``e_c0``, ``n_eff``, ``e_x``, ``g``,
+        ``gamma_c``, ``gamma_x``) its column of ``theta``, or -1 for the value 0 (``g`` of
+        the uncoupled-modes model).
+    scales
+        The factor that turns each column into eV (1 for ``n_eff``; ``0.5e-3`` turns a
+        Rabi splitting in meV into ``g`` in eV).
+    n_parameters
+        Number of columns of ``theta``.
+
+    Returns
+    -------
+    tuple
+        ``(columns int64 (6,), scales float64 (6,), n_parameters)`` for
+        :func:`two_mode_poles` and :func:`two_mode_table_chi2`.
+    """
+    columns = np.array(columns, dtype=np.int64)
+    scales = np.array(scales, dtype=np.float64)
+    n = len(TWO_MODE_PARAMETERS)
+    if (columns.shape != (n,) or scales.shape != (n,) or columns.min() < -1
+            or columns.max() >= n_parameters):
+        raise ValueError(f"expected {n} column indices in [-1, {n_parameters}) and {n} scales, "
+                         f"in the order {TWO_MODE_PARAMETERS}; found {columns!r}, {scales!r}")
+    return columns, scales, int(n_parameters)
+
+
+def _theta(theta, n_parameters: int) -> np.ndarray:
+    theta = _f64(theta)
+    if theta.ndim != 2 or theta.shape[1] != n_parameters:
+        raise ValueError(f"expected theta of shape (W, {n_parameters}), found {theta.shape}")
+    return theta
+
+
+def two_mode_poles(theta, parameters, axis_terms) -> tuple[np.ndarray, np.ndarray]:
+    """Branch poles and photon residues of one exciton from the sampled parameters, compiled.
+
+    The compiled counterpart of :func:`polkit.models.spectral.branch_poles` for one
+    exciton (cavity energy of :func:`polkit.models.dispersion.cavity_energy`, closed-form
+    poles of :func:`polkit.models.dispersion.two_mode_eigenvalues`, residues
+    ``r_lo = (eps_lo - E_X + i gamma_X/2) / (eps_lo - eps_up)``, ``r_up = 1 - r_lo``), the
+    kernel that :func:`two_mode_table_chi2` runs (residues in a form without cancellation,
+    see ``_two_mode_rows``); no domain check.
+
+    Parameters
+    ----------
+    theta
+        Sampled parameters ``(W, P)``.
+    parameters
+        ``(columns, scales, P)`` from :func:`parameter_map`: physics value ``j`` (order
+        :data:`TWO_MODE_PARAMETERS`) is ``theta[:, columns[j]] * scales[j]``.
+    axis_terms
+        ``(grid, k_axis, n_eff_limit)`` from :func:`in_plane_terms`.
+
+    Returns
+    -------
+    poles, residues : ndarray of complex, shape ``(W, A, 2)``
+        Lower and upper branch (``Re`` eV, ``-2 Im`` the FWHM in eV).
+    """
+    columns, scales, n_parameters = parameters
+    theta = _theta(theta, n_parameters)
+    grid, k_axis, _ = axis_terms
+    shape = (theta.shape[0], grid.size, 2)
+    pr, h, rr, ri = (np.empty(shape) for _ in range(4))
+    _KERNELS["two_mode_poles"](theta, columns, scales, _f64(grid), bool(k_axis), pr, h, rr, ri)
+    return pr - 1j * h, rr + 1j * ri
+
+
+def two_mode_table_chi2(theta, parameters, axis_terms, operands) -> tuple[np.ndarray, int]:
+    """Peak-table chi-square per walker for one exciton, from ``theta`` in one compiled call.
+
+    Per walker and in-plane point: the cavity energy, the two complex poles and the photon
+    residues (as :func:`two_mode_poles`), then the matching and the chi-square of
+    :func:`table_chi2`.  A walker outside the model's domain (``g < 0``, a level or width
+    ``<= 0``, ``n_eff <= max |sin(angle)|``, or NaN) gets NaN and is counted, so the caller
+    can rerun the numpy path, which names the offending parameter.
+
+    Parameters
+    ----------
+    theta, parameters, axis_terms
+        As in :func:`two_mode_poles`.
+    operands
+        The table side, from :func:`table_operands`.
+
+    Returns
+    -------
+    chi2 : ndarray
+        ``(W,)`` chi-square (NaN for the walkers outside the domain).
+    outside : int
+        Number of walkers outside the domain.
+    """
+    columns, scales, n_parameters = parameters
+    theta = _theta(theta, n_parameters)
+    chi2 = np.empty(theta.shape[0])
+    grid, k_axis, limit = axis_terms
+    outside = _KERNELS["two_mode_table"](theta, columns, scales, grid, k_axis, limit,
+                                         *operands, chi2)
+    return chi2, int(outside)
