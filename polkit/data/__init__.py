@@ -37,6 +37,7 @@ from polkit.data.fourier import (
     wavevector,
 )
 from polkit.data.inspect import inspect_file
+from polkit.data.options import LoadOptions
 from polkit.data.preprocess import (
     SymmetryReport,
     bin_map,
@@ -61,6 +62,7 @@ from polkit.data.validate import validate_map, validate_series
 from polkit.units import air_to_vacuum_nm, refractive_index_air, vacuum_to_air_nm
 
 __all__ = [
+    "LoadOptions",
     "load_map",
     "load_series",
     "validate_map",

@@ -22,6 +22,7 @@ from polkit.inference.posterior import LogPosterior
 from polkit.inference.priors import PRIOR_KINDS, Parameter, ParameterSpace, Prior, apply_priors
 from polkit.inference.result import FitResult
 from polkit.inference.sampler import SamplerOutput, default_moves, run_ensemble
+from polkit.inference.settings import GateSettings, SamplerSettings
 
 __all__ = [
     "PRIOR_KINDS",
@@ -35,6 +36,8 @@ __all__ = [
     "initial_ball",
     "check_ensemble",
     "SamplerOutput",
+    "SamplerSettings",
+    "GateSettings",
     "run_ensemble",
     "default_moves",
     "FitResult",
