@@ -17,12 +17,12 @@
 
 from __future__ import annotations
 
+import dataclasses
 import functools
 import hashlib
 import inspect
 import logging
 import os
-import threading
 import warnings
 from collections.abc import Callable, Mapping
 from pathlib import Path
@@ -31,7 +31,7 @@ import numpy as np
 
 from polkit.errors import ConvergenceWarning, PolkitError
 from polkit.folder_lock import folder_lock
-from polkit.inference import MapResult, SamplerOutput, laplace, run_ensemble
+from polkit.inference import MapResult, SamplerOutput, SamplerSettings, laplace, run_ensemble
 from polkit.inference.checkpoint import prepare_checkpoint, start_stored
 
 __all__ = [
@@ -146,6 +146,14 @@ def step_limits(defaults: Mapping[str, int], max_steps: int | None = None,
         steps["min_steps"] = int(min_steps)
     steps["check_every"] = min(steps["check_every"], steps["max_steps"])
     return steps
+
+
+def job_sampler(defaults: Mapping[str, int],
+                sampler: SamplerSettings | Mapping | None = None) -> SamplerSettings:
+    """``sampler`` with its step limits resolved against a job's defaults (:func:`step_limits`)."""
+    sampler = SamplerSettings.of(sampler)
+    steps = step_limits(defaults, sampler.max_steps, sampler.min_steps)
+    return dataclasses.replace(sampler, **steps)
 
 
 def walker_count(n_walkers: int | None, space) -> int:
@@ -317,16 +325,12 @@ def sample_problem(
     problem,
     start: MapResult | np.ndarray,
     *,
-    steps: Mapping[str, int],
+    sampler: SamplerSettings,
     log_likelihood: Callable[[np.ndarray], np.ndarray] | None = None,
-    n_walkers: int | None = None,
     seed: int | np.random.SeedSequence | None = None,
     pre_burn: bool = False,
     checkpoint: Path | None = None,
     resume: bool = False,
-    progress: bool = True,
-    strict: bool = False,
-    stop_event: threading.Event | None = None,
     identity: Mapping[str, object] | None = None,
 ) -> SamplerOutput:
     """Sample a job's posterior with emcee from a mode.
@@ -337,12 +341,11 @@ def sample_problem(
         The job's problem: its ``space`` and, by default, its ``log_likelihood``.
     start
         The mode to start from (a :class:`~polkit.inference.MapResult`).
-    steps
-        ``{max_steps, min_steps, check_every}`` (see :func:`step_limits`).
+    sampler
+        A :class:`~polkit.inference.SamplerSettings` whose step limits are resolved (see
+        :func:`job_sampler`); ``n_walkers`` ``None`` means ``max(32, 4 P)``.
     log_likelihood
         The likelihood to sample instead (another path's, or one wrapped to count steps).
-    n_walkers
-        Ensemble size (default ``max(32, 4 P)``).
     seed
         Root seed, recorded in the result; with ``pre_burn`` and no seed, a fresh one.
     pre_burn
@@ -351,7 +354,7 @@ def sample_problem(
         made first, so a run killed during the pre-burn or before its first step
         repeats the same pre-burn when resumed; it is skipped when the checkpoint holds
         the starting ensemble already.
-    checkpoint, resume, progress, strict, stop_event
+    checkpoint, resume
         As in :func:`polkit.inference.run_ensemble`; the checkpoint's folder is locked
         for the call (:mod:`polkit.folder_lock`).
     identity
@@ -368,13 +371,13 @@ def sample_problem(
     """
     like = problem.log_likelihood if log_likelihood is None else log_likelihood
     space = problem.space
-    steps = dict(steps)
     quick = None
     if isinstance(start, MapResult):  # the first answer, in seconds, before any MCMC step
         quick = quick_answer(problem, start, log_likelihood=like,
                              out=checkpoint.parent if checkpoint is not None else None,
                              required=False)
-    walkers = walker_count(n_walkers, space)
+    walkers = walker_count(sampler.n_walkers, space)
+    progress = sampler.progress
     job = dict(identity) if identity is not None else None
     with folder_lock(checkpoint.parent if checkpoint is not None else None):
         if checkpoint is not None:
@@ -384,11 +387,13 @@ def sample_problem(
         if pre_burn and not start_stored(checkpoint):
             if seed is None:  # one recorded root for the pre-burn and the run
                 seed = np.random.SeedSequence()
-            start = preburn(like, space, start, walkers, seed, steps["max_steps"],
+            start = preburn(like, space, start, walkers, seed, sampler.max_steps,
                             progress=progress)
         output = run_ensemble(like, space, start, n_walkers=walkers, seed=seed,
                               checkpoint=checkpoint, resume=resume, progress=progress,
-                              strict=strict, stop_event=stop_event, identity=job, **steps)
+                              strict=sampler.strict, stop_event=sampler.stop_event,
+                              identity=job, max_steps=sampler.max_steps,
+                              min_steps=sampler.min_steps, check_every=sampler.check_every)
     if quick is not None:
         post = output.posterior_draws()
         output.diagnostics["laplace_vs_mcmc"] = laplace.compare_with_mcmc(

@@ -40,6 +40,7 @@ import numpy as np
 import xarray as xr
 
 from polkit.errors import DataError
+from polkit.inference import SamplerSettings
 from polkit.jobs.dispersion import run as wf
 from polkit.jobs.dispersion import stages as st
 from polkit.jobs.dispersion.problem import DispersionProblem
@@ -385,9 +386,10 @@ class DispersionPanel(FitPanel):
                        "energy": [float(problem.energy.min()), float(problem.energy.max())]}}
 
         def run(log_likelihood, stop_event):
-            output = wf.sample_problem(problem, start, steps=steps, log_likelihood=log_likelihood,
-                                       n_walkers=walkers, seed=self.seed, progress=False,
-                                       stop_event=stop_event)
+            sampler = SamplerSettings(n_walkers=walkers, progress=False, stop_event=stop_event,
+                                      **steps)
+            output = wf.sample_problem(problem, start, sampler=sampler,
+                                       log_likelihood=log_likelihood, seed=self.seed)
             return wf.build_dispersion_result(problem, output, source, noise_note=noise_note,
                                               profile=self.profile, provenance=provenance)
 

@@ -27,6 +27,7 @@ from typing import Any
 
 import numpy as np
 
+from polkit.inference import SamplerSettings
 from polkit.jobs.power import run as pw
 from polkit.jobs.power.problem import PowerProblem
 from polkit.models import coherent
@@ -259,9 +260,10 @@ class PowerPanel(FitPanel):
         provenance = {"started_from": "interactive panel: MAP refined from the slider values"}
 
         def run(log_likelihood, stop_event):
-            output = pw.sample_problem(problem, start, steps=steps, log_likelihood=log_likelihood,
-                                       n_walkers=walkers, seed=self.seed, progress=False,
-                                       stop_event=stop_event)
+            sampler = SamplerSettings(n_walkers=walkers, progress=False, stop_event=stop_event,
+                                      **steps)
+            output = pw.sample_problem(problem, start, sampler=sampler,
+                                       log_likelihood=log_likelihood, seed=self.seed)
             return pw.build_power_result(problem, output, self.setup, provenance=provenance)
 
         return run

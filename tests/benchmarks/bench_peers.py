@@ -252,11 +252,12 @@ def emcee_script(model: ScriptModel, names: list[str], start_point: np.ndarray,
 def polkit_default_fit(da, *, seed: int, max_steps: int | None = None):
     """polkit's default whole-map fit, stage by stage as ``fit_dispersion`` runs them."""
     from polkit.errors import ConvergenceWarning
+    from polkit.inference import SamplerSettings
     from polkit.jobs.dispersion.robust import protected_mode
     from polkit.jobs.dispersion.run import DEFAULT_STEPS, prepare_dispersion
     from polkit.jobs.dispersion.search import search_modes
     from polkit.jobs.dispersion.stages import table_mode, whole_map_start
-    from polkit.jobs.steps import posterior_theta, sample_problem, step_limits
+    from polkit.jobs.steps import job_sampler, posterior_theta, sample_problem
 
     t0 = time.perf_counter()
     problem, begin = prepare_dispersion(da)
@@ -267,9 +268,9 @@ def polkit_default_fit(da, *, seed: int, max_steps: int | None = None):
     t1 = time.perf_counter()
     with warnings.catch_warnings():  # an unconverged run is reported, not raised
         warnings.simplefilter("ignore", ConvergenceWarning)
-        output = sample_problem(problem, start,
-                                steps=step_limits(DEFAULT_STEPS, max_steps, None),
-                                seed=seed, pre_burn=True, progress=False)
+        sampler = job_sampler(DEFAULT_STEPS, SamplerSettings(max_steps=max_steps,
+                                                             progress=False))
+        output = sample_problem(problem, start, sampler=sampler, seed=seed, pre_burn=True)
     t2 = time.perf_counter()
     draws = posterior_theta(output, problem.space)
     draws = draws.reshape(-1, draws.shape[-1])

@@ -15,7 +15,15 @@ from realistic_maps import hidden_upper_branch
 
 import polkit
 from polkit.errors import ConvergenceWarning, DataWarning
-from polkit.inference import LogPosterior, MapResult, Parameter, ParameterSpace, Prior, find_map
+from polkit.inference import (
+    LogPosterior,
+    MapResult,
+    Parameter,
+    ParameterSpace,
+    Prior,
+    SamplerSettings,
+    find_map,
+)
 from polkit.jobs.dispersion import run as dispersion_job
 from polkit.jobs.dispersion.run import prepare_dispersion
 from polkit.jobs.dispersion.search import (
@@ -213,9 +221,9 @@ def test_gate_refuses_a_run_sampled_in_a_worse_mode(hidden_map):
     start = MapResult(bad.x, bad.log_post, bad.scale, True, "forced")
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ConvergenceWarning)
-        output = sample_problem(problem, start, steps={"max_steps": 200, "min_steps": 200,
-                                                       "check_every": 200},
-                                seed=3, progress=False)
+        sampler = SamplerSettings(max_steps=200, min_steps=200, check_every=200,
+                                  progress=False)
+        output = sample_problem(problem, start, sampler=sampler, seed=3)
     with pytest.warns(ConvergenceWarning, match="a better mode exists"):
         output = check_mode_margin(output, search, problem)
     assert not output.converged

@@ -49,6 +49,7 @@ import xarray as xr
 
 from polkit.errors import ConfigError, ConvergenceWarning, DataWarning
 from polkit.files import json_safe, write_json, write_netcdf
+from polkit.inference import SamplerSettings
 from polkit.inference.priors import read_prior_file
 from polkit.jobs.dispersion.problem import MODELS, DispersionProblem
 from polkit.jobs.dispersion.run import (
@@ -61,10 +62,10 @@ from polkit.jobs.dispersion.stages import calibrate_problem_noise, refine_mode, 
 from polkit.jobs.steps import (
     checkpoint_file,
     job_identity,
+    job_sampler,
     locks_output,
     posterior_theta,
     sample_problem,
-    step_limits,
 )
 from polkit.models import spectral
 
@@ -621,7 +622,8 @@ def compare_dispersion_models(
         raise ConfigError(
             f"expected two or more of {', '.join(MODELS)}; found {', '.join(models) or 'none'}",
             key="models")
-    steps = step_limits(DEFAULT_STEPS, max_steps, min_steps)
+    sampler = job_sampler(DEFAULT_STEPS, SamplerSettings(
+        max_steps=max_steps, min_steps=min_steps, n_walkers=n_walkers, progress=progress))
     opts = dict(kind=kind, wavelength_medium=wavelength_medium, angle_window=angle_window,
                 energy_window=energy_window, load_options=load_options)
     prepared = {m: prepare_dispersion(source, model=m, **opts) for m in models}
@@ -652,9 +654,9 @@ def compare_dispersion_models(
         log.info("comparison: sampling the %s model", m)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", ConvergenceWarning)  # summarised below
-            output = sample_problem(problem, start, steps=steps, n_walkers=n_walkers,
+            output = sample_problem(problem, start, sampler=sampler,
                                     seed=children[m], pre_burn=True, checkpoint=ckpt,
-                                    progress=progress, resume=resume,
+                                    resume=resume,
                                     identity=job_identity(
                                         begin.source.sha256, f"{m} {begin.source.kind}",
                                         "whole_map", noise_note,

@@ -38,7 +38,7 @@ import numpy as np
 import xarray as xr
 
 from polkit.errors import DataError
-from polkit.inference import FitResult, SamplerOutput
+from polkit.inference import FitResult, SamplerOutput, SamplerSettings
 from polkit.jobs.dispersion.caveats import PEAK_TABLE_COVERAGE, add_caveats
 from polkit.jobs.dispersion.noise import calibrate_noise
 from polkit.jobs.dispersion.problem import DispersionProblem
@@ -59,11 +59,11 @@ from polkit.jobs.steps import (
     checkpoint_file,
     file_sha256,
     job_identity,
+    job_sampler,
     locks_output,
     posterior_theta,
     quick_answer,
     sample_problem,
-    step_limits,
     warn_large_map,
 )
 
@@ -338,7 +338,9 @@ def fit_dispersion(
     )
     checkpoint = None if quick else checkpoint_file(out, resume, refusal=DataError(
         "resume needs the output folder that holds the checkpoint; pass out=.", field="resume"))
-    steps = step_limits(DEFAULT_STEPS, max_steps, min_steps)
+    sampler = job_sampler(DEFAULT_STEPS, SamplerSettings(
+        max_steps=max_steps, min_steps=min_steps, n_walkers=n_walkers, progress=progress,
+        strict=strict, stop_event=stop_event))
 
     table_map = table_mode(problem, begin.x0)
     search = None
@@ -362,9 +364,8 @@ def fit_dispersion(
                                              profile=profile, wavelength_medium=wavelength_medium,
                                              load_options=load_options,
                                              camera=_camera_provenance(begin)))
-    output = sample_problem(problem, start, steps=steps, log_likelihood=like, n_walkers=n_walkers,
+    output = sample_problem(problem, start, sampler=sampler, log_likelihood=like,
                             seed=seed, pre_burn=True, checkpoint=checkpoint, resume=resume,
-                            progress=progress, strict=strict, stop_event=stop_event,
                             identity=identity)
     if search is not None:
         output = check_mode_margin(output, search, problem)

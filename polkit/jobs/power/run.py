@@ -36,7 +36,7 @@ import numpy as np
 import xarray as xr
 
 from polkit.errors import ConfigError, DataWarning
-from polkit.inference import FitResult, SamplerOutput
+from polkit.inference import FitResult, SamplerOutput, SamplerSettings
 from polkit.jobs.power.check import check_line, model_check, observed_jumps
 from polkit.jobs.power.problem import PowerProblem, calibrated_quantities, ciuti_estimate
 from polkit.jobs.power.stages import (
@@ -51,11 +51,11 @@ from polkit.jobs.steps import (
     CHECKPOINT,
     checkpoint_file,
     job_identity,
+    job_sampler,
     locks_output,
     posterior_theta,
     quick_answer,
     sample_problem,
-    step_limits,
 )
 from polkit.models.calibration import DensityCalibration
 
@@ -310,7 +310,9 @@ def fit_power(
         reservoir_lifetime_ps=reservoir_lifetime_ps, spot=spot)
     checkpoint = None if quick else checkpoint_file(out, resume, refusal=ConfigError(
         "resume needs the output folder that holds the checkpoint; pass out=", key="resume"))
-    steps = step_limits(DEFAULT_STEPS, max_steps, min_steps)
+    sampler = job_sampler(DEFAULT_STEPS, SamplerSettings(
+        max_steps=max_steps, min_steps=min_steps, n_walkers=n_walkers, progress=progress,
+        strict=strict, stop_event=stop_event))
 
     x0, _guess = power_start(problem)
     start = refine_mode(problem, x0)
@@ -318,9 +320,8 @@ def fit_power(
              dict(zip(problem.space.names, np.round(start.x, 6), strict=True)))
     if quick:  # the Laplace summary at the mode only: no chains
         return quick_answer(problem, start, out=out)
-    output = sample_problem(problem, start, steps=steps, n_walkers=n_walkers, seed=seed,
-                            checkpoint=checkpoint, resume=resume, progress=progress,
-                            strict=strict, stop_event=stop_event, identity=job_identity(
+    output = sample_problem(problem, start, sampler=sampler, seed=seed,
+                            checkpoint=checkpoint, resume=resume, identity=job_identity(
                                 setup.sha256, model, "series", setup.linewidth_note, dict(
                                     energy_window=energy_window, angle_window=angle_window,
                                     calibration=setup.calibration_info,
