@@ -27,6 +27,7 @@ from __future__ import annotations
 
 import contextlib
 import errno as _errno
+import hashlib
 import io as _io
 import json
 import logging
@@ -428,3 +429,12 @@ def save_figure(target: str | os.PathLike, fig, **kwargs) -> Path:
     buf = _io.BytesIO()
     fig.savefig(buf, format=fmt, **kwargs)
     return write_bytes(target, buf.getvalue())
+
+
+def file_sha256(path: str | os.PathLike) -> str:
+    """Hex SHA-256 of a file (provenance of every result)."""
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()

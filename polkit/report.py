@@ -30,7 +30,6 @@ the partly executed notebook is kept as ``<name>.failed.ipynb`` for diagnosis.
 from __future__ import annotations
 
 import ast
-import hashlib
 import json
 import logging
 import os
@@ -172,14 +171,6 @@ def parse_params(items: list[str] | tuple[str, ...]) -> dict[str, Any]:
 # --------------------------------------------------------------------------------------
 # provenance
 # --------------------------------------------------------------------------------------
-def _sha256(path: Path) -> str:
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for block in iter(lambda: fh.read(1 << 20), b""):
-            h.update(block)
-    return h.hexdigest()
-
-
 def _versions() -> dict[str, str]:
     from polkit import __version__
 
@@ -204,9 +195,10 @@ def _input_files(params: dict[str, Any], base: Path, results: Path) -> dict[str,
         p = p.resolve()
         if p == results.resolve() or results.resolve() in p.parents:
             continue
-        files = [p] if p.is_file() else sorted(f for f in p.iterdir() if f.is_file())
-        for f in files:
-            out[str(f)] = {"parameter": name, "sha256": _sha256(f), "bytes": f.stat().st_size}
+        named = [p] if p.is_file() else sorted(f for f in p.iterdir() if f.is_file())
+        for f in named:
+            out[str(f)] = {"parameter": name, "sha256": files.file_sha256(f),
+                           "bytes": f.stat().st_size}
     return out
 
 
@@ -234,7 +226,7 @@ def _provenance(nb_path: Path, params: dict, defaults: dict, results: Path,
     all_params = {**defaults, **params}
     return {
         "created": datetime.now(UTC).isoformat(timespec="seconds"),
-        "notebook": {"path": str(nb_path), "sha256": _sha256(nb_path)},
+        "notebook": {"path": str(nb_path), "sha256": files.file_sha256(nb_path)},
         "parameters": all_params,
         "injected": sorted(params),
         "seeds": seeds,
@@ -429,7 +421,7 @@ def make_report(
                         field=where) from None
 
     manifest = [{"path": str(f.relative_to(results)), "bytes": f.stat().st_size,
-                 "sha256": _sha256(f)}
+                 "sha256": files.file_sha256(f)}
                 for f in sorted(results.rglob("*")) if f.is_file() and not f.name.endswith(
                     ".part")]
     prov = _provenance(nb_path, params, defaults, results, manifest)

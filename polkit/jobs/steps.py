@@ -10,7 +10,7 @@
   parameter vectors (:func:`posterior_theta`);
 * the quick answer at the mode, before MCMC (:func:`quick_answer`, the Laplace summary of
   :mod:`polkit.inference.laplace`, written as ``quick_summary.json``);
-* the SHA-256 of an input file for the provenance (:func:`file_sha256`);
+* the SHA-256 of an input file for the provenance (:func:`polkit.files.file_sha256`);
 * one writer per output folder: a job decorated with :func:`locks_output` holds the lock
   of its ``out`` folder (:mod:`polkit.folder_lock`) for the whole call.
 """
@@ -19,7 +19,6 @@ from __future__ import annotations
 
 import dataclasses
 import functools
-import hashlib
 import inspect
 import logging
 import os
@@ -45,7 +44,6 @@ __all__ = [
     "posterior_theta",
     "quick_answer",
     "QUICK_SUMMARY",
-    "file_sha256",
     "locks_output",
     "job_identity",
     "warn_large_map",
@@ -86,15 +84,6 @@ def quick_answer(problem, start: MapResult, *, log_likelihood: Callable | None =
             # that is really full stops it with the checkpoint's own clear error
             log.warning("quick answer not saved: %s", exc)
     return summary
-
-
-def file_sha256(path: str | os.PathLike) -> str:
-    """Hex SHA-256 of a file (provenance of every result)."""
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for block in iter(lambda: fh.read(1 << 20), b""):
-            h.update(block)
-    return h.hexdigest()
 
 
 def clip_into(param, value: float, *, keep_inside: bool = True,

@@ -88,7 +88,7 @@ def test_checkpoint_records_the_fit_identity(finished, maps):
     # common practice, no published source: a checkpoint states what it belongs to
     with h5py.File(finished / "chains.h5", "r") as fh:
         ident = json.loads(fh.attrs["polkit_fit_identity"])
-    assert ident["input_sha256"] == _steps.file_sha256(maps[0])
+    assert ident["input_sha256"] == files.file_sha256(maps[0])
     assert ident["route"] == "peak_table" and ident["model"] == "two emission"
     assert json.loads(ident["priors"])["rabi_splitting"]["units"] == "meV"
     assert len(ident["priors_sha256"]) == 64

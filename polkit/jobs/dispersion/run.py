@@ -57,7 +57,6 @@ from polkit.jobs.dispersion.stages import (
 from polkit.jobs.steps import (
     CHECKPOINT,
     checkpoint_file,
-    file_sha256,
     job_identity,
     job_sampler,
     locks_output,
@@ -70,7 +69,6 @@ from polkit.jobs.steps import (
 __all__ = [
     "fit_dispersion",
     "calibrate_noise",
-    "file_sha256",
     "DispersionFit",
     "DEFAULT_STEPS",
     "CHECKPOINT",

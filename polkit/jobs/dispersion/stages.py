@@ -28,6 +28,7 @@ import numpy as np
 import xarray as xr
 
 from polkit.errors import DataError
+from polkit.files import file_sha256
 from polkit.inference import LogPosterior, MapResult, ParameterSpace, apply_priors, find_map
 from polkit.jobs.dispersion.noise import calibrate_noise
 from polkit.jobs.dispersion.problem import (
@@ -38,7 +39,7 @@ from polkit.jobs.dispersion.problem import (
     in_plane_axis,
     noise_inverse_variance,
 )
-from polkit.jobs.steps import clip_into, file_sha256
+from polkit.jobs.steps import clip_into
 
 __all__ = [
     "MapInput",

@@ -28,6 +28,7 @@ import xarray as xr
 
 from polkit.config.quantities import read_table
 from polkit.errors import ConfigError, DataError
+from polkit.files import file_sha256
 from polkit.inference import FitResult, LogPosterior, MapResult, Prior, apply_priors, find_map
 from polkit.jobs.power.problem import (
     MIN_POINTS,
@@ -37,7 +38,7 @@ from polkit.jobs.power.problem import (
     linewidth_prior,
     sweep_segments,
 )
-from polkit.jobs.steps import clip_into, file_sha256
+from polkit.jobs.steps import clip_into
 from polkit.models.calibration import DensityCalibration, load_calibration
 from polkit.models.pump_spot import SPOTS
 

@@ -1370,7 +1370,7 @@ def _state(out: Path, mode: str, model: str, seed, priors_key) -> np.random.Seed
 
 
 def _sha_or_none(path: Path) -> str | None:
-    from polkit.jobs.dispersion.run import file_sha256
+    from polkit.files import file_sha256
 
     try:
         return file_sha256(path)
