@@ -109,21 +109,8 @@ class _SubParser(argparse.ArgumentParser):
         super().__init__(*args, **kwargs)
 
 
-def build_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(
-        prog="polkit",
-        description="Characterise exciton-polariton microcavity samples: dispersion, power "
-        "series and energy budgets with honest uncertainties.",
-        epilog=SAFETY_NOTE,
-        formatter_class=_HelpFormatter,
-    )
-    parser.add_argument("--version", action="version", version=f"polkit {__version__}")
-    parser.add_argument("--debug", action="store_true", help="show tracebacks on errors")
-    parser.add_argument("--verbose", action="store_true",
-                        help="show the library's progress messages (and the survey scheduler's)")
-    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_SubParser)
-    sub.required = True
-
+def _add_demo(sub) -> None:
+    """``polkit demo``: the whole job on the bundled demo sample."""
     p = sub.add_parser("demo", help="run the whole job on the bundled invented demo sample")
     p.add_argument("--data", type=Path, default=None, help="demo data folder (default: bundled)")
     p.add_argument("--out", type=Path, default=Path("polkit-out") / "demo", help="output folder")
@@ -132,6 +119,9 @@ def build_parser() -> argparse.ArgumentParser:
                    help="short chains, for a smoke run (the fits are then marked not converged)")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
 
+
+def _add_inspect(sub) -> None:
+    """``polkit inspect``: describe a data file."""
     p = sub.add_parser("inspect", help="describe a data file and write a quick-look PNG")
     p.add_argument("file", type=Path, help="a map or power-series file (netCDF/HDF5, CSV, "
                    "plain-text matrix, .npz)")
@@ -144,6 +134,9 @@ def build_parser() -> argparse.ArgumentParser:
                    help=_MEDIUM_HELP)
     _add_camera_options(p, detection=False)
 
+
+def _add_dispersion(sub) -> None:
+    """``polkit dispersion``: fit one angle-resolved map."""
     p = sub.add_parser("dispersion", help="fit a coupled-oscillator model to an angle-resolved map")
     p.add_argument("map", type=Path, help=_MAP_HELP)
     p.add_argument("--model", choices=list(_MODEL_WORDS), default="two_oscillator",
@@ -164,6 +157,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--quick", action="store_true", help=_QUICK_HELP)
     _add_common_fit_options(p)
 
+
+def _add_compare(sub) -> None:
+    """``polkit compare``: rank the coupling models on one map."""
     p = sub.add_parser(
         "compare", help="is the sample strongly coupled? is a second exciton needed? fit each "
         "model to the map and say which the data support",
@@ -193,6 +189,9 @@ def build_parser() -> argparse.ArgumentParser:
                    help="continue each model's fit from its checkpoint in --out")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
 
+
+def _add_power(sub) -> None:
+    """``polkit power``: fit one pump-power series."""
     p = sub.add_parser("power", help="fit a mean-field model to a pump-power series",
                        epilog=POWER_NOTE + " " + SAFETY_NOTE)
     p.add_argument("series", type=Path, help="observable table (CSV, netCDF) or spectra cube")
@@ -213,6 +212,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--quick", action="store_true", help=_QUICK_HELP)
     _add_common_fit_options(p)
 
+
+def _add_budget(sub) -> None:
+    """``polkit budget``: energy per operation of a device."""
     p = sub.add_parser("budget", help="energy per operation of a device built from the sample")
     p.add_argument("--dispersion", type=Path, required=True, help="dispersion result folder")
     p.add_argument("--power", type=Path, required=True, help="calibrated power result folder")
@@ -232,6 +234,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", type=Path, default=Path("polkit-out") / "budget",
                    help="output folder")
 
+
+def _add_survey(sub) -> None:
+    """``polkit survey``: fit every position of a wafer."""
     p = sub.add_parser("survey", help="fit every position of a wafer and map the results")
     p.add_argument("manifest", type=Path, help="CSV manifest (file, x [mm], y [mm]) or a folder")
     p.add_argument(
@@ -254,6 +259,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--retry-failed", action="store_true", help="refit positions that failed")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
 
+
+def _add_report(sub) -> None:
+    """``polkit report``: execute a notebook into a report."""
     p = sub.add_parser(
         "report", help="execute a notebook into a self-contained HTML report",
         description="Execute NOTEBOOK top to bottom in a fresh Jupyter kernel and write its "
@@ -273,6 +281,30 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", type=Path, default=None,
                    help="report folder (default: polkit-out/reports/<notebook name>)")
 
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="polkit",
+        description="Characterise exciton-polariton microcavity samples: dispersion, power "
+        "series and energy budgets with honest uncertainties.",
+        epilog=SAFETY_NOTE,
+        formatter_class=_HelpFormatter,
+    )
+    parser.add_argument("--version", action="version", version=f"polkit {__version__}")
+    parser.add_argument("--debug", action="store_true", help="show tracebacks on errors")
+    parser.add_argument("--verbose", action="store_true",
+                        help="show the library's progress messages (and the survey scheduler's)")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_SubParser)
+    sub.required = True
+
+    _add_demo(sub)
+    _add_inspect(sub)
+    _add_dispersion(sub)
+    _add_compare(sub)
+    _add_power(sub)
+    _add_budget(sub)
+    _add_survey(sub)
+    _add_report(sub)
     return parser
 
 
