@@ -373,17 +373,23 @@ def make_report(
         Unknown parameter names, values that are not literals, more than one parameters
         cell, or parameters given to a notebook without a parameters cell.
     """
-    import nbformat
-    from nbclient import NotebookClient
-    from nbclient.exceptions import CellExecutionError
-
     nb_path = Path(notebook).resolve()
     out = Path(out).resolve()
     nb = _read_notebook(nb_path)
-    params = dict(params or {})
+    results = out / RESULTS_DIR
+    params, defaults = _inject_parameters(nb, nb_path, dict(params or {}), results)
+    results.mkdir(parents=True, exist_ok=True)
+    _execute(nb, nb_path, out, kernel_name=kernel_name, timeout=timeout)
+    return _write_report(nb, nb_path, out, params, defaults)
+
+
+def _inject_parameters(nb, nb_path: Path, params: dict[str, Any],
+                       results: Path) -> tuple[dict[str, Any], dict[str, Any]]:
+    """Check ``params`` against the parameters cell and insert them after it (tagged)."""
+    import nbformat
+
     index = _parameter_cell(nb, nb_path)
     defaults = _defaults(nb.cells[index].source, nb_path) if index is not None else {}
-    results = out / RESULTS_DIR
     if "out_dir" in defaults and "out_dir" not in params:
         params["out_dir"] = str(results)
     if params and index is None:
@@ -400,7 +406,14 @@ def make_report(
         cell = nbformat.v4.new_code_cell("\n".join(lines))
         cell.metadata["tags"] = [INJECTED_TAG]
         nb.cells.insert(index + 1, cell)
-    results.mkdir(parents=True, exist_ok=True)
+    return params, defaults
+
+
+def _execute(nb, nb_path: Path, out: Path, *, kernel_name: str, timeout: int) -> None:
+    """Run every cell in a fresh kernel; a failed cell keeps the notebook and names the cell."""
+    import nbformat
+    from nbclient import NotebookClient
+    from nbclient.exceptions import CellExecutionError
 
     client = NotebookClient(nb, kernel_name=kernel_name, timeout=timeout,
                             resources={"metadata": {"path": str(nb_path.parent)}},
@@ -420,6 +433,13 @@ def make_report(
                         f"{keep} -- fix the parameters or the notebook", path=nb_path,
                         field=where) from None
 
+
+def _write_report(nb, nb_path: Path, out: Path, params: dict[str, Any],
+                  defaults: dict[str, Any]) -> ReportPaths:
+    """The executed notebook with safety and provenance cells, its HTML and the manifests."""
+    import nbformat
+
+    results = out / RESULTS_DIR
     manifest = [{"path": str(f.relative_to(results)), "bytes": f.stat().st_size,
                  "sha256": files.file_sha256(f)}
                 for f in sorted(results.rglob("*")) if f.is_file() and not f.name.endswith(

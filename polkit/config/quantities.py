@@ -146,6 +146,16 @@ def quantity(
         uncertainty, an uncertainty on a zero value.
     """
     canonical = next(iter(units))
+    unit = _entry_unit(entry, key, dim, units, path)
+    value = number(entry, "value", key, path)
+    _check_range(value, key, lower, upper, bounded, path)
+    sigma = _log_width(entry, value, key, path)
+    return value * units[unit], sigma, canonical
+
+
+def _entry_unit(entry: Any, key: str, dim: str, units: Mapping[str, float], path) -> str:
+    """The entry's units, after checking it is a table of known sub-keys with value and units."""
+    canonical = next(iter(units))
     if not isinstance(entry, Mapping):
         raise ConfigError(
             f"expected a table with value and units, e.g. {key} = {{value = {entry!r}, "
@@ -175,7 +185,12 @@ def quantity(
             path=path,
             key=f"{key}.units",
         )
-    value = number(entry, "value", key, path)
+    return unit
+
+
+def _check_range(value: float, key: str, lower: str, upper: float | None, bounded: str,
+                 path) -> None:
+    """Refuse a value below ``lower`` (positive / nonnegative) or above ``upper``."""
     if lower == "positive" and value <= 0:
         raise ConfigError(f"expected a value > 0, found {value:g}", path=path, key=f"{key}.value")
     if lower == "nonnegative" and value < 0:
@@ -191,6 +206,10 @@ def quantity(
             path=path,
             key=f"{key}.value",
         )
+
+
+def _log_width(entry: Mapping, value: float, key: str, path) -> float:
+    """The log-normal width from ``error`` (absolute) or ``rel_error``; 0 when exact."""
     if "error" in entry and "rel_error" in entry:
         raise ConfigError(
             "found both error and rel_error; give one (absolute or relative)",
@@ -213,4 +232,4 @@ def quantity(
                     key=f"{key}.{name}",
                 )
             sigma = (err / value if name == "error" else err) if value > 0 else 0.0
-    return value * units[unit], sigma, canonical
+    return sigma
