@@ -18,15 +18,8 @@ import importlib
 
 __version__ = "0.1.0"
 
-from polkit.errors import (  # noqa: E402
-    ConfigError,
-    ConvergenceWarning,
-    DataError,
-    DataWarning,
-    FitError,
-    PolkitError,
-    PolkitWarning,
-)
+from polkit.errors import *  # noqa: E402,F403  (the exceptions and warnings)
+from polkit.errors import __all__ as _ERRORS  # noqa: E402
 
 #: public name -> module that defines it (imported on first access)
 _LAZY = {
@@ -40,17 +33,7 @@ _LAZY = {
     "run_survey": "polkit.jobs.survey.run",
 }
 
-__all__ = [
-    "__version__",
-    *_LAZY,
-    "PolkitError",
-    "DataError",
-    "ConfigError",
-    "FitError",
-    "PolkitWarning",
-    "DataWarning",
-    "ConvergenceWarning",
-]
+__all__ = ["__version__", *_LAZY, *_ERRORS]
 
 
 def __getattr__(name: str):
