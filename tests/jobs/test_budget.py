@@ -16,14 +16,12 @@ import pytest
 import xarray as xr
 from scipy import constants, stats
 
+from polkit.config.device import load_device
 from polkit.errors import ConfigError, ConvergenceWarning, DataError, DataWarning
 from polkit.inference import FitResult
-from polkit.jobs.budget.run import (
-    BudgetResult,
-    energy_budget,
-    load_device,
-    parse_claim,
-)
+from polkit.jobs.budget.claims import parse_claim
+from polkit.jobs.budget.result import BudgetResult
+from polkit.jobs.budget.run import energy_budget
 from polkit.models.device_energy import lognormal_product
 
 DEMO_DEVICE = Path(__file__).resolve().parents[2] / "data_examples" / "ds1_device.toml"
