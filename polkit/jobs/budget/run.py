@@ -54,6 +54,7 @@ from polkit.errors import ConfigError
 from polkit.inference import FitResult
 from polkit.jobs.budget.inputs import Fits, input_record, read_fits
 from polkit.jobs.budget.propagate import (
+    JointDraws,
     budget_variables,
     counted_lines,
     joint_draws,
@@ -132,23 +133,8 @@ def energy_budget(
                      expect_same_sample=expect_same_sample)
     ss = seed if isinstance(seed, np.random.SeedSequence) else np.random.SeedSequence(seed)
     draws = joint_draws(fits, dev, n, np.random.default_rng(ss), interaction=interaction)
-    attrs = {
-        "model": "energy_budget",
-        "kind": "budget",
-        "n_nodes": dev.n_nodes,
-        "n_inputs": dev.n_inputs,
-        "n_outputs": dev.n_outputs,
-        "rate_convention": dev.rate_convention,
-        "cooled": int(dev.cooled),
-        "counted": json.dumps(counted_lines(dev, draws.inputs)),
-        "factors": json.dumps(sensitivity_factors(interaction)),
-        "claims": json.dumps(list(claims)),
-        "diagnostics": json.dumps(_diagnostics(fits, n)),
-    }
-    prov = _provenance(fits, dev, ss, n, interaction=interaction,
-                       expect_same_sample=expect_same_sample)
-    attrs.update({"provenance": json.dumps(prov),
-                  "created_by": f"polkit {prov['polkit_version']}"})
+    attrs = _attributes(fits, dev, draws, claims, ss, n, interaction=interaction,
+                        expect_same_sample=expect_same_sample)
     ds = xr.Dataset(budget_variables(draws, dev), coords={"draw": np.arange(n)}, attrs=attrs)
     ds["draw"].attrs.update({"units": "1", "long_name": "joint draw index"})
     result = BudgetResult(ds)  # parses the claims: a bad claim is refused before any write
@@ -164,6 +150,30 @@ def _check_settings(interaction: str, n_draws: int) -> None:
     if isinstance(n_draws, bool) or int(n_draws) != n_draws or n_draws < 2:
         raise ConfigError(f"expected a whole number of draws >= 2, found {n_draws!r}",
                           key="n_draws")
+
+
+def _attributes(fits: Fits, dev: Device, draws: JointDraws, claims: Sequence[str],
+                ss: np.random.SeedSequence, n: int, *, interaction: str,
+                expect_same_sample: bool) -> dict[str, Any]:
+    """The budget dataset's attributes: array, what is counted, claims, diagnostics, provenance."""
+    attrs = {
+        "model": "energy_budget",
+        "kind": "budget",
+        "n_nodes": dev.n_nodes,
+        "n_inputs": dev.n_inputs,
+        "n_outputs": dev.n_outputs,
+        "rate_convention": dev.rate_convention,
+        "cooled": int(dev.cooled),
+        "counted": json.dumps(counted_lines(dev, draws.inputs)),
+        "factors": json.dumps(sensitivity_factors(interaction)),
+        "claims": json.dumps(list(claims)),
+        "diagnostics": json.dumps(_diagnostics(fits, n)),
+    }
+    prov = _provenance(fits, dev, ss, n, interaction=interaction,
+                       expect_same_sample=expect_same_sample)
+    attrs["provenance"] = json.dumps(prov)
+    attrs["created_by"] = f"polkit {prov['polkit_version']}"
+    return attrs
 
 
 def _diagnostics(fits: Fits, n: int) -> dict[str, Any]:
