@@ -36,6 +36,7 @@ __all__ = [
     "operation_rate",
     "power_per_node",
     "carnot_work_per_heat",
+    "Overheads",
     "array_energy_per_activation",
     "lognormal_product",
 ]
@@ -136,16 +137,13 @@ def energy_per_operation(
     return n * area * e_lp * _J_PER_EV / eta
 
 
-def energy_per_operation_fJ(
-    phase: ArrayLike,
-    gamma_meV: ArrayLike,
-    area_um2: ArrayLike,
-    e_lp_eV: ArrayLike,
-    g_lp_ueV_um2: ArrayLike,
-    eta_in: ArrayLike,
-) -> NDArray:
-    """:func:`energy_per_operation` in femtojoules (1 fJ = 1e-15 J)."""
-    return 1e15 * energy_per_operation(phase, gamma_meV, area_um2, e_lp_eV, g_lp_ueV_um2, eta_in)
+def energy_per_operation_fJ(*args: ArrayLike, **kwargs: ArrayLike) -> NDArray:
+    """:func:`energy_per_operation` in femtojoules (1 fJ = 1e-15 J).
+
+    Takes the parameters of :func:`energy_per_operation` (``phase, gamma_meV, area_um2,
+    e_lp_eV, g_lp_ueV_um2, eta_in``), by position or by name.
+    """
+    return 1e15 * energy_per_operation(*args, **kwargs)
 
 
 def operation_rate(
@@ -216,6 +214,38 @@ def carnot_work_per_heat(t_cold_K: ArrayLike, t_hot_K: ArrayLike = 300.0) -> NDA
     return (th - tc) / tc
 
 
+@dataclass(frozen=True, eq=False)
+class Overheads:
+    """What an array spends besides control pulses, modulators and detectors.
+
+    The defaults count nothing: no holding beam, lossless lasers, no cooling.  Values may
+    be arrays (e.g. one per posterior draw); they are checked by
+    :func:`array_energy_per_activation`.
+
+    Attributes
+    ----------
+    holding_power_W, window_s
+        Holding-beam power for the whole array (W) and the time it stays on per
+        activation (s).
+    wall_plug_efficiency
+        Laser electrical-to-optical efficiency, in (0, 1].
+    t_cold_K, t_hot_K
+        Cryostat and ambient temperatures (K); ``t_cold_K=None`` counts no cooling.
+    cold_fraction
+        Fraction of the delivered optical energy dissipated at the cold stage, in [0, 1].
+    cooler_fraction_of_carnot
+        Cooler efficiency relative to Carnot, in (0, 1] (1 = the thermodynamic bound).
+    """
+
+    holding_power_W: ArrayLike = 0.0
+    window_s: ArrayLike = 0.0
+    wall_plug_efficiency: ArrayLike = 1.0
+    t_cold_K: ArrayLike | None = None
+    t_hot_K: ArrayLike = 300.0
+    cold_fraction: ArrayLike = 1.0
+    cooler_fraction_of_carnot: ArrayLike = 1.0
+
+
 def array_energy_per_activation(
     e_op_J: ArrayLike,
     n_inputs: int,
@@ -224,17 +254,12 @@ def array_energy_per_activation(
     e_detector_J: ArrayLike,
     *,
     n_nodes: int = 1,
-    holding_power_W: ArrayLike = 0.0,
-    window_s: ArrayLike = 0.0,
-    wall_plug_efficiency: ArrayLike = 1.0,
-    t_cold_K: float | None = None,
-    t_hot_K: float = 300.0,
-    cold_fraction: ArrayLike = 1.0,
-    cooler_fraction_of_carnot: ArrayLike = 1.0,
+    overheads: Overheads | None = None,
 ) -> dict[str, NDArray]:
     """Energy (J) of one activation of an array of nodes, as separate declared lines.
 
-    Lines (each always present, zero when not counted):
+    Lines (each always present, zero when not counted), with the :class:`Overheads` fields
+    written plainly:
 
     * ``control_optical_J = n_nodes E_op`` -- control pulses at the sample.
     * ``holding_optical_J = holding_power_W window_s`` -- a holding (bias) beam kept on
@@ -260,17 +285,9 @@ def array_energy_per_activation(
         Energy per modulated input and per detected output (J).
     n_nodes
         Number of nonlinear nodes switched per activation.
-    holding_power_W, window_s
-        Holding-beam power for the whole array (W) and the time it stays on per
-        activation (s).
-    wall_plug_efficiency
-        Laser electrical-to-optical efficiency, in (0, 1].
-    t_cold_K, t_hot_K
-        Cryostat and ambient temperatures (K); ``t_cold_K=None`` counts no cooling.
-    cold_fraction
-        Fraction of the delivered optical energy dissipated at the cold stage, in [0, 1].
-    cooler_fraction_of_carnot
-        Cooler efficiency relative to Carnot, in (0, 1] (1 = the thermodynamic bound).
+    overheads
+        Holding beam, laser wall-plug efficiency and cooling (:class:`Overheads`);
+        ``None`` counts none of them.
 
     Returns
     -------
@@ -280,22 +297,23 @@ def array_energy_per_activation(
     for name, value in (("n_inputs", n_inputs), ("n_outputs", n_outputs), ("n_nodes", n_nodes)):
         if isinstance(value, bool) or int(value) != value or value < 0:
             raise DataError(f"expected a whole number >= 0, found {value!r}", field=name)
+    o = Overheads() if overheads is None else overheads
     e_op = _checked("e_op_J", e_op_J)
     e_mod = _checked("e_modulator_J", e_modulator_J, positive=False)
     e_det = _checked("e_detector_J", e_detector_J, positive=False)
-    hold = _checked("holding_power_W", holding_power_W, positive=False)
-    window = _checked("window_s", window_s, positive=False)
-    wp = _checked("wall_plug_efficiency", wall_plug_efficiency, upper=1.0)
-    cold = _checked("cold_fraction", cold_fraction, positive=False, upper=1.0)
-    cooler = _checked("cooler_fraction_of_carnot", cooler_fraction_of_carnot, upper=1.0)
+    hold = _checked("holding_power_W", o.holding_power_W, positive=False)
+    window = _checked("window_s", o.window_s, positive=False)
+    wp = _checked("wall_plug_efficiency", o.wall_plug_efficiency, upper=1.0)
+    cold = _checked("cold_fraction", o.cold_fraction, positive=False, upper=1.0)
+    cooler = _checked("cooler_fraction_of_carnot", o.cooler_fraction_of_carnot, upper=1.0)
 
     control = n_nodes * e_op
     holding = hold * window
     optical = control + holding
-    if t_cold_K is None:
+    if o.t_cold_K is None:
         cooling = np.zeros_like(optical)
     else:
-        cooling = cold * optical * carnot_work_per_heat(t_cold_K, t_hot_K) / cooler
+        cooling = cold * optical * carnot_work_per_heat(o.t_cold_K, o.t_hot_K) / cooler
     lines = {
         "control_optical_J": control,
         "holding_optical_J": holding,

@@ -16,14 +16,12 @@ import pytest
 import xarray as xr
 from scipy import constants, stats
 
+from polkit.config.device import load_device
 from polkit.errors import ConfigError, ConvergenceWarning, DataError, DataWarning
 from polkit.inference import FitResult
-from polkit.jobs.budget.run import (
-    BudgetResult,
-    energy_budget,
-    load_device,
-    parse_claim,
-)
+from polkit.jobs.budget.claims import parse_claim
+from polkit.jobs.budget.result import BudgetResult
+from polkit.jobs.budget.run import energy_budget
 from polkit.models.device_energy import lognormal_product
 
 DEMO_DEVICE = Path(__file__).resolve().parents[2] / "data_examples" / "ds1_device.toml"
@@ -550,3 +548,22 @@ def test_unconverged_input_warns(tmp_path):
         res = energy_budget(disp, power, _device(), n_draws=3)
     assert res.diagnostics["dispersion_converged"] is False
     assert any("did not pass" in t for t in res.notes())
+
+
+def test_result_and_device_units_convert(tmp_path):
+    # Source: SI prefixes (1 eV = 1000 meV, 1 meV = 1000 ueV, 1 mW = 1000 uW)
+    power = _power(tmp_path / "power", 1.0)
+    plain = energy_budget(_dispersion(tmp_path / "plain", 0.1, 1.6), power,
+                          _device(holding_power={"value": 2.0, "units": "mW"}), n_draws=3)
+    scaled = _save_result(tmp_path / "scaled", {"lp_energy_k0": ([1600.0], "meV"),
+                                                "lp_linewidth_k0": ([100.0], "ueV"),
+                                                "exciton_fraction_k0": ([0.4], "1")})
+    other = energy_budget(scaled, power, _device(holding_power={"value": 2000.0, "units": "uW"}),
+                          n_draws=3)
+    for name in ("lp_energy_k0", "lp_linewidth_k0", "holding_power", "energy_per_operation",
+                 "wall_energy_per_activation"):
+        np.testing.assert_allclose(other.draws(name), plain.draws(name), rtol=1e-12,
+                                   err_msg=name)
+    bad = _device(holding_power={"value": 2.0, "units": "μW"})  # Greek mu: not a device spelling
+    with pytest.raises(ConfigError, match="holding_power"):
+        load_device(bad)

@@ -9,6 +9,7 @@ from scipy import constants
 from polkit.errors import DataError
 from polkit.models.device_energy import (
     ELECTRONIC_REFERENCE,
+    Overheads,
     array_energy_per_activation,
     carnot_work_per_heat,
     energy_per_operation,
@@ -114,8 +115,9 @@ def test_operation_rate_conventions():
 
 def test_array_accounting_declares_every_line():
     lines = array_energy_per_activation(
-        1e-15, 10, 10, 1e-12, 1e-13,
-        n_nodes=100, holding_power_W=1e-3, window_s=1e-9, wall_plug_efficiency=0.25, t_cold_K=4.0,
+        1e-15, 10, 10, 1e-12, 1e-13, n_nodes=100,
+        overheads=Overheads(holding_power_W=1e-3, window_s=1e-9, wall_plug_efficiency=0.25,
+                            t_cold_K=4.0),
     )
     # control 100 x 1e-15 = 1e-13; holding 1e-3 W x 1e-9 s = 1e-12; optical 1.1e-12
     # laser: 1.1e-12 x (1/0.25 - 1) = 3.3e-12; modulators 10 x 1e-12 = 1e-11;
