@@ -1,6 +1,6 @@
 """Figures of an energy budget: what one activation is made of, and what drives its spread.
 
-Both functions take a :class:`polkit.jobs.budget.run.BudgetResult` (anything with its
+Both functions take a :class:`polkit.jobs.budget.result.BudgetResult` (anything with its
 ``draws``, ``counted`` and ``sensitivity`` members) and return a matplotlib
 :class:`~matplotlib.figure.Figure` built outside pyplot;
 :func:`budget_figures` writes them atomically with :func:`polkit.files.save_figure`.

@@ -32,7 +32,7 @@ from polkit.cli import main
 from polkit.data import load_map, load_series, make_map, validate_map, validate_series
 from polkit.errors import ConfigError, DataError, DataWarning
 from polkit.inference import Parameter, ParameterSpace, Prior, apply_priors
-from polkit.jobs.budget.run import load_device
+from polkit.config.device import load_device
 from polkit.models.calibration import load_calibration
 
 PACKAGE = Path(__file__).resolve().parents[2] / "polkit"
