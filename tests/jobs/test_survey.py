@@ -16,14 +16,13 @@ import pytest
 import xarray as xr
 
 from polkit import ConfigError, DataError, FitError
+from polkit.config.manifest import read_manifest
 from polkit.data import make_map
-from polkit.jobs.survey.run import (
-    SurveyResult,
-    fit_position,
-    fit_surface,
-    read_manifest,
-    run_survey,
-)
+from polkit.inference.settings import SamplerSettings
+from polkit.jobs.survey.result import SurveyResult
+from polkit.jobs.survey.run import run_survey
+from polkit.jobs.survey.surface import fit_surface
+from polkit.jobs.survey.tasks import fit_position
 from polkit.models.spectral import simulate_map
 
 MEV = 1e-3
@@ -38,6 +37,7 @@ YS = (-8.0, 8.0)
 ANGLES = np.linspace(-20.0, 20.0, 11)
 ENERGY = np.linspace(E_X - 0.012, E_X + 0.014, 80)
 SEED = 11
+QUIET = SamplerSettings(progress=False)  # no bar over positions
 
 
 def _detuning(x_mm: float) -> float:
@@ -92,7 +92,7 @@ def surveyed(tmp_path_factory):
     folder = tmp_path_factory.mktemp("wafer")
     manifest = _write_wafer(folder)
     out = folder / "survey"
-    result = run_survey(manifest, out=out, workers=2, seed=SEED, progress=False)
+    result = run_survey(manifest, out=out, workers=2, seed=SEED, sampler=QUIET)
     return manifest, out, result
 
 
@@ -189,7 +189,7 @@ def test_rerun_refits_only_interrupted_positions_identically_on_one_worker(surve
     before = {p: (out2 / "positions" / p / "done.json").stat().st_mtime_ns for p in ids}
     for p in interrupted:
         shutil.rmtree(out2 / "positions" / p)
-    second = run_survey(manifest, out=out2, workers=1, progress=False, figures=False)
+    second = run_survey(manifest, out=out2, workers=1, sampler=QUIET, figures=False)
     assert sorted(second.fitted) == sorted(interrupted)
     assert sorted(second.reused) == sorted(set(ids) - set(interrupted))
     for p in set(ids) - set(interrupted):
@@ -208,7 +208,7 @@ def test_rerun_refits_only_interrupted_positions_identically_on_one_worker(surve
     with LocalCluster(n_workers=1, threads_per_worker=1, processes=True, host="127.0.0.1",
                       dashboard_address=None) as cluster:
         third = run_survey(manifest, out=out2, scheduler=cluster.scheduler_address,
-                           progress=False, figures=False, retry_failed=True)
+                           sampler=QUIET, figures=False, retry_failed=True)
         assert sorted(third.fitted) == sorted(failed)
         assert cluster.status.name == "running" and len(cluster.workers) == 1  # still up
 
@@ -216,11 +216,11 @@ def test_rerun_refits_only_interrupted_positions_identically_on_one_worker(surve
 def test_an_existing_survey_folder_refuses_another_seed_or_mode(surveyed):
     manifest, out, _ = surveyed
     with pytest.raises(ConfigError, match="seeded with entropy 11"):
-        run_survey(manifest, out=out, seed=12, progress=False)
+        run_survey(manifest, out=out, seed=12, sampler=QUIET)
     with pytest.raises(ConfigError, match="mode = 'quick'"):
-        run_survey(manifest, out=out, mode="full", progress=False)
+        run_survey(manifest, out=out, mode="full", sampler=QUIET)
     with pytest.raises(ConfigError, match="workers"):
-        run_survey(manifest, out=out, workers=2, scheduler="tcp://127.0.0.1:1", progress=False)
+        run_survey(manifest, out=out, workers=2, scheduler="tcp://127.0.0.1:1", sampler=QUIET)
 
 
 def test_a_position_short_of_its_gate_is_not_converged(tmp_path):
@@ -305,7 +305,7 @@ def test_bad_manifests_name_file_row_and_column(tmp_path, text, match):
 def test_bad_manifest_stops_before_any_cluster_or_output(tmp_path):
     path = _manifest(tmp_path, "file,x [mm],y [mm]\na.nc,1,oops\n")
     with pytest.raises(DataError, match="row 1"):
-        run_survey(path, out=tmp_path / "out", progress=False)
+        run_survey(path, out=tmp_path / "out", sampler=QUIET)
     assert not (tmp_path / "out").exists()
     with pytest.raises(DataError, match="found nothing at this path"):
         read_manifest(tmp_path / "nowhere.csv")
@@ -463,7 +463,7 @@ def test_embedded_cluster_listens_on_loopback_without_dashboard(monkeypatch):
     # network (no 0.0.0.0, no dashboard) and its scratch folder is stated
     import dask.distributed
 
-    from polkit.jobs.survey import run as survey
+    from polkit.jobs.survey import scheduler
 
     seen = {}
 
@@ -483,7 +483,7 @@ def test_embedded_cluster_listens_on_loopback_without_dashboard(monkeypatch):
 
     monkeypatch.setattr(dask.distributed, "LocalCluster", FakeCluster)
     monkeypatch.setattr(dask.distributed, "Client", FakeClient)
-    with survey._client(None, 1):
+    with scheduler.client_for(None, 1):
         pass
     assert seen["host"] == "127.0.0.1" and seen["dashboard_address"] is None
     assert seen["closed"] and os.path.isdir(seen["local_directory"])
