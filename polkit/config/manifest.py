@@ -24,13 +24,9 @@ __all__ = [
     "read_manifest",
     "PositionSpec",
     "LENGTH_UNITS",
-    "KINDS",
-    "MEDIA",
     "safe_label",
 ]
 
-KINDS = ("emission", "reflectance", "transmission")
-MEDIA = ("vacuum", "air")
 #: length spellings accepted for wafer positions -> factor to mm
 LENGTH_UNITS: dict[str, float] = {
     "mm": 1.0,
@@ -354,7 +350,8 @@ def _row_file(r: _Row, files_seen: dict[str, tuple[int, int, str]]) -> Path:
 
 
 def _row_options(r: _Row) -> dict[str, Any]:
-    # the oscillator models are those of the dispersion job
+    # the kinds and media of polkit's maps; the oscillator models of the dispersion job
+    from polkit.data.schema import KINDS, MEDIA
     from polkit.jobs.dispersion.problem import COUPLED_MODELS
 
     options: dict[str, Any] = {}

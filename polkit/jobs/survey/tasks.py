@@ -21,17 +21,8 @@ from polkit.config.manifest import PositionSpec
 from polkit.errors import ConfigError
 from polkit.files import write_json
 from polkit.inference.identity import CheckpointMismatch
-from polkit.jobs.survey.layout import (
-    CHECKPOINT,
-    DONE_FILE,
-    POSITIONS_DIR,
-    STARTED_FILE,
-    STATUSES,
-    SUMMARY_FILE,
-    one_line,
-    read_json,
-    reason,
-)
+from polkit.jobs.survey import layout
+from polkit.jobs.survey.layout import one_line, read_json
 from polkit.jobs.survey.state import sha_or_none
 
 __all__ = ["fit_position", "build_task", "is_finished", "lost_record"]
@@ -67,14 +58,14 @@ def fit_position(task: dict[str, Any]) -> dict[str, Any]:
 
     folder = Path(task["folder"])
     folder.mkdir(parents=True, exist_ok=True)
-    (folder / DONE_FILE).unlink(missing_ok=True)
-    checkpoint = folder / CHECKPOINT
-    started = read_json(folder / STARTED_FILE)
+    (folder / layout.DONE_FILE).unlink(missing_ok=True)
+    checkpoint = folder / layout.CHECKPOINT
+    started = read_json(folder / layout.STARTED_FILE)
     resume = (task["mode"] == "full" and checkpoint.is_file() and started is not None
               and started.get("key") == task["key"])
     if not resume:
         checkpoint.unlink(missing_ok=True)
-    write_json(folder / STARTED_FILE, {"key": task["key"]})
+    write_json(folder / layout.STARTED_FILE, {"key": task["key"]})
     seed = task["seed"]
     record: dict[str, Any] = {
         "position": task["position_id"],
@@ -90,7 +81,7 @@ def fit_position(task: dict[str, Any]) -> dict[str, Any]:
             result = _fit(fit_dispersion, task, folder, resume)
         except Exception as exc:  # noqa: BLE001 - a bad position is recorded, the rest go on
             record["status"] = "failed"
-            record["reason"] = reason(exc)
+            record["reason"] = layout.reason(exc)
             log.info("%s failed: %s", task["position_id"], record["reason"])
         else:
             if result.converged:
@@ -102,7 +93,7 @@ def fit_position(task: dict[str, Any]) -> dict[str, Any]:
     record["warnings"] = _messages(caught)
     record["seconds"] = round(time.perf_counter() - t0, 3)
     record["finished"] = datetime.now(UTC).isoformat(timespec="seconds")
-    write_json(folder / DONE_FILE, record)
+    write_json(folder / layout.DONE_FILE, record)
     with contextlib.suppress(OSError):
         checkpoint.unlink(missing_ok=True)
     return record
@@ -183,7 +174,7 @@ def build_task(spec: PositionSpec, child: np.random.SeedSequence, out: Path, mod
     }
     return {
         "position_id": spec.position_id,
-        "folder": str(out / POSITIONS_DIR / spec.position_id),
+        "folder": str(out / layout.POSITIONS_DIR / spec.position_id),
         "file": str(spec.file),
         "mode": mode,
         "model": spec.model or model,
@@ -200,13 +191,13 @@ def build_task(spec: PositionSpec, child: np.random.SeedSequence, out: Path, mod
 def is_finished(task: dict[str, Any], retry_failed: bool) -> bool:
     """Whether an earlier run finished this task with the same key (and it need not rerun)."""
     folder = Path(task["folder"])
-    done = read_json(folder / DONE_FILE)
+    done = read_json(folder / layout.DONE_FILE)
     if done is None or done.get("key") != task["key"]:
         return False
     status = done.get("status")
-    if status not in STATUSES:
+    if status not in layout.STATUSES:
         return False
-    if status != "failed" and not (folder / SUMMARY_FILE).is_file():
+    if status != "failed" and not (folder / layout.SUMMARY_FILE).is_file():
         return False
     return not (retry_failed and status != "ok")
 
@@ -223,7 +214,7 @@ def lost_record(task: dict[str, Any], exc: BaseException) -> dict[str, Any]:
         "finished": datetime.now(UTC).isoformat(timespec="seconds"),
     }
     try:
-        write_json(Path(task["folder"]) / DONE_FILE, record)
+        write_json(Path(task["folder"]) / layout.DONE_FILE, record)
     except OSError as err:
         log.warning("%s: cannot record the failure (%s)", task["position_id"], err)
     return record
