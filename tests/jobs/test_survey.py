@@ -1,6 +1,7 @@
 """The wafer survey: a simulated wafer with a known linear detuning gradient, failures that
-stay local, resumable reruns, seeds independent of the worker count, the detuning surface
-and bad manifests.
+stay local, resumable reruns, seeds independent of the worker count, folders of maps and
+the embedded cluster.  Manifests: test_survey_manifest.py; the detuning surface:
+test_survey_surface.py.
 
 Every wafer here is invented (simulated with polkit's own forward model and seeded noise).
 """
@@ -15,15 +16,13 @@ import numpy as np
 import pytest
 import xarray as xr
 
-from polkit import ConfigError, DataError, FitError
+from polkit import ConfigError, DataError
+from polkit.config.manifest import read_manifest
 from polkit.data import make_map
-from polkit.jobs.survey.run import (
-    SurveyResult,
-    fit_position,
-    fit_surface,
-    read_manifest,
-    run_survey,
-)
+from polkit.inference.settings import SamplerSettings
+from polkit.jobs.survey.result import SurveyResult
+from polkit.jobs.survey.run import run_survey
+from polkit.jobs.survey.tasks import fit_position
 from polkit.models.spectral import simulate_map
 
 MEV = 1e-3
@@ -38,6 +37,7 @@ YS = (-8.0, 8.0)
 ANGLES = np.linspace(-20.0, 20.0, 11)
 ENERGY = np.linspace(E_X - 0.012, E_X + 0.014, 80)
 SEED = 11
+QUIET = SamplerSettings(progress=False)  # no bar over positions
 
 
 def _detuning(x_mm: float) -> float:
@@ -92,7 +92,7 @@ def surveyed(tmp_path_factory):
     folder = tmp_path_factory.mktemp("wafer")
     manifest = _write_wafer(folder)
     out = folder / "survey"
-    result = run_survey(manifest, out=out, workers=2, seed=SEED, progress=False)
+    result = run_survey(manifest, out=out, workers=2, seed=SEED, sampler=QUIET)
     return manifest, out, result
 
 
@@ -189,7 +189,7 @@ def test_rerun_refits_only_interrupted_positions_identically_on_one_worker(surve
     before = {p: (out2 / "positions" / p / "done.json").stat().st_mtime_ns for p in ids}
     for p in interrupted:
         shutil.rmtree(out2 / "positions" / p)
-    second = run_survey(manifest, out=out2, workers=1, progress=False, figures=False)
+    second = run_survey(manifest, out=out2, workers=1, sampler=QUIET, figures=False)
     assert sorted(second.fitted) == sorted(interrupted)
     assert sorted(second.reused) == sorted(set(ids) - set(interrupted))
     for p in set(ids) - set(interrupted):
@@ -208,7 +208,7 @@ def test_rerun_refits_only_interrupted_positions_identically_on_one_worker(surve
     with LocalCluster(n_workers=1, threads_per_worker=1, processes=True, host="127.0.0.1",
                       dashboard_address=None) as cluster:
         third = run_survey(manifest, out=out2, scheduler=cluster.scheduler_address,
-                           progress=False, figures=False, retry_failed=True)
+                           sampler=QUIET, figures=False, retry_failed=True)
         assert sorted(third.fitted) == sorted(failed)
         assert cluster.status.name == "running" and len(cluster.workers) == 1  # still up
 
@@ -216,11 +216,11 @@ def test_rerun_refits_only_interrupted_positions_identically_on_one_worker(surve
 def test_an_existing_survey_folder_refuses_another_seed_or_mode(surveyed):
     manifest, out, _ = surveyed
     with pytest.raises(ConfigError, match="seeded with entropy 11"):
-        run_survey(manifest, out=out, seed=12, progress=False)
+        run_survey(manifest, out=out, seed=12, sampler=QUIET)
     with pytest.raises(ConfigError, match="mode = 'quick'"):
-        run_survey(manifest, out=out, mode="full", progress=False)
+        run_survey(manifest, out=out, mode="full", sampler=QUIET)
     with pytest.raises(ConfigError, match="workers"):
-        run_survey(manifest, out=out, workers=2, scheduler="tcp://127.0.0.1:1", progress=False)
+        run_survey(manifest, out=out, workers=2, scheduler="tcp://127.0.0.1:1", sampler=QUIET)
 
 
 def test_a_position_short_of_its_gate_is_not_converged(tmp_path):
@@ -246,71 +246,22 @@ def test_a_position_short_of_its_gate_is_not_converged(tmp_path):
     assert record["status"] == "failed" and "bad.npz" in record["reason"]
 
 
-# ------------------------------------------------------------------------------------------
-# manifests
-# ------------------------------------------------------------------------------------------
-def _manifest(tmp_path, text, files=("a.nc", "b.nc")):
-    for f in files:
-        (tmp_path / f).write_bytes(b"placeholder")
+def test_sampler_settings_the_survey_would_not_use_are_refused(tmp_path):
+    # common practice, no published source: a setting that would be silently ignored is
+    # refused, before any cluster or output
+    (tmp_path / "a.nc").write_bytes(b"invented")
     path = tmp_path / "manifest.csv"
-    path.write_text(text)
-    return path
-
-
-def test_manifest_units_options_and_relative_paths(tmp_path):
-    path = _manifest(tmp_path, "# invented\nfile,x [um],y [cm],energy_min [meV],energy_max [eV],"
-                               "kind,label\n"
-                               "a.nc,1500,0.5,1530,1.56,reflectance,edge\nb.nc,0,0,,,,\n")
-    a, b = read_manifest(path)
-    assert (a.x_mm, a.y_mm) == (1.5, 5.0)
-    assert a.energy_window == pytest.approx((1.530, 1.56))
-    assert a.kind == "reflectance" and a.position_id == "000_edge"
-    assert a.file == (tmp_path / "a.nc").resolve()
-    assert b.energy_window is None and b.kind is None and b.position_id == "001_b"
-
-
-@pytest.mark.parametrize(
-    ("text", "match"),
-    [
-        ("file,x [mm]\na.nc,1\n", r"field 'y \[mm\]'.*expected a column 'y \[mm\]'"),
-        ("file,x [mm],y\na.nc,1,2\n", r"field 'y'.*expected units of a length"),
-        ("file,x [furlong],y [mm]\na.nc,1,2\n", r"found units 'furlong'"),
-        ("file,x [mm],y [mm],colour\na.nc,1,2,red\n", r"unknown column 'colour'"),
-        ("file,x [mm],y [mm]\na.nc,1,2\nb.nc,abc,2\n",
-         r"field 'x \[mm\]': row 2 \(line 3\), column 'x \[mm\]': expected a number; found 'abc'"),
-        ("file,x [mm],y [mm]\na.nc,1,\n", r"row 1 \(line 2\), column 'y \[mm\]'.*empty cell"),
-        ('file,x [mm],y [mm]\na.nc,"1,5",2\n', r"decimal comma"),
-        ("file,x [mm],y [mm]\na.nc,1,2\na.nc,3,4\n",
-         r"row 2 .*'a.nc' is the same map as 'a.nc' in row 1 \(line 2\)"),
-        ("file,x [mm],y [mm],kind\na.nc,1,2,absorption\n",
-         r"field 'kind': row 1 \(line 2\), column 'kind': expected one of emission"),
-        ("file,x [mm],y [mm],energy_min [eV],energy_max [eV]\na.nc,1,2,1.56,1.53\n",
-         r"row 1 \(line 2\): expected energy_min < energy_max"),
-        ("file,x [mm],y [mm]\na.nc,1\n", r"row 1 \(line 2\): expected 3 cells"),
-        ("file,x [mm],y [mm]\n", r"found none"),
-        ("# only a comment\n", r"expected a header line"),
-        ("file,x [mm],y [mm],priors\na.nc,1,2,missing.toml\n", r"expected a priors file"),
-    ],
-    ids=["no-y", "no-units", "bad-units", "unknown-column", "not-a-number", "empty-cell",
-         "decimal-comma", "duplicate-file", "bad-kind", "empty-window", "short-row", "no-rows",
-         "no-header", "missing-priors"],
-)
-def test_bad_manifests_name_file_row_and_column(tmp_path, text, match):
-    path = _manifest(tmp_path, text)
-    with pytest.raises(DataError, match=match) as info:
-        read_manifest(path)
-    assert str(info.value).startswith(str(path))
-
-
-def test_bad_manifest_stops_before_any_cluster_or_output(tmp_path):
-    path = _manifest(tmp_path, "file,x [mm],y [mm]\na.nc,1,oops\n")
-    with pytest.raises(DataError, match="row 1"):
-        run_survey(path, out=tmp_path / "out", progress=False)
+    path.write_text("file,x [mm],y [mm]\na.nc,1,2\n")
+    with pytest.raises(ConfigError, match="found n_walkers set"):
+        run_survey(path, out=tmp_path / "out", sampler=SamplerSettings(n_walkers=64))
+    with pytest.raises(ConfigError, match="expected max_steps >= 1; found 0"):
+        run_survey(path, out=tmp_path / "out", sampler={"max_steps": 0, "progress": False})
     assert not (tmp_path / "out").exists()
-    with pytest.raises(DataError, match="found nothing at this path"):
-        read_manifest(tmp_path / "nowhere.csv")
 
 
+# ------------------------------------------------------------------------------------------
+# positions from a folder of maps; the embedded cluster
+# ------------------------------------------------------------------------------------------
 def test_folder_of_maps_with_position_attributes(tmp_path):
     da = _map(0.0, np.random.default_rng(1))
     _save(da, tmp_path / "p1.nc", x="2.5 mm", y="-1 mm")
@@ -331,139 +282,12 @@ def test_folder_of_maps_with_position_attributes(tmp_path):
         read_manifest(tmp_path)
 
 
-# ------------------------------------------------------------------------------------------
-# the detuning surface
-# ------------------------------------------------------------------------------------------
-def _grid(n=5, span=10.0):
-    g = np.linspace(-span, span, n)
-    xx, yy = np.meshgrid(g, g)
-    return xx.ravel(), yy.ravel()
-
-
-def test_surface_recovers_a_plane_and_its_zero_line_exactly():
-    # Source: analytic -- v = a + b x + c y vanishes on x = -(a + c y) / b.
-    x, y = _grid()
-    a, b, c = -1.2, 0.4, 0.05
-    v = a + b * x + c * y
-    fit = fit_surface(x, y, v, np.full_like(v, 0.02))
-    np.testing.assert_allclose(fit.coefficients, [a, b, c], atol=1e-12)  # centre is (0, 0)
-    (seg,) = fit.level_line(0.0)
-    np.testing.assert_allclose(np.asarray(seg["x"]), -(a + c * np.asarray(seg["y"])) / b,
-                               atol=1e-9)
-    g, cov = fit.gradient()
-    np.testing.assert_allclose(g, [b, c], atol=1e-12)
-
-
-def test_surface_recovers_a_quadric_and_its_local_gradient():
-    # Source: analytic derivatives of v = 1 + 0.2 x - 0.1 y + 0.01 x^2 + 0.02 x y - 0.03 y^2
-    x, y = _grid(6)
-    x, y = x + 3.0, y - 2.0  # off-centre: the fit works about the centroid (3, -2)
-    v = 1 + 0.2 * x - 0.1 * y + 0.01 * x**2 + 0.02 * x * y - 0.03 * y**2
-    fit = fit_surface(x, y, v, np.full_like(v, 0.01), degree=2)
-    mean, _ = fit.evaluate(np.array([0.0, 4.0]), np.array([0.0, 1.0]))
-    np.testing.assert_allclose(mean, [1.0, 1 + 0.8 - 0.1 + 0.16 + 0.08 - 0.03], atol=1e-10)
-    g, _ = fit.gradient(4.0, 1.0)
-    np.testing.assert_allclose(g, [0.2 + 2 * 0.01 * 4 + 0.02 * 1, -0.1 + 0.02 * 4 - 2 * 0.03 * 1],
-                               atol=1e-10)
-
-
-def test_surface_covariance_matches_an_independent_least_squares_library():
-    # Source: scipy.optimize.curve_fit, absolute_sigma=True (covariance of the weights
-    # alone) and absolute_sigma=False (scaled by chi2/dof) -- the latter is what the survey
-    # reports when the scatter exceeds the per-position intervals.
-    from scipy.optimize import curve_fit
-
-    rng = np.random.default_rng(8)
-    x, y = _grid()
-    sig = rng.uniform(0.01, 0.05, x.size)
-
-    def plane(xy, a, b, c):
-        return a + b * xy[0] + c * xy[1]
-
-    for inflate in (0.5, 3.0):  # scatter below, then above the stated uncertainties
-        v = -1 + 0.3 * x + 0.02 * y + inflate * sig * rng.standard_normal(x.size)
-        fit = fit_surface(x, y, v, sig)
-        absolute = fit.chi2 / fit.dof <= 1
-        popt, pcov = curve_fit(plane, (x, y), v, sigma=sig, absolute_sigma=absolute)
-        np.testing.assert_allclose(fit.coefficients, popt, rtol=1e-8, atol=1e-12)
-        np.testing.assert_allclose(fit.covariance, pcov, rtol=1e-6)
-        assert (fit.scale_factor > 1) == (not absolute)
-
-
-def test_surface_gradient_intervals_cover_the_truth_at_their_level():
-    # common practice, no published source: simulated Gaussian errors of known size, so the 95 %
-    # intervals must cover the true gradient in about 95 % of 400 wafers (binomial sd 1.1 %;
-    # the scale factor can only widen them).
-    rng = np.random.default_rng(21)
-    x, y = _grid(5)
-    hits = 0
-    n = 400
-    for _ in range(n):
-        sig = rng.uniform(0.02, 0.06, x.size)
-        v = -1.5 + 0.3 * x + rng.normal(0.0, sig)
-        g = fit_surface(x, y, v, sig).gradient_summary()["x"]
-        hits += g["low"] <= 0.3 <= g["high"]
-    assert 0.92 <= hits / n <= 0.99
-
-
-def test_zero_line_band_matches_a_monte_carlo_of_the_coefficients():
-    # Source: the delta-method width of the zero line checked by sampling the coefficients
-    # from their Gaussian and solving a + b (x - x0) = 0 for each draw (gradient along x).
-    rng = np.random.default_rng(4)
-    x, y = _grid(4)
-    sig = np.full(x.size, 0.05)
-    v = -1.0 + 0.25 * x + rng.normal(0.0, sig)
-    fit = fit_surface(x, y, v, sig)
-    draws = rng.multivariate_normal(fit.coefficients, fit.covariance, 200_000)
-    y0 = 0.0
-    x_cross = fit.centre_mm[0] - (draws[:, 0] + draws[:, 2] * (y0 - fit.centre_mm[1])) / draws[:, 1]
-    (seg,) = fit.level_line(0.0)
-    i = int(np.argmin(np.abs(np.asarray(seg["y"]) - y0)))
-    assert seg["sigma_mm"][i] == pytest.approx(np.std(x_cross), rel=0.03)
-
-
-def test_surface_refuses_too_few_or_collinear_positions():
-    with pytest.raises(FitError, match="at least 3 positions"):
-        fit_surface([0, 1], [0, 1], [1, 2], [0.1, 0.1])
-    with pytest.raises(FitError, match="lie on a line"):
-        fit_surface([0, 1, 2, 3], [0, 1, 2, 3], [1, 2, 3, 4], [0.1] * 4)
-    with pytest.raises(ConfigError, match="degree of 1 or 2"):
-        fit_surface([0, 1, 2], [0, 1, 0], [1, 2, 3], [0.1] * 3, degree=3)
-
-
-def test_no_worker_pool_is_needed_to_read_the_demo_manifest():
-    # the bundled demo wafer (invented) is a valid manifest with a 3 x 3 grid
-    demo = os.path.join(os.path.dirname(__file__), "..", "..", "data_examples", "wafer",
-                        "manifest.csv")
-    specs = read_manifest(demo)
-    assert len(specs) == 9
-    assert sorted({s.x_mm for s in specs}) == [-12.0, 0.0, 12.0]
-    assert all(s.file.is_file() for s in specs)
-
-
-@pytest.mark.parametrize("second", ["absolute", "dotdot", "symlink"])
-def test_the_same_map_under_two_names_is_refused_naming_both_rows(tmp_path, second):
-    # common practice, no published source: one map is one position, however it is named
-    (tmp_path / "maps").mkdir()
-    (tmp_path / "maps" / "a.nc").write_bytes(b"invented")
-    (tmp_path / "other").mkdir()
-    name = {"absolute": str(tmp_path / "maps" / "a.nc"),
-            "dotdot": "other/../maps/a.nc",
-            "symlink": "link.nc"}[second]
-    if second == "symlink":
-        os.symlink(tmp_path / "maps" / "a.nc", tmp_path / "link.nc")
-    path = _manifest(tmp_path, f"file,x [mm],y [mm]\nmaps/a.nc,1,2\n{name},3,4\n")
-    with pytest.raises(DataError, match=r"row 2 \(line 3\).*is the same map as 'maps/a.nc' "
-                       r"in row 1 \(line 2\)"):
-        read_manifest(path)
-
-
 def test_embedded_cluster_listens_on_loopback_without_dashboard(monkeypatch):
     # common practice, no published source: a survey's cluster is not reachable from the
     # network (no 0.0.0.0, no dashboard) and its scratch folder is stated
     import dask.distributed
 
-    from polkit.jobs.survey import run as survey
+    from polkit.jobs.survey import scheduler
 
     seen = {}
 
@@ -483,7 +307,7 @@ def test_embedded_cluster_listens_on_loopback_without_dashboard(monkeypatch):
 
     monkeypatch.setattr(dask.distributed, "LocalCluster", FakeCluster)
     monkeypatch.setattr(dask.distributed, "Client", FakeClient)
-    with survey._client(None, 1):
+    with scheduler.client_for(None, 1):
         pass
     assert seen["host"] == "127.0.0.1" and seen["dashboard_address"] is None
     assert seen["closed"] and os.path.isdir(seen["local_directory"])
