@@ -31,6 +31,9 @@ _LAZY = {
     "fit_power": "polkit.jobs.power.run",
     "energy_budget": "polkit.jobs.budget.run",
     "run_survey": "polkit.jobs.survey.run",
+    "SamplerSettings": "polkit.inference.settings",
+    "GateSettings": "polkit.inference.settings",
+    "LoadOptions": "polkit.data.options",
 }
 
 __all__ = ["__version__", *_LAZY, *_ERRORS]

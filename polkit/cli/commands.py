@@ -28,6 +28,7 @@ def _camera(args):
 
 #: model names (as summary.json writes them, and short forms) -> the library's model option
 def _cmd_survey(args) -> int:
+    from polkit.inference.settings import SamplerSettings
     from polkit.jobs.survey.run import run_survey
 
     result = run_survey(
@@ -37,8 +38,7 @@ def _cmd_survey(args) -> int:
         scheduler=args.scheduler,
         out=args.out,
         seed=args.seed,
-        progress=_progress(args),
-        max_steps=args.max_steps,
+        sampler=SamplerSettings(max_steps=args.max_steps, progress=_progress(args)),
         retry_failed=args.retry_failed,
     )
     print(result.table())

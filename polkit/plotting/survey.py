@@ -81,7 +81,7 @@ def wafer_map(ds, name: str, *, ax=None, statistic: str = "median", surface=None
     Parameters
     ----------
     ds
-        The survey Dataset (:func:`polkit.jobs.survey.run.assemble_survey`).
+        The survey Dataset (:func:`polkit.jobs.survey.result.assemble_survey`).
     name
         A variable on ``(position, statistic)`` or ``position``.
     ax
@@ -89,7 +89,7 @@ def wafer_map(ds, name: str, *, ax=None, statistic: str = "median", surface=None
     statistic
         Which summary value colours the markers.
     surface
-        A :class:`~polkit.jobs.survey.run.SurfaceFit` of the detuning: its zero line is
+        A :class:`~polkit.jobs.survey.surface.SurfaceFit` of the detuning: its zero line is
         drawn.
     norm, cmap
         Colour scaling (default: from the data; diverging about zero for detuning).

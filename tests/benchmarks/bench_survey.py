@@ -23,6 +23,8 @@ from pathlib import Path
 
 import numpy as np
 
+import polkit
+
 SEED = 20261207
 GRID = (-12.0, -4.0, 4.0, 12.0)
 
@@ -64,7 +66,8 @@ def _one(manifest: Path, out: Path, workers: int) -> dict:
     from polkit.jobs.survey.run import run_survey
 
     t0 = time.perf_counter()
-    result = run_survey(manifest, out=out, workers=workers, seed=SEED, progress=False,
+    result = run_survey(manifest, out=out, workers=workers, seed=SEED,
+                        sampler=polkit.SamplerSettings(progress=False),
                         figures=False)
     wall = time.perf_counter() - t0
     seconds, finished = [], []
