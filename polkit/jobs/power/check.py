@@ -42,7 +42,8 @@ from typing import Any
 import numpy as np
 from scipy import stats
 
-from polkit.jobs.power.problem import Channel, PowerProblem
+from polkit.jobs.power.channels import Channel
+from polkit.jobs.power.problem import PowerProblem
 
 __all__ = ["ALPHA", "NoiseFloor", "noise_floor", "model_check", "observed_jumps", "check_line"]
 

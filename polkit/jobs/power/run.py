@@ -37,8 +37,9 @@ import xarray as xr
 
 from polkit.errors import ConfigError, DataWarning
 from polkit.inference import FitResult, SamplerOutput, SamplerSettings
+from polkit.jobs.power.calibrated import calibrated_quantities, ciuti_estimate
 from polkit.jobs.power.check import check_line, model_check, observed_jumps
-from polkit.jobs.power.problem import PowerProblem, calibrated_quantities, ciuti_estimate
+from polkit.jobs.power.problem import PowerProblem
 from polkit.jobs.power.stages import (
     EXTRACTION_FIGURE,
     PowerSetup,

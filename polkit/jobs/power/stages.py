@@ -30,14 +30,9 @@ from polkit.config.quantities import read_table
 from polkit.errors import ConfigError, DataError
 from polkit.files import file_sha256
 from polkit.inference import FitResult, LogPosterior, MapResult, Prior, apply_priors, find_map
-from polkit.jobs.power.problem import (
-    MIN_POINTS,
-    MODELS,
-    PowerProblem,
-    ciuti_estimate,
-    linewidth_prior,
-    sweep_segments,
-)
+from polkit.jobs.power.calibrated import ciuti_estimate
+from polkit.jobs.power.channels import MIN_POINTS, sweep_segments
+from polkit.jobs.power.problem import MODELS, PowerProblem, linewidth_prior
 from polkit.jobs.steps import clip_into
 from polkit.models.calibration import DensityCalibration, load_calibration
 from polkit.models.pump_spot import SPOTS
