@@ -7,13 +7,13 @@ import pytest
 from scipy import constants
 from scipy.integrate import quad
 
+from polkit.config.calibration import load_calibration
 from polkit.errors import ConfigError
 from polkit.models.calibration import (
     DensityCalibration,
     UncertainInput,
     cw_density,
     gaussian_spot_area,
-    load_calibration,
     photon_flux,
     pulsed_density,
 )

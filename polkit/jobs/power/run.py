@@ -10,7 +10,7 @@ takes them in order:
    power by :func:`polkit.linefit.lines.extract_observables` (the extraction figure is written so
    a person can check it); job-level checks (:func:`check_series`): sweep labels for
    coherent drive, powers monotonic within each sweep, no empty sweep; calibration
-   (:func:`polkit.models.calibration.load_calibration`) and dispersion result
+   (:func:`polkit.config.calibration.read_calibration`) and dispersion result
    (:meth:`polkit.inference.FitResult.load`) read and checked before any sampling; default
    priors from the data ranges (:mod:`polkit.jobs.power.problem`), user priors on top;
 2. :func:`power_start` and :func:`refine_mode`: an automatic starting point, the MAP;

@@ -26,7 +26,7 @@ from typing import Any
 import numpy as np
 import xarray as xr
 
-from polkit.config.quantities import read_table
+from polkit.config.calibration import read_calibration
 from polkit.errors import ConfigError, DataError
 from polkit.files import file_sha256
 from polkit.inference import FitResult, LogPosterior, MapResult, Prior, apply_priors, find_map
@@ -34,7 +34,7 @@ from polkit.jobs.power.calibrated import ciuti_estimate
 from polkit.jobs.power.channels import MIN_POINTS, sweep_segments
 from polkit.jobs.power.problem import MODELS, PowerProblem, linewidth_prior
 from polkit.jobs.steps import clip_into
-from polkit.models.calibration import DensityCalibration, load_calibration
+from polkit.models.calibration import DensityCalibration
 from polkit.models.pump_spot import SPOTS
 
 __all__ = ["check_series", "PowerSetup", "prepare_power", "power_start", "refine_mode"]
@@ -148,42 +148,6 @@ def _table(series: xr.Dataset) -> xr.Dataset:
     out.attrs = {k: str(v) for k, v in series.attrs.items()
                  if k in ("source", "sample", "position", "history", "noise_model", "profile")}
     return out
-
-
-#: calibration-file key of the pump-spot profile (read here: the density calibration
-#: itself does not depend on it)
-SPOT_KEY = "spot"
-
-
-def _calibration(calibration) -> tuple[DensityCalibration | None, dict[str, Any], str | None]:
-    """(calibration, its provenance, the spot profile it names or None)."""
-    if calibration is None:
-        return None, {}, None
-    spot = None
-    if isinstance(calibration, DensityCalibration):
-        cal = calibration
-        info = {"calibration": cal.to_dict()}
-    else:
-        table, path = read_table(calibration, what="calibration")
-        if SPOT_KEY in table:
-            spot = table.pop(SPOT_KEY)
-            if spot not in SPOTS:
-                raise ConfigError(f"expected one of {', '.join(map(repr, SPOTS))}, found "
-                                  f"{spot!r}; e.g. spot = \"gaussian\"", path=path,
-                                  key=SPOT_KEY)
-            try:
-                cal = load_calibration(table)
-            except ConfigError as exc:  # the rest of the file, refused with its path
-                raise ConfigError(exc.reason, path=path, key=exc.key) from None
-        else:
-            cal = load_calibration(calibration)
-        info = {"calibration": cal.to_dict()}
-        if spot is not None:
-            info["calibration"][SPOT_KEY] = spot
-        if isinstance(calibration, (str, os.PathLike)):
-            info["calibration_file"] = str(calibration)
-            info["calibration_sha256"] = file_sha256(calibration)
-    return cal, info, spot
 
 
 def _resolve_spot(spot, from_calibration, model) -> str:
@@ -398,7 +362,7 @@ def prepare_power(
     else:
         series = raw
     check_series(series, model, path=where)
-    cal, cal_info, cal_spot = _calibration(calibration)
+    cal, cal_info, cal_spot = read_calibration(calibration)
     spot = _resolve_spot(spot, cal_spot, model)
     disp_draws, disp_info = _dispersion(dispersion)
 
