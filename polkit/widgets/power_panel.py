@@ -29,7 +29,9 @@ import numpy as np
 
 from polkit.inference import SamplerSettings
 from polkit.jobs.power import run as pw
+from polkit.jobs.power import stages
 from polkit.jobs.power.problem import PowerProblem
+from polkit.jobs.steps import sample_problem
 from polkit.models import coherent
 from polkit.plotting.power import SWEEP_COLOURS, power_grid, residual_points
 from polkit.widgets._canvas import LiveFigure
@@ -66,7 +68,7 @@ class PowerPanel(FitPanel):
 
     default_steps = pw.DEFAULT_STEPS
 
-    def __init__(self, problem: PowerProblem, setup: pw.PowerSetup, *, seed, max_steps: int,
+    def __init__(self, problem: PowerProblem, setup: stages.PowerSetup, *, seed, max_steps: int,
                  min_steps: int | None, n_walkers: int | None, out):
         import ipywidgets as w
 
@@ -81,7 +83,7 @@ class PowerPanel(FitPanel):
         self.options = setup.options
         self._init_state(seed=seed, min_steps=min_steps, n_walkers=n_walkers)
 
-        x0, self.guess = pw.power_start(problem, log_margin=True)
+        x0, self.guess = stages.power_start(problem, log_margin=True)
         self.space = problem.space
         self._theta = x0
         self._auto_start = x0.copy()
@@ -222,8 +224,8 @@ class PowerPanel(FitPanel):
     def _find_mode(self):
         """The mode started from the sliders and from the automatic guess (the better kept)."""
         x_sl = np.array([clip_into(p, v) for p, v in zip(self.space, self.theta(), strict=True)])
-        candidates = [pw.refine_mode(self.problem, x_sl),
-                      pw.refine_mode(self.problem, self._auto_start)]
+        candidates = [stages.refine_mode(self.problem, x_sl),
+                      stages.refine_mode(self.problem, self._auto_start)]
         return max(candidates, key=lambda c: c.log_post)
 
     def _residual_png(self, theta: np.ndarray, label: str) -> bytes:
@@ -259,7 +261,7 @@ class PowerPanel(FitPanel):
         def run(log_likelihood, stop_event):
             sampler = SamplerSettings(n_walkers=walkers, progress=False, stop_event=stop_event,
                                       **steps)
-            output = pw.sample_problem(problem, start, sampler=sampler,
+            output = sample_problem(problem, start, sampler=sampler,
                                        log_likelihood=log_likelihood, seed=self.seed)
             return pw.build_power_result(problem, output, self.setup, provenance=provenance)
 
@@ -314,7 +316,7 @@ def power_panel(
     DataError, ConfigError
         Bad series, options, priors or calibration (naming the file and the field).
     """
-    problem, setup = pw.prepare_power(
+    problem, setup = stages.prepare_power(
         source, model=model, calibration=calibration, dispersion=dispersion, priors=priors,
         cube_refusal="the panel takes a table of observables, found a spectra cube; reduce it "
         "with polkit.linefit.lines.extract_observables first")

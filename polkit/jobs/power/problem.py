@@ -155,7 +155,7 @@ class PowerProblem:
         ----------
         series
             A canonical series table (dims ``power`` or ``point``); the job-level checks of
-            :func:`polkit.jobs.power.run.check_series` are assumed done.
+            :func:`polkit.jobs.power.stages.check_series` are assumed done.
         model
             ``"coherent"`` or ``"reservoir"``.
         path

@@ -1,24 +1,28 @@
 """The power-series job: a pump-power series in, thresholds and interaction constants out.
 
-Each step is a public stage (a decision a practitioner would otherwise make by hand), here
-or in :mod:`polkit.jobs.power.stages`, so the interactive panel
-(:mod:`polkit.widgets.power_panel`) takes the same steps one at a time; :func:`fit_power`
-takes them in order:
+Each step is a public stage (a decision a practitioner would otherwise make by hand) in
+:mod:`polkit.jobs.power.stages`, :mod:`polkit.jobs.steps` or here, so the interactive
+panel (:mod:`polkit.widgets.power_panel`) takes the same steps one at a time;
+:func:`fit_power` takes them in order:
 
-1. :func:`prepare_power`: load the series (:func:`polkit.data.load_series`) or take an
-   in-memory Dataset; a spectra cube is reduced to intensity, peak energy and linewidth per
-   power by :func:`polkit.linefit.lines.extract_observables` (the extraction figure is written so
-   a person can check it); job-level checks (:func:`check_series`): sweep labels for
-   coherent drive, powers monotonic within each sweep, no empty sweep; calibration
-   (:func:`polkit.config.calibration.read_calibration`) and dispersion result
+1. :func:`~polkit.jobs.power.stages.prepare_power`: load the series
+   (:func:`polkit.data.load_series`) or take an in-memory Dataset; a spectra cube is
+   reduced to intensity, peak energy and linewidth per power by
+   :func:`polkit.linefit.lines.extract_observables` (the extraction figure is written so a
+   person can check it); job-level checks (:func:`~polkit.jobs.power.stages.check_series`):
+   sweep labels for coherent drive, powers monotonic within each sweep, no empty sweep;
+   calibration (:func:`polkit.config.calibration.read_calibration`) and dispersion result
    (:meth:`polkit.inference.FitResult.load`) read and checked before any sampling; default
    priors from the data ranges (:mod:`polkit.jobs.power.problem`), user priors on top;
-2. :func:`power_start` and :func:`refine_mode`: an automatic starting point, the MAP;
-3. :func:`sample_problem`: emcee until the convergence gate passes, checkpointed in HDF5;
+2. :func:`~polkit.jobs.power.stages.power_start` and
+   :func:`~polkit.jobs.power.stages.refine_mode`: an automatic starting point, the MAP;
+3. :func:`~polkit.jobs.steps.sample_problem`: emcee until the convergence gate passes,
+   checkpointed in HDF5;
 4. :func:`build_power_result`: derived quantities per posterior draw; calibration inputs
-   propagated per draw; the model check against a noise floor that owes nothing to the fit
-   (:func:`polkit.jobs.power.check.model_check`, the ``model_check`` entry of
-   summary.json); the result with notes; then files and figures.
+   propagated per draw (:mod:`polkit.jobs.power.calibrated`); the model check against a
+   noise floor that owes nothing to the fit (:func:`polkit.jobs.power.check.model_check`,
+   the ``model_check`` entry of summary.json); the result with notes; then files and
+   figures.
 """
 
 from __future__ import annotations
@@ -43,13 +47,11 @@ from polkit.jobs.power.problem import PowerProblem
 from polkit.jobs.power.stages import (
     EXTRACTION_FIGURE,
     PowerSetup,
-    check_series,
     power_start,
     prepare_power,
     refine_mode,
 )
 from polkit.jobs.steps import (
-    CHECKPOINT,
     checkpoint_file,
     job_identity,
     job_sampler,
@@ -60,22 +62,8 @@ from polkit.jobs.steps import (
 )
 from polkit.models.calibration import DensityCalibration
 
-__all__ = [
-    "fit_power",
-    "PowerFit",
-    "PowerCalibration",
-    "ExtractionWindow",
-    "DEFAULT_STEPS",
-    "CHECKPOINT",
-    "EXTRACTION_FIGURE",
-    "check_series",
-    "PowerSetup",
-    "prepare_power",
-    "power_start",
-    "refine_mode",
-    "sample_problem",
-    "build_power_result",
-]
+__all__ = ["fit_power", "PowerFit", "PowerCalibration", "ExtractionWindow", "DEFAULT_STEPS",
+           "build_power_result"]
 
 log = logging.getLogger(__name__)
 
@@ -172,6 +160,21 @@ def build_power_result(
                      "an independent draw of the calibration's log-normal inputs (the "
                      "likelihood does not depend on them)")
 
+    prov = _provenance(problem, output, setup, notes, provenance)
+    attrs = {"notes": json.dumps(notes), "calibrated": int(cal is not None),
+             "intensity_units": problem.intensity_units, "model_check": check}
+    if problem.model == "coherent":
+        attrs["spot"] = problem.spot
+    return PowerFit.from_samples(output, space, derived=derived, model=setup.model,
+                                 kind="power", observed=setup.table, provenance=prov,
+                                 extra_attrs=attrs)
+
+
+def _provenance(problem: PowerProblem, output: SamplerOutput, setup: PowerSetup,
+                notes: list[str], provenance: Mapping[str, Any] | None) -> dict[str, Any]:
+    """The provenance of a power result: input, notes, priors, sweeps, calibration, options."""
+    opts = setup.options
+    lw_prior = setup.linewidth_prior
     prov: dict[str, Any] = {"input_sha256": setup.sha256, "input": setup.source_name,
                             "notes": notes,
                             "linewidth_prior": None if lw_prior is None else
@@ -194,13 +197,7 @@ def build_power_result(
     e_b, a_b = opts.get("exciton_binding_meV"), opts.get("bohr_radius_nm")
     if e_b is not None and a_b is not None:
         prov["exciton_interaction_estimate_ueV_um2"] = ciuti_estimate(float(e_b), float(a_b))
-    attrs = {"notes": json.dumps(notes), "calibrated": int(cal is not None),
-             "intensity_units": problem.intensity_units, "model_check": check}
-    if problem.model == "coherent":
-        attrs["spot"] = problem.spot
-    return PowerFit.from_samples(output, space, derived=derived, model=setup.model,
-                                 kind="power", observed=setup.table, provenance=prov,
-                                 extra_attrs=attrs)
+    return prov
 
 
 # --------------------------------------------------------------------------------------
@@ -233,11 +230,10 @@ def fit_power(
         ``"coherent"`` (resonant drive, up and down sweeps fitted jointly) or
         ``"reservoir"`` (nonresonant drive through an exciton reservoir).
     calibration
-        A :class:`~polkit.jobs.power.options.PowerCalibration` (density calibration,
-        quantum wells, exciton binding energy and Bohr radius, reservoir lifetime, pump-spot
-        profile), or the density calibration alone: a TOML file, a dict in the same form,
-        or a :class:`~polkit.models.calibration.DensityCalibration`.  Without a density
-        calibration only the identifiable products are reported, and the result says so.
+        A :class:`~polkit.jobs.power.options.PowerCalibration` (density calibration, sample
+        constants, pump-spot profile), or the density calibration alone (TOML file, dict or
+        :class:`~polkit.models.calibration.DensityCalibration`).  Without one only the
+        identifiable products are reported, and the result says so.
     dispersion
         Output folder of a dispersion fit (or its result): its ``exciton_fraction_k0``
         draws give ``exciton_interaction_constant``; its ``lp_linewidth_k0`` sets the
@@ -245,10 +241,8 @@ def fit_power(
     priors
         TOML file or dict of priors overriding the defaults (keys: parameter names).
     window
-        For a spectra cube: the extraction window
-        (:class:`~polkit.jobs.power.options.ExtractionWindow`, or a dict
-        ``{"energy": (low, high) eV, "angle": (low, high)}`` replacing the default k = 0
-        columns).
+        For a spectra cube: the :class:`~polkit.jobs.power.options.ExtractionWindow` (or a
+        dict ``{"energy": ..., "angle": ...}``).
     seed
         Root seed (recorded; the same seed gives the same result).
     resume
@@ -258,10 +252,8 @@ def fit_power(
         is written when ``None``.
     sampler
         :class:`~polkit.inference.SamplerSettings` (or a dict of its fields): ``max_steps``,
-        ``min_steps`` (defaults 8000 and 400), ``n_walkers`` (default max(32, 4 P)),
-        ``progress`` (a tqdm bar), ``strict`` (four ensembles gated on nested R-hat <=
-        1.01), ``stop_event`` (a :class:`threading.Event` that ends sampling early; the
-        result is marked not converged).
+        ``min_steps`` (defaults 8000, 400), ``n_walkers`` (default max(32, 4 P)),
+        ``progress``, ``strict``, ``stop_event`` (ends sampling early, not converged).
     figures
         Write the result figures to ``out``.  For a cube the extraction figure
         (``extraction.png``) is written whenever ``out`` is given.
