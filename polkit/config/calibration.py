@@ -65,7 +65,8 @@ def load_calibration(source: str | os.PathLike | Mapping[str, Any]) -> DensityCa
     Parameters
     ----------
     source
-        Path to a ``.toml`` file, or a mapping with the same structure.
+        The calibration file (TOML), or a dict of the same form (e.g. the
+        :meth:`~polkit.models.calibration.DensityCalibration.to_dict` of another).
 
     Returns
     -------
