@@ -5,29 +5,13 @@ step, so every input (spot size, photon energy, coupling efficiency, repetition 
 lifetime) carries an uncertainty that becomes a log-normal prior, and densities are
 computed per draw.
 
-A calibration file is TOML with explicit units on every quantity, for example
-(invented numbers)::
-
-    drive = "pulsed"                  # or "cw"
-    note = "invented example"
-    spot_fwhm = {value = 3.0, error = 0.3, units = "um"}        # or spot_area (um2)
-    photon_energy = {value = 1.612, units = "eV"}               # exact when no error
-    coupling_efficiency = {value = 0.3, rel_error = 0.3, units = "1"}
-    detection_efficiency = {value = 0.05, rel_error = 0.5, units = "1"}   # optional
-    polariton_lifetime = {value = 10.0, rel_error = 0.2, units = "ps"}    # optional (cw)
-    pulse_duration = {value = 2.0, units = "ps"}                # pulsed only
-    repetition_rate = {value = 80.0, units = "MHz"}             # pulsed only
-
-``error`` is absolute (same units as ``value``), ``rel_error`` relative; either becomes
-the log-normal width ``sigma_log = error / value`` around the median ``value``.
-Efficiencies are log-normal truncated to (0, 1].
+The file form (TOML with explicit units on every quantity) is read by
+:func:`polkit.config.calibration.load_calibration`.
 """
 
 from __future__ import annotations
 
-import logging
 import math
-import os
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from typing import Any, Literal
@@ -37,16 +21,13 @@ from numpy.typing import ArrayLike, NDArray
 from scipy import constants as _c
 from scipy import stats
 
-from polkit.config.quantities import quantity, read_table, refuse_unknown, require_quantity
 from polkit.errors import ConfigError, DataError
-
-logger = logging.getLogger(__name__)
 
 __all__ = [
     "UncertainInput",
     "draw_inputs",
     "DensityCalibration",
-    "load_calibration",
+    "INPUT_FIELDS",
     "gaussian_spot_area",
     "photon_flux",
     "photon_flux_density",
@@ -54,18 +35,8 @@ __all__ = [
     "pulsed_density",
 ]
 
-# Accepted units per dimension and their factor to polkit's unit (first entry).
-_UNITS: dict[str, dict[str, float]] = {
-    "length": {"um": 1.0, "µm": 1.0, "nm": 1e-3, "mm": 1e3},
-    "area": {"um2": 1.0, "um^2": 1.0, "µm2": 1.0, "µm^2": 1.0},
-    "energy": {"eV": 1.0, "meV": 1e-3},
-    "time": {"ps": 1.0, "fs": 1e-3, "ns": 1e3},
-    "frequency": {"MHz": 1.0, "Hz": 1e-6, "kHz": 1e-3, "GHz": 1e3},
-    "fraction": {"1": 1.0},
-}
-
-# File key -> (dimension, attribute name, upper bound or None)
-_QUANTITIES: dict[str, tuple[str, str, float | None]] = {
+#: file key -> (dimension, attribute name, upper bound or None) of every input
+INPUT_FIELDS: dict[str, tuple[str, str, float | None]] = {
     "spot_fwhm": ("length", "spot_fwhm_um", None),
     "spot_area": ("area", "spot_area_um2", None),
     "photon_energy": ("energy", "photon_energy_eV", None),
@@ -137,9 +108,9 @@ def draw_inputs(inputs: Mapping[str, UncertainInput], rng: np.random.Generator,
 class DensityCalibration:
     """Everything needed to turn a pump power (mW) into a density (1/um^2), with uncertainties.
 
-    Build it with :func:`load_calibration`; the constructor checks consistency (exactly
-    one of spot FWHM or spot area; repetition rate and pulse duration for pulsed drive
-    only) and raises :class:`~polkit.errors.ConfigError` naming the key.
+    Build it with :func:`polkit.config.calibration.load_calibration`; the constructor checks
+    consistency (exactly one of spot FWHM or spot area; repetition rate and pulse duration
+    for pulsed drive only) and raises :class:`~polkit.errors.ConfigError` naming the key.
     """
 
     drive: Literal["cw", "pulsed"]
@@ -183,7 +154,7 @@ class DensityCalibration:
             )
         if self.drive == "cw":
             for key in ("repetition_rate", "pulse_duration"):
-                if getattr(self, _QUANTITIES[key][1]) is not None:
+                if getattr(self, INPUT_FIELDS[key][1]) is not None:
                     raise ConfigError(
                         f"{key} applies to pulsed drive only, found it with drive = 'cw'; "
                         "remove it or set drive = 'pulsed'",
@@ -194,7 +165,7 @@ class DensityCalibration:
     def _inputs(self) -> dict[str, UncertainInput]:
         return {
             attr: getattr(self, attr)
-            for _, attr, _ in _QUANTITIES.values()
+            for _, attr, _ in INPUT_FIELDS.values()
             if getattr(self, attr) is not None
         }
 
@@ -286,55 +257,11 @@ class DensityCalibration:
         out: dict[str, Any] = {"drive": self.drive}
         if self.note:
             out["note"] = self.note
-        for key, (_, attr, _) in _QUANTITIES.items():
+        for key, (_, attr, _) in INPUT_FIELDS.items():
             q = getattr(self, attr)
             if q is not None:
                 out[key] = q.to_dict()
         return out
-
-
-def load_calibration(source: str | os.PathLike | Mapping[str, Any]) -> DensityCalibration:
-    """Read and check a density calibration from a TOML file or an equivalent dict.
-
-    The file is parsed with :mod:`tomllib` (never evaluated).  Refused, with a
-    :class:`~polkit.errors.ConfigError` naming the key: unknown keys, quantities without
-    ``units`` or with units of the wrong dimension, non-numeric or non-finite values,
-    sizes, energies, times or rates <= 0, efficiencies outside (0, 1], negative errors,
-    both ``error`` and ``rel_error``.  The format is in the module docstring.
-
-    Parameters
-    ----------
-    source
-        Path to a ``.toml`` file, or a mapping with the same structure.
-
-    Returns
-    -------
-    DensityCalibration
-        Values converted to polkit's units (um, um2, eV, ps, MHz).
-    """
-    raw, path = read_table(source, what="calibration")
-    refuse_unknown(raw, ("drive", "note", *_QUANTITIES), path)
-    if "drive" not in raw:
-        raise ConfigError(
-            "missing; expected drive = \"cw\" or drive = \"pulsed\"", path=path, key="drive"
-        )
-    drive = raw["drive"]
-    if drive not in ("cw", "pulsed"):
-        raise ConfigError(f"expected 'cw' or 'pulsed', found {drive!r}", path=path, key="drive")
-    note = raw.get("note", "")
-    if not isinstance(note, str):
-        raise ConfigError(f"expected text, found {type(note).__name__}", path=path, key="note")
-    for key in ("photon_energy", "coupling_efficiency"):
-        require_quantity(raw, key, _UNITS[_QUANTITIES[key][0]], path)
-    fields: dict[str, UncertainInput] = {}
-    for key, (dim, attr, upper) in _QUANTITIES.items():
-        if key in raw:
-            value, sigma, units = quantity(raw[key], key, dim=dim, units=_UNITS[dim],
-                                           upper=upper, path=path)
-            fields[attr] = UncertainInput(value=value, sigma_log=sigma, units=units, upper=upper)
-    cal = DensityCalibration(drive=drive, note=note, source=path, **fields)
-    logger.debug("loaded density calibration %s", cal.to_dict())
-    return cal
 
 
 def _checked(name: str, value: ArrayLike, *, nonneg: bool = False) -> NDArray:

@@ -29,7 +29,9 @@ import numpy as np
 
 from polkit.inference import SamplerSettings
 from polkit.jobs.power import run as pw
+from polkit.jobs.power import stages
 from polkit.jobs.power.problem import PowerProblem
+from polkit.jobs.steps import sample_problem
 from polkit.models import coherent
 from polkit.plotting.power import SWEEP_COLOURS, power_grid, residual_points
 from polkit.widgets._canvas import LiveFigure
@@ -66,26 +68,22 @@ class PowerPanel(FitPanel):
 
     default_steps = pw.DEFAULT_STEPS
 
-    def __init__(self, problem: PowerProblem, *, table, sha: str, source_name: str,
-                 model: str, cal, cal_info: dict, disp_draws: dict, disp_info: dict,
-                 lw_prior, lw_note, notes: list[str], options: dict, seed, max_steps: int,
+    def __init__(self, problem: PowerProblem, setup: stages.PowerSetup, *, seed, max_steps: int,
                  min_steps: int | None, n_walkers: int | None, out):
         import ipywidgets as w
 
         self.problem = problem
-        self.setup = pw.PowerSetup(
-            table=table, sha256=sha, source_name=source_name, model=model, calibration=cal,
-            calibration_info=cal_info, dispersion_draws=disp_draws, dispersion_info=disp_info,
-            linewidth_prior=lw_prior, linewidth_note=lw_note, notes=notes, options=options)
-        self.table, self.sha, self.source_name, self.model = table, sha, source_name, model
-        self.cal, self.cal_info = cal, cal_info
-        self.disp_draws, self.disp_info = disp_draws, disp_info
-        self.lw_prior, self.lw_note = lw_prior, lw_note
-        self.notes = notes
-        self.options = options
+        self.setup = setup
+        self.table, self.sha = setup.table, setup.sha256
+        self.source_name, self.model = setup.source_name, setup.model
+        self.cal, self.cal_info = setup.calibration, setup.calibration_info
+        self.disp_draws, self.disp_info = setup.dispersion_draws, setup.dispersion_info
+        self.lw_prior, self.lw_note = setup.linewidth_prior, setup.linewidth_note
+        self.notes = setup.notes
+        self.options = setup.options
         self._init_state(seed=seed, min_steps=min_steps, n_walkers=n_walkers)
 
-        x0, self.guess = pw.power_start(problem, log_margin=True)
+        x0, self.guess = stages.power_start(problem, log_margin=True)
         self.space = problem.space
         self._theta = x0
         self._auto_start = x0.copy()
@@ -100,7 +98,8 @@ class PowerPanel(FitPanel):
             self.sliders[p.name] = s
 
         self._init_actions(
-            max_steps=max_steps, out_folder=str(out) if out is not None else f"polkit-out/{model}",
+            max_steps=max_steps,
+            out_folder=str(out) if out is not None else f"polkit-out/{self.model}",
             ready="ready: move the sliders until the curves follow the data, then press Most "
                   "probable point")
 
@@ -112,8 +111,8 @@ class PowerPanel(FitPanel):
 
         buttons = w.HBox([self.refine_button, self.sample_button, self.stop_button,
                           self.max_steps, self.progress])
-        title = w.HTML(f"<b>power-series panel</b> &mdash; {html.escape(source_name)} "
-                       f"({html.escape(model)} model)")
+        title = w.HTML(f"<b>power-series panel</b> &mdash; {html.escape(self.source_name)} "
+                       f"({html.escape(self.model)} model)")
         self.widget = w.VBox([
             title, self.plot_image, w.HBox([w.VBox(list(self.sliders.values())), self.readout]),
             buttons, self.status, w.HBox([self.save_button, self.out_folder]),
@@ -225,8 +224,8 @@ class PowerPanel(FitPanel):
     def _find_mode(self):
         """The mode started from the sliders and from the automatic guess (the better kept)."""
         x_sl = np.array([clip_into(p, v) for p, v in zip(self.space, self.theta(), strict=True)])
-        candidates = [pw.refine_mode(self.problem, x_sl),
-                      pw.refine_mode(self.problem, self._auto_start)]
+        candidates = [stages.refine_mode(self.problem, x_sl),
+                      stages.refine_mode(self.problem, self._auto_start)]
         return max(candidates, key=lambda c: c.log_post)
 
     def _residual_png(self, theta: np.ndarray, label: str) -> bytes:
@@ -262,7 +261,7 @@ class PowerPanel(FitPanel):
         def run(log_likelihood, stop_event):
             sampler = SamplerSettings(n_walkers=walkers, progress=False, stop_event=stop_event,
                                       **steps)
-            output = pw.sample_problem(problem, start, sampler=sampler,
+            output = sample_problem(problem, start, sampler=sampler,
                                        log_likelihood=log_likelihood, seed=self.seed)
             return pw.build_power_result(problem, output, self.setup, provenance=provenance)
 
@@ -288,10 +287,6 @@ def power_panel(
     min_steps: int | None = None,
     n_walkers: int | None = None,
     out: str | os.PathLike | None = None,
-    n_wells: int | None = None,
-    exciton_binding_meV: float | None = None,
-    bohr_radius_nm: float | None = None,
-    reservoir_lifetime_ps: float | tuple[float, float] | None = None,
 ) -> PowerPanel:
     """Build the interactive power-series panel.
 
@@ -304,9 +299,9 @@ def power_panel(
     model
         ``"coherent"`` or ``"reservoir"``.
     calibration, dispersion, priors
-        As in :func:`~polkit.jobs.power.run.fit_power` (used when the result is built).
-    n_wells, exciton_binding_meV, bohr_radius_nm, reservoir_lifetime_ps
-        As in :func:`~polkit.jobs.power.run.fit_power` (used when the result is built).
+        As in :func:`~polkit.jobs.power.run.fit_power` (used when the result is built);
+        ``calibration`` may be a :class:`~polkit.jobs.power.options.PowerCalibration`
+        with the sample's constants and the pump-spot profile.
     seed, max_steps, min_steps, n_walkers
         Sampler settings.
     out
@@ -321,17 +316,10 @@ def power_panel(
     DataError, ConfigError
         Bad series, options, priors or calibration (naming the file and the field).
     """
-    problem, setup = pw.prepare_power(
+    problem, setup = stages.prepare_power(
         source, model=model, calibration=calibration, dispersion=dispersion, priors=priors,
-        n_wells=n_wells, exciton_binding_meV=exciton_binding_meV, bohr_radius_nm=bohr_radius_nm,
-        reservoir_lifetime_ps=reservoir_lifetime_ps,
         cube_refusal="the panel takes a table of observables, found a spectra cube; reduce it "
         "with polkit.linefit.lines.extract_observables first")
     steps = int(max_steps) if max_steps is not None else pw.DEFAULT_STEPS["max_steps"]
-    return PowerPanel(problem, table=setup.table, sha=setup.sha256,
-                      source_name=setup.source_name, model=model, cal=setup.calibration,
-                      cal_info=setup.calibration_info, disp_draws=setup.dispersion_draws,
-                      disp_info=setup.dispersion_info, lw_prior=setup.linewidth_prior,
-                      lw_note=setup.linewidth_note, notes=setup.notes, options=setup.options,
-                      seed=seed, max_steps=steps, min_steps=min_steps, n_walkers=n_walkers,
-                      out=out)
+    return PowerPanel(problem, setup, seed=seed, max_steps=steps, min_steps=min_steps,
+                      n_walkers=n_walkers, out=out)

@@ -17,7 +17,9 @@ from coherent_loops import centre_thresholds, gaussian_loop, loop_powers, noisy_
 
 from polkit.cli import EXIT_MODEL_CHECK, main
 from polkit.errors import ConvergenceWarning
+from polkit.inference import SamplerSettings
 from polkit.jobs.power.check import _runs, noise_floor
+from polkit.jobs.power.options import PowerCalibration
 from polkit.jobs.power.problem import PowerProblem
 from polkit.jobs.power.run import fit_power
 
@@ -30,8 +32,10 @@ POWERS = loop_powers(0.3, 12.0, 20)
 def _fit(series, spot, *, max_steps=300, **kwargs):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ConvergenceWarning)  # short chains on purpose
-        return fit_power(series, model="coherent", spot=spot, seed=3, max_steps=max_steps,
-                         n_walkers=16, progress=False, figures=False, **kwargs)
+        return fit_power(series, model="coherent", calibration=PowerCalibration(spot=spot),
+                         seed=3, sampler=SamplerSettings(max_steps=max_steps, n_walkers=16,
+                                                         progress=False),
+                         figures=False, **kwargs)
 
 
 @pytest.fixture(scope="module")

@@ -12,17 +12,13 @@ import pytest
 from scipy import constants
 from scipy.integrate import solve_ivp
 
+from polkit.config.calibration import load_calibration
 from polkit.data import make_series
 from polkit.errors import DataWarning
 from polkit.inference import Prior
-from polkit.jobs.power.problem import (
-    PowerProblem,
-    calibrated_quantities,
-    ciuti_estimate,
-    linewidth_prior,
-    sweep_segments,
-)
-from polkit.models.calibration import load_calibration
+from polkit.jobs.power.calibrated import calibrated_quantities, ciuti_estimate
+from polkit.jobs.power.channels import sweep_segments
+from polkit.jobs.power.problem import PowerProblem, linewidth_prior
 
 HBAR_MEV_PS = constants.hbar / constants.e * 1e15  # Source: CODATA via scipy.constants
 

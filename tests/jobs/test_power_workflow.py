@@ -17,7 +17,8 @@ import xarray as xr
 
 from polkit.data import make_series
 from polkit.errors import ConfigError, ConvergenceWarning, DataError
-from polkit.inference import FitResult
+from polkit.inference import FitResult, SamplerSettings
+from polkit.jobs.power.options import PowerCalibration
 from polkit.jobs.power.run import PowerFit, fit_power
 from polkit.models import coherent, reservoir
 
@@ -65,10 +66,15 @@ def _inside(result, name, truth):
     return e["q2_5"] <= truth <= e["q97_5"], (name, truth, e["q2_5"], e["q97_5"])
 
 
-def _quiet_fit(*args, **kwargs):
+#: no progress bar in the tests
+QUIET = SamplerSettings(progress=False)
+
+
+def _quiet_fit(*args, max_steps=None, n_walkers=None, **kwargs):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ConvergenceWarning)  # short chains on purpose
-        return fit_power(*args, progress=False, **kwargs)
+        return fit_power(*args, sampler=SamplerSettings(max_steps=max_steps, n_walkers=n_walkers,
+                                                        progress=False), **kwargs)
 
 
 # an invented cw calibration and an invented dispersion result (|X|^2 = 0.34 +- 0.02)
@@ -103,8 +109,10 @@ def coherent_fit(tmp_path_factory):
     priors = {"polariton_linewidth": {"prior": "truncnormal", "mu": 0.2, "sigma": 0.02,
                                       "low": 0.01, "high": 1.0, "units": "meV"}}
     return _quiet_fit(series, model="coherent", priors=priors, seed=7, max_steps=500,
-                      n_walkers=24, calibration=CAL, dispersion=folder, n_wells=4,
-                      exciton_binding_meV=10.0, bohr_radius_nm=10.0)
+                      n_walkers=24, dispersion=folder,
+                      calibration=PowerCalibration(density=CAL, n_wells=4,
+                                                   exciton_binding_meV=10.0,
+                                                   bohr_radius_nm=10.0))
 
 
 # --------------------------------------------------------------------------------------
@@ -208,20 +216,20 @@ def _csv(tmp_path, text, name="series.csv"):
 def test_coherent_series_without_sweep_labels_is_refused(tmp_path):
     path = _csv(tmp_path, "power [mW],intensity [counts]\n1.0,10\n2.0,20\n3.0,35\n4.0,60\n")
     with pytest.raises(DataError, match="field 'sweep'.*sweep direction"):
-        fit_power(path, model="coherent", progress=False)
+        fit_power(path, model="coherent", sampler=QUIET)
 
 
 def test_power_not_monotonic_within_a_sweep_is_refused(tmp_path):
     path = _csv(tmp_path, "power [mW],intensity [counts],sweep\n1.0,10,up\n3.0,30,up\n"
                 "2.0,20,up\n4.0,60,up\n4.0,60,down\n2.0,25,down\n1.0,9,down\n")
     with pytest.raises(DataError, match="field 'power'.*non-decreasing powers within the up"):
-        fit_power(path, model="coherent", progress=False)
+        fit_power(path, model="coherent", sampler=QUIET)
 
 
 def test_powers_without_units_are_refused(tmp_path):
     path = _csv(tmp_path, "power,intensity [counts],sweep\n1.0,10,up\n2.0,20,up\n3.0,30,up\n")
     with pytest.raises(DataError, match="power.*units"):
-        fit_power(path, model="coherent", progress=False)
+        fit_power(path, model="coherent", sampler=QUIET)
 
 
 def test_empty_sweep_is_refused():
@@ -231,7 +239,7 @@ def test_empty_sweep_is_refused():
     series["intensity"] = series["intensity"].copy(data=values)
     series.attrs["masked"] = 1
     with pytest.raises(DataError, match="field 'sweep'.*found 0: an empty sweep"):
-        fit_power(series, model="coherent", progress=False)
+        fit_power(series, model="coherent", sampler=QUIET)
 
 
 def test_calibration_with_a_missing_unit_is_refused_before_sampling(tmp_path):
@@ -240,13 +248,13 @@ def test_calibration_with_a_missing_unit_is_refused_before_sampling(tmp_path):
                'coupling_efficiency = {value = 0.5, units = "1"}\n', name="cal.toml")
     with pytest.raises(ConfigError, match="key 'spot_fwhm.units'.*missing units"):
         fit_power(simulate_coherent(**COH, n=6), model="coherent", calibration=cal,
-                  progress=False)
+                  sampler=QUIET)
 
 
 def test_windows_on_a_table_and_a_dispersion_result_without_fractions_are_refused(tmp_path):
     series = simulate_coherent(**COH, n=6)
     with pytest.raises(ConfigError, match="energy_window"):
-        fit_power(series, model="coherent", energy_window=(1.5, 1.6), progress=False)
+        fit_power(series, model="coherent", window={"energy": (1.5, 1.6)}, sampler=QUIET)
     folder = tmp_path / "disp"
     _dispersion_folder(folder)
     res = FitResult.load(folder)
@@ -255,7 +263,7 @@ def test_windows_on_a_table_and_a_dispersion_result_without_fractions_are_refuse
         {"exciton_fraction_k0": "something_else"})
     FitResult(tree).save(tmp_path / "other")
     with pytest.raises(DataError, match="exciton_fraction_k0"):
-        fit_power(series, model="coherent", dispersion=tmp_path / "other", progress=False)
+        fit_power(series, model="coherent", dispersion=tmp_path / "other", sampler=QUIET)
 
 
 # --------------------------------------------------------------------------------------

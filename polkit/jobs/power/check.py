@@ -42,7 +42,8 @@ from typing import Any
 import numpy as np
 from scipy import stats
 
-from polkit.jobs.power.problem import Channel, PowerProblem
+from polkit.jobs.power.channels import Channel
+from polkit.jobs.power.problem import PowerProblem
 
 __all__ = ["ALPHA", "NoiseFloor", "noise_floor", "model_check", "observed_jumps", "check_line"]
 
@@ -250,81 +251,21 @@ def model_check(problem: PowerProblem, draws: np.ndarray) -> dict[str, Any]:
     if draws.shape[0] > _MAX_DRAWS:
         draws = draws[np.linspace(0, draws.shape[0] - 1, _MAX_DRAWS).astype(int)]
     floors = noise_floor(problem)
-    n_noise = sum(1 for p in problem.space.names if p.endswith(("_noise", "_noise_scale",
-                                                                "_log_noise")))
-    k_total = len(problem.space.names) - n_noise
-    n_total = sum(ch.n_used for ch in problem.channels.values())
     usable = {n: f for n, f in floors.items() if np.any(np.isfinite(f.sigma))}
     model = problem.fit_space_model(draws)
-    chi2 = np.zeros(draws.shape[0])
-    for name in usable:
-        ch, sig = problem.channels[name], floors[name].sigma
-        r = (ch.values[ch.used] - model[name][:, ch.used]) / sig[ch.used]
-        chi2 = chi2 + np.sum(r * r, axis=1)
-    best = int(np.argmin(chi2)) if usable else 0
-
-    channels: dict[str, Any] = {}
-    floor_out: dict[str, Any] = {}
-    tests: list[tuple[str, str, float]] = []
-    worst: list[dict[str, Any]] = []
+    best = _best_draw(problem, floors, usable, model, draws.shape[0])
+    tested = _Tested()
     for name, ch in problem.channels.items():
-        fl = floors[name]
-        entry = _display(problem, ch, float(np.nanmedian(fl.sigma)) if name in usable
-                         else math.nan)
-        entry["source"] = fl.source
-        if fl.source == "error column":
-            entry["value_is"] = "median of the quoted errors"
-            if np.isfinite(fl.data_estimate):
-                entry["from_neighbouring_points"] = fl.data_estimate
-        floor_out[name] = entry
-        if name not in usable:
-            continue
-        r = (ch.values - model[name][best]) / fl.sigma
-        r = np.where(ch.used, r, np.nan)
-        dof = ch.n_used - k_total * ch.n_used / n_total
-        c2 = float(np.nansum(r * r))
-        info: dict[str, Any] = {"n_points": ch.n_used, "dof": dof}
-        if dof >= 1:
-            stat = c2 / dof
-            if math.isinf(fl.dof):
-                p = float(stats.chi2.sf(c2, dof))
-            else:
-                p = float(stats.f.sf(stat, dof, fl.dof))
-            info.update(chi2_per_dof=stat, p_value=p,
-                        noise_dof=None if math.isinf(fl.dof) else fl.dof)
-            tests.append((name, "chi2", p))
-        n_runs, mean, var = _runs(np.sign(np.nan_to_num(r)), problem.segments)
-        if var > 0:
-            z = (n_runs - mean) / math.sqrt(var)
-            p_runs = float(stats.norm.cdf(z))
-            info["runs"] = {"observed": n_runs, "expected": mean, "z": z, "p_value": p_runs}
-            tests.append((name, "runs", p_runs))
-        channels[name] = info
-        order = np.argsort(-np.nan_to_num(np.abs(r), nan=-1.0))[:3]
-        labels = {i: lab for s, e, lab in problem.segments for i in range(s, e)}
-        for i in order:
-            if np.isfinite(r[i]):
-                worst.append({"observable": name, "power": float(problem.power[i]),
-                              "units": "mW", "sweep": labels[int(i)],
-                              "residual_sd": float(r[i])})
-    worst.sort(key=lambda w: -abs(w["residual_sd"]))
-    worst = worst[:3]
+        tested.add(problem, name, ch, floors[name], model[name][best] if name in usable
+                   else None)
+    tested.worst.sort(key=lambda w: -abs(w["residual_sd"]))
+    worst = tested.worst[:3]
+    tests, channels = tested.tests, tested.channels
     ran = bool(tests) and any(t[1] == "chi2" for t in tests)
     level = ALPHA / max(len(tests), 1)
     failing = sorted({n for n, _kind, p in tests if p < level})
     passed = not failing
-    chi_tests = [(n, channels[n]) for n, kind, _p in tests if kind == "chi2"]
-    if chi_tests:
-        name, info = min(chi_tests, key=lambda t: t[1]["p_value"])
-        fl = floors[name]
-        if math.isinf(fl.dof):
-            crit = float(stats.chi2.isf(level, info["dof"]) / info["dof"])
-        else:
-            crit = float(stats.f.isf(level, info["dof"], fl.dof))
-        statistic, threshold, p_value = info["chi2_per_dof"], crit, info["p_value"]
-        runs = channels[name].get("runs")
-    else:
-        name, statistic, threshold, p_value, runs = None, None, None, None, None
+    name, statistic, threshold, p_value, runs = _worst_chi2(tests, channels, floors, level)
     result = {
         "passed": bool(passed),
         "ran": ran,
@@ -336,7 +277,7 @@ def model_check(problem: PowerProblem, draws: np.ndarray) -> dict[str, Any]:
         "runs": runs,
         "alpha": ALPHA,
         "level_per_test": level,
-        "noise_floor": floor_out,
+        "noise_floor": tested.floors,
         "channels": channels,
         "worst": worst,
         "failing": failing,
@@ -345,6 +286,94 @@ def model_check(problem: PowerProblem, draws: np.ndarray) -> dict[str, Any]:
     log.info("model check: %s", "passed" if passed else f"failed ({', '.join(failing)})")
     return result
 
+
+def _best_draw(problem: PowerProblem, floors, usable, model, n_draws: int) -> int:
+    """The draw with the smallest chi-square against the noise floor (0 when none usable)."""
+    chi2 = np.zeros(n_draws)
+    for name in usable:
+        ch, sig = problem.channels[name], floors[name].sigma
+        r = (ch.values[ch.used] - model[name][:, ch.used]) / sig[ch.used]
+        chi2 = chi2 + np.sum(r * r, axis=1)
+    return int(np.argmin(chi2)) if usable else 0
+
+
+class _Tested:
+    """The per-observable results of a model check, gathered one channel at a time."""
+
+    def __init__(self) -> None:
+        self.channels: dict[str, Any] = {}
+        self.floors: dict[str, Any] = {}
+        self.tests: list[tuple[str, str, float]] = []
+        self.worst: list[dict[str, Any]] = []
+
+    def add(self, problem: PowerProblem, name: str, ch: Channel, fl: NoiseFloor,
+            best_model: np.ndarray | None) -> None:
+        """Record the noise floor of one observable and, with ``best_model``, its tests."""
+        entry = _display(problem, ch, float(np.nanmedian(fl.sigma)) if best_model is not None
+                         else math.nan)
+        entry["source"] = fl.source
+        if fl.source == "error column":
+            entry["value_is"] = "median of the quoted errors"
+            if np.isfinite(fl.data_estimate):
+                entry["from_neighbouring_points"] = fl.data_estimate
+        self.floors[name] = entry
+        if best_model is None:
+            return
+        r = (ch.values - best_model) / fl.sigma
+        r = np.where(ch.used, r, np.nan)
+        self.channels[name] = self._tests(problem, name, ch, fl, r)
+        self._worst(problem, name, r)
+
+    def _tests(self, problem: PowerProblem, name: str, ch: Channel, fl: NoiseFloor,
+               r: np.ndarray) -> dict[str, Any]:
+        """The chi-square and runs tests of one observable's residuals ``r``."""
+        n_noise = sum(1 for p in problem.space.names if p.endswith(("_noise", "_noise_scale",
+                                                                    "_log_noise")))
+        k_total = len(problem.space.names) - n_noise
+        n_total = sum(c.n_used for c in problem.channels.values())
+        dof = ch.n_used - k_total * ch.n_used / n_total
+        c2 = float(np.nansum(r * r))
+        info: dict[str, Any] = {"n_points": ch.n_used, "dof": dof}
+        if dof >= 1:
+            stat = c2 / dof
+            if math.isinf(fl.dof):
+                p = float(stats.chi2.sf(c2, dof))
+            else:
+                p = float(stats.f.sf(stat, dof, fl.dof))
+            info.update(chi2_per_dof=stat, p_value=p,
+                        noise_dof=None if math.isinf(fl.dof) else fl.dof)
+            self.tests.append((name, "chi2", p))
+        n_runs, mean, var = _runs(np.sign(np.nan_to_num(r)), problem.segments)
+        if var > 0:
+            z = (n_runs - mean) / math.sqrt(var)
+            p_runs = float(stats.norm.cdf(z))
+            info["runs"] = {"observed": n_runs, "expected": mean, "z": z, "p_value": p_runs}
+            self.tests.append((name, "runs", p_runs))
+        return info
+
+    def _worst(self, problem: PowerProblem, name: str, r: np.ndarray) -> None:
+        """The three points of one observable farthest from the model."""
+        order = np.argsort(-np.nan_to_num(np.abs(r), nan=-1.0))[:3]
+        labels = {i: lab for s, e, lab in problem.segments for i in range(s, e)}
+        for i in order:
+            if np.isfinite(r[i]):
+                self.worst.append({"observable": name, "power": float(problem.power[i]),
+                                   "units": "mW", "sweep": labels[int(i)],
+                                   "residual_sd": float(r[i])})
+
+
+def _worst_chi2(tests, channels, floors, level: float) -> tuple:
+    """``(observable, statistic, threshold, p_value, runs)`` of the lowest chi-square p-value."""
+    chi_tests = [(n, channels[n]) for n, kind, _p in tests if kind == "chi2"]
+    if not chi_tests:
+        return None, None, None, None, None
+    name, info = min(chi_tests, key=lambda t: t[1]["p_value"])
+    fl = floors[name]
+    if math.isinf(fl.dof):
+        crit = float(stats.chi2.isf(level, info["dof"]) / info["dof"])
+    else:
+        crit = float(stats.f.isf(level, info["dof"], fl.dof))
+    return name, info["chi2_per_dof"], crit, info["p_value"], channels[name].get("runs")
 
 
 def check_line(check: dict[str, Any]) -> str:

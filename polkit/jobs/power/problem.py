@@ -50,13 +50,8 @@ Noise
     ``linewidth_noise`` [meV]).  A mis-stated error therefore widens the intervals instead
     of narrowing them, and a model that misfits one observable down-weights only that one.
 
-Calibration (see :func:`calibrated_quantities`)
-    The calibration inputs are *propagated per draw*: each posterior draw is paired with an
-    independent draw of the calibration inputs from their log-normal priors.  This is exact
-    here because the likelihood depends on powers in mW only, never on the calibration, so
-    the joint posterior of (physics, calibration) factorises into posterior x calibration
-    prior; sampling them as nuisance parameters would give the same joint distribution
-    while enlarging the space emcee must explore.
+The calibrated quantities (densities, interaction constants) are in
+:mod:`polkit.jobs.power.calibrated`.
 """
 
 from __future__ import annotations
@@ -64,7 +59,6 @@ from __future__ import annotations
 import dataclasses
 import logging
 import math
-import warnings
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 
@@ -72,19 +66,16 @@ import numpy as np
 import xarray as xr
 
 from polkit.constants import HBAR_MEV_PS
-from polkit.errors import DataError, DataWarning, FitError
+from polkit.errors import DataError, FitError
 from polkit.inference.priors import Parameter, ParameterSpace, Prior
+from polkit.jobs.power.channels import MIN_POINTS, Channel, channel, column, sweep_segments
 from polkit.models import coherent, pump_spot, reservoir
-from polkit.models.calibration import DensityCalibration, cw_density, pulsed_density
+from polkit.models.calibration import DensityCalibration
 
 __all__ = [
     "MODELS",
-    "Channel",
     "PowerProblem",
-    "sweep_segments",
     "linewidth_prior",
-    "calibrated_quantities",
-    "ciuti_estimate",
 ]
 
 log = logging.getLogger(__name__)
@@ -92,10 +83,6 @@ log = logging.getLogger(__name__)
 MEV = 1e-3
 #: the fits this module knows
 MODELS = ("coherent", "reservoir")
-#: ueV per meV (interaction constants are reported in ueV um^2)
-UEV_PER_MEV = 1e3
-_LOG_2PI = math.log(2.0 * math.pi)
-MIN_POINTS = 3
 
 _LONG = {
     "detuning_ratio": "pump detuning over polariton linewidth, Delta / gamma",
@@ -111,131 +98,6 @@ _LONG = {
     "linewidth_high": "linewidth far above threshold (FWHM)",
     "narrowing_occupation": "mode occupation at which the linewidth is half narrowed",
 }
-
-
-# --------------------------------------------------------------------------------------
-# data: sweeps and observables
-# --------------------------------------------------------------------------------------
-def sweep_segments(series: xr.Dataset) -> list[tuple[int, int, str]]:
-    """Contiguous runs of one sweep label, in acquisition order: ``[(start, stop, label)]``.
-
-    A series without a ``sweep`` label is one run labelled ``"none"``.
-    """
-    n = int(series["power"].size)
-    if "sweep" not in series.variables:
-        return [(0, n, "none")]
-    labels = [str(s) for s in np.asarray(series["sweep"].values).ravel()]
-    out = []
-    start = 0
-    for i in range(1, n + 1):
-        if i == n or labels[i] != labels[start]:
-            out.append((start, i, labels[start]))
-            start = i
-    return out
-
-
-@dataclass
-class Channel:
-    """One observable in fit space, with its per-point errors and its noise parameter.
-
-    Attributes
-    ----------
-    name
-        ``"intensity"``, ``"peak_energy"`` or ``"linewidth"``.
-    values
-        Observed values in fit space, shape ``(N,)``: intensity (or its natural log),
-        peak energy in meV above ``e_ref``, linewidth in meV.  Unused points hold 0.
-    sigma
-        Per-point standard deviation in fit space (1 where no errors were given).
-    used
-        Boolean mask of the points that enter the likelihood.
-    log_space
-        Whether ``values`` are natural logs of the observable.
-    has_errors
-        Whether ``sigma`` came from an error column (the noise parameter is then a scale).
-    noise_param
-        Name of the sampled noise parameter.
-    """
-
-    name: str
-    values: np.ndarray
-    sigma: np.ndarray
-    used: np.ndarray
-    log_space: bool
-    has_errors: bool
-    noise_param: str
-    _const: float = field(init=False, default=0.0)
-
-    def __post_init__(self) -> None:
-        n = int(self.used.sum())
-        self._const = -float(np.sum(np.log(self.sigma[self.used]))) - 0.5 * n * _LOG_2PI
-
-    @property
-    def n_used(self) -> int:
-        """Number of points in the likelihood."""
-        return int(self.used.sum())
-
-    def log_likelihood(self, model: np.ndarray, noise: np.ndarray) -> np.ndarray:
-        """Gaussian log-likelihood of ``model`` (``(W, N)``, fit space) with noise ``(W,)``."""
-        u = self.used
-        r = (self.values[u] - model[:, u]) / self.sigma[u]
-        chi2 = np.sum(r * r, axis=1)
-        return -0.5 * chi2 / (noise * noise) - self.n_used * np.log(noise) + self._const
-
-    def residuals(self, model: np.ndarray, noise: float) -> np.ndarray:
-        """Normalised residuals ``(y - model) / (noise sigma)`` of one model, NaN where unused."""
-        r = (self.values - model) / (noise * self.sigma)
-        return np.where(self.used, r, np.nan)
-
-
-def _column(series: xr.Dataset, name: str) -> np.ndarray | None:
-    if name not in series.data_vars:
-        return None
-    return np.asarray(series[name].values, dtype=float).reshape(-1)
-
-
-def _channel(series, name, *, log_space, power, path, scale=1.0, offset=0.0) -> Channel | None:
-    y = _column(series, name)
-    if y is None:
-        return None
-    err = _column(series, f"{name}_error")
-    has_errors = err is not None
-    ok = np.isfinite(y)
-    if has_errors:
-        no_error = int((ok & ~(np.isfinite(err) & (err > 0))).sum())
-        if no_error:
-            warnings.warn(
-                f"{path or 'series'}: {no_error} point(s) of {name} without a usable error "
-                "(NaN or 0) are left out; give every point a positive standard deviation",
-                DataWarning,
-                stacklevel=4,
-            )
-        ok &= np.isfinite(err) & (err > 0)
-    if log_space:
-        bad = ok & ((y <= 0) | (power <= 0))
-        if bad.any():
-            warnings.warn(
-                f"{path or 'series'}: {int(bad.sum())} point(s) with intensity <= 0 or power 0 "
-                "cannot enter the log-space intensity fit and are left out",
-                DataWarning,
-                stacklevel=4,
-            )
-        ok &= ~bad
-    yv = np.where(ok, y, 1.0)
-    if log_space:
-        values = np.log(yv)
-        sigma = np.where(ok, err / yv, 1.0) if has_errors else np.ones_like(y)
-    else:
-        values = (yv - offset) / scale
-        sigma = np.where(ok, err / scale, 1.0) if has_errors else np.ones_like(y)
-    values = np.where(ok, values, 0.0)
-    if has_errors:
-        noise = f"{name}_noise_scale"
-    elif log_space:
-        noise = f"{name}_log_noise"
-    else:
-        noise = f"{name}_noise"
-    return Channel(name, values, sigma, ok, log_space, has_errors, noise)
 
 
 # --------------------------------------------------------------------------------------
@@ -293,7 +155,7 @@ class PowerProblem:
         ----------
         series
             A canonical series table (dims ``power`` or ``point``); the job-level checks of
-            :func:`polkit.jobs.power.run.check_series` are assumed done.
+            :func:`polkit.jobs.power.stages.check_series` are assumed done.
         model
             ``"coherent"`` or ``"reservoir"``.
         path
@@ -315,7 +177,7 @@ class PowerProblem:
         units = str(series["intensity"].attrs.get("units", "1"))
         channels: dict[str, Channel] = {}
         ignored: list[str] = []
-        intensity = _channel(series, "intensity", log_space=(model == "reservoir"), power=power,
+        intensity = channel(series, "intensity", log_space=(model == "reservoir"), power=power,
                              path=path)
         channels["intensity"] = intensity
         e_ref = None
@@ -325,15 +187,15 @@ class PowerProblem:
             if model == "coherent":
                 ignored.append(name)  # under coherent drive the line sits at the laser energy
                 continue
-            y = _column(series, name)
+            y = column(series, name)
             if not np.isfinite(y).any():
                 continue
             if name == "peak_energy":
                 e_ref = float(np.nanmin(y))
-                ch = _channel(series, name, log_space=False, power=power, path=path,
+                ch = channel(series, name, log_space=False, power=power, path=path,
                               scale=MEV, offset=e_ref)
             else:
-                ch = _channel(series, name, log_space=False, power=power, path=path)
+                ch = channel(series, name, log_space=False, power=power, path=path)
             if ch.n_used >= MIN_POINTS:
                 channels[name] = ch
             else:
@@ -425,7 +287,8 @@ class PowerProblem:
         self.space = ParameterSpace(params)
         return self.space
 
-    def _cols(self, theta: np.ndarray) -> dict[str, np.ndarray]:
+    def columns(self, theta: np.ndarray) -> dict[str, np.ndarray]:
+        """``{parameter name: its column of theta}`` for draws ``theta`` of shape ``(W, P)``."""
         if self.space is None:
             raise FitError("the problem has no parameter space; call default_space first")
         t = np.atleast_2d(np.asarray(theta, dtype=float))
@@ -476,7 +339,7 @@ class PowerProblem:
         -------
         dict of str to ndarray ``(W, N)``
         """
-        c = self._cols(theta)
+        c = self.columns(theta)
         out = {}
         if self.model == "coherent":
             u = self.reduced_blueshift(c["detuning_ratio"], c["reduced_drive_per_power"], power,
@@ -511,7 +374,7 @@ class PowerProblem:
     def log_likelihood(self, theta: np.ndarray) -> np.ndarray:
         """Sum of the channels' Gaussian log-likelihoods, shape ``(W,)``."""
         theta = np.atleast_2d(np.asarray(theta, dtype=float))
-        c = self._cols(theta)
+        c = self.columns(theta)
         total = np.zeros(theta.shape[0])
         for name, m in self.fit_space_model(theta).items():
             ch = self.channels[name]
@@ -634,7 +497,7 @@ class PowerProblem:
         except 0-d probabilities.  No calibration needed.  The coherent model needs
         ``linewidth``: one polariton linewidth (meV) per draw, drawn from its prior.
         """
-        c = self._cols(draws)
+        c = self.columns(draws)
         out: dict[str, tuple[np.ndarray, str, str]] = {}
         p_max = float(np.max(self.power))
         if self.model == "coherent":
@@ -725,199 +588,3 @@ def linewidth_prior(
             "polariton_linewidth and drive_per_power in meV follow the log-uniform prior of "
             "polariton_linewidth (1 ueV to 100 meV); give a dispersion result, a calibration "
             "with polariton_lifetime, or a prior to pin the meV scale")
-
-
-# --------------------------------------------------------------------------------------
-# calibration, dispersion and the textbook estimate
-# --------------------------------------------------------------------------------------
-def ciuti_estimate(exciton_binding_meV: float, bohr_radius_nm: float) -> float:
-    """Exciton-exciton interaction constant ``6 E_b a_B^2`` in ueV um^2.
-
-    Source: Ciuti et al., Phys. Rev. B 58, 7926 (1998), for a two-dimensional exciton of
-    binding energy ``E_b`` and Bohr radius ``a_B``: ``meV nm^2 = 1e3 ueV x 1e-6 um^2``.
-    """
-    if not (exciton_binding_meV > 0 and bohr_radius_nm > 0):
-        raise DataError(
-            f"expected E_b > 0 meV and a_B > 0 nm, found {exciton_binding_meV!r} and "
-            f"{bohr_radius_nm!r}",
-            field="exciton_binding_meV" if not exciton_binding_meV > 0 else "bohr_radius_nm",
-        )
-    return 6.0 * exciton_binding_meV * bohr_radius_nm**2 * 1e-3
-
-
-def _lognormal(value_and_error, rng, n) -> np.ndarray:
-    value, rel = value_and_error
-    return value * np.exp(rng.normal(0.0, rel, n)) if rel > 0 else np.full(n, float(value))
-
-
-def calibrated_quantities(
-    problem: PowerProblem,
-    draws: np.ndarray,
-    base: Mapping[str, tuple[np.ndarray, str, str]],
-    *,
-    calibration: DensityCalibration | None,
-    rng: np.random.Generator,
-    exciton_fraction: np.ndarray | None = None,
-    n_wells: int | None = None,
-    exciton_binding_meV: float | None = None,
-    bohr_radius_nm: float | None = None,
-    reservoir_lifetime: tuple[float, float] | None = None,
-) -> tuple[dict[str, tuple[np.ndarray, str, str]], list[str]]:
-    """Absolute densities and interaction constants per posterior draw, and notes.
-
-    Each posterior draw is paired with an independent draw of the calibration inputs (and,
-    given, of the exciton fraction from a dispersion result, picked at random: the two fits
-    are independent).  Densities come from the pump power through the calibration:
-
-    * coherent: a resonant pump injects ``rho_res = eta P tau / (E_ph A)`` with
-      ``tau = hbar / gamma`` per draw (cw; for pulsed drive the peak power ``P / (f tau_p)``,
-      a quasi-steady state valid for pulses much longer than ``tau``).  On resonance the
-      steady state gives ``y = 4 F / gamma^2 = g rho_res``, so
-      ``g_LP = 4 alpha kappa / (gamma^2 rho_res per mW)``.
-    * reservoir: above threshold every extra pumped exciton ends in the condensate,
-      ``rho_C = (drho/dP) (P - P_th)`` (Wouters and Carusotto, PRL 99, 140402, 2007, far above
-      threshold), so ``g_C = (condensate_blueshift_rate) / (drho/dP)`` with ``drho/dP`` the
-      calibration's density per mW (cw: polariton lifetime from the calibration, else
-      ``hbar / linewidth_low``); the reservoir at threshold holds ``rho_R = eta P_th tau_R /
-      (E_ph A)`` (cw, needs ``reservoir_lifetime``) or ``eta P_th / (f E_ph A)`` (pulsed), so
-      ``g_R = reservoir_blueshift / rho_R``.
-
-    ``exciton_interaction_constant = g N / |X|^4`` inverts ``g_LP = g_X |X|^4 / N``
-    (Ciuti et al., Phys. Rev. B 58, 7926 (1998); N = ``n_wells``, else 1, i.e. per mode).
-
-    Parameters
-    ----------
-    problem
-        The fitted problem (with its space).
-    draws
-        Posterior draws ``(D, P)``.
-    base
-        :meth:`PowerProblem.derived` of the same draws.
-    calibration
-        The density calibration, or None (then only the notes say what is missing).
-    rng
-        Generator for the calibration and pairing draws.
-    exciton_fraction
-        ``|X|^2`` draws of a dispersion result.
-    n_wells
-        Number of equivalent quantum wells.
-    exciton_binding_meV, bohr_radius_nm
-        For the comparison with ``6 E_b a_B^2`` (Ciuti et al., PRB 58, 7926, 1998).
-    reservoir_lifetime
-        ``(value_ps, relative_error)`` of the reservoir lifetime (cw reservoir density).
-
-    Returns
-    -------
-    (dict, list of str)
-        ``name -> (values (D,), units, long_name)`` and notes for the result.
-    """
-    c = problem._cols(draws)
-    n = np.atleast_2d(draws).shape[0]
-    out: dict[str, tuple[np.ndarray, str, str]] = {}
-    notes: list[str] = []
-    if calibration is None:
-        notes.append("absolute interaction constants and densities need a calibration file "
-                      "(spot size, photon energy, coupling efficiency ...); reported instead: "
-                      "the identifiable products (blueshift per unit power, drive per power, "
-                      "blueshift per occupation)")
-        if exciton_fraction is not None:
-            notes.append("the dispersion result was not used: the exciton interaction constant "
-                         "needs the polariton one, which needs a calibration")
-        return out, notes
-    vals = calibration.draw(rng, n)
-    pulsed = calibration.drive == "pulsed"
-    g_main = None
-    if problem.model == "coherent":
-        gam = base["polariton_linewidth"][0]
-        tau = HBAR_MEV_PS / gam
-        rho1 = cw_density(1.0, vals["photon_energy_eV"], vals["spot_area_um2"],
-                          vals["coupling_efficiency"], tau)
-        if pulsed:
-            duty = vals["repetition_rate_MHz"] * 1e-6 * vals["pulse_duration_ps"]
-            rho1 = rho1 / duty
-            if np.median(vals["pulse_duration_ps"]) < 10.0 * np.median(tau):
-                notes.append("pulsed coherent drive treated as quasi-steady (peak power); the "
-                             "pulses are not much longer than the polariton lifetime, so the "
-                             "steady-state densities are upper bounds")
-        f1 = base["drive_per_power"][0]
-        g_main = 4.0 * f1 / (gam * gam * rho1)  # meV um^2
-        out["density_per_power"] = (rho1, "1/um^2/mW",
-                                    "polariton density per mW of a resonant pump")
-        out["interaction_constant"] = (g_main * UEV_PER_MEV, "ueV um^2",
-                                       "polariton-polariton interaction constant g_LP")
-        out["max_polariton_density"] = (base["max_blueshift"][0] / g_main, "1/um^2",
-                                        "largest polariton density reached in the series")
-    else:
-        p_th, n_s = c["threshold_power"], c["saturation_number"]
-        common = (vals["photon_energy_eV"], vals["spot_area_um2"], vals["coupling_efficiency"])
-        if pulsed:
-            drho = pulsed_density(1.0, *common, vals["repetition_rate_MHz"])
-        elif "polariton_lifetime_ps" in vals:
-            drho = cw_density(1.0, *common, vals["polariton_lifetime_ps"])
-        elif "linewidth_low" in c:
-            drho = cw_density(1.0, *common, HBAR_MEV_PS / c["linewidth_low"])
-            notes.append("polariton lifetime taken as hbar / linewidth_low per draw (the "
-                         "calibration gives none)")
-        else:
-            drho = None
-            notes.append("cw calibration without polariton_lifetime and no linewidths: the "
-                         "condensate density and interaction_constant are not reported")
-        if drho is not None:
-            n_max = problem.occupation(p_th, n_s, np.array([np.max(problem.power)]))[0][:, 0]
-            out["density_per_power"] = (drho, "1/um^2/mW",
-                                        "condensate density per mW above threshold")
-            out["max_polariton_density"] = (drho * p_th * n_max / n_s, "1/um^2",
-                                            "condensate density at the largest power")
-        if "condensate_blueshift_rate" in c:
-            if drho is not None:
-                g_main = c["condensate_blueshift_rate"] / drho
-                out["interaction_constant"] = (g_main * UEV_PER_MEV, "ueV um^2",
-                                               "polariton-polariton interaction constant g_C")
-            if pulsed:
-                rho_r = pulsed_density(p_th, *common, vals["repetition_rate_MHz"])
-            elif reservoir_lifetime is not None:
-                rho_r = cw_density(p_th, *common, _lognormal(reservoir_lifetime, rng, n))
-            else:
-                rho_r = None
-                notes.append("cw drive: the reservoir density (and reservoir_interaction_constant)"
-                             " needs the reservoir lifetime; pass reservoir_lifetime_ps")
-            if rho_r is not None:
-                out["threshold_density"] = (rho_r, "1/um^2", "reservoir density at threshold")
-                out["reservoir_interaction_constant"] = (
-                    c["reservoir_blueshift"] / rho_r * UEV_PER_MEV, "ueV um^2",
-                    "polariton-reservoir interaction constant g_R")
-        else:
-            notes.append("no peak energies: the interaction constants need the blueshift")
-    if g_main is not None and exciton_fraction is not None:
-        x2_all = np.asarray(exciton_fraction, dtype=float)
-        x2_all = x2_all[np.isfinite(x2_all) & (x2_all > 0)]
-        if x2_all.size == 0:
-            raise DataError("the dispersion result holds no positive exciton_fraction_k0 draws",
-                            field="exciton_fraction_k0")
-        x2 = x2_all[rng.integers(0, x2_all.size, n)]
-        wells = 1 if n_wells is None else int(n_wells)
-        g_x = g_main * wells / (x2 * x2) * UEV_PER_MEV
-        out["exciton_fraction_k0"] = (x2, "1", "exciton fraction |X|^2 at k = 0 (dispersion "
-                                      "result, paired at random)")
-        label = "per quantum well" if n_wells is not None else "per polariton mode (all wells)"
-        out["exciton_interaction_constant"] = (g_x, "ueV um^2",
-                                               f"exciton interaction constant g N / |X|^4, {label}")
-        if n_wells is None:
-            notes.append("exciton_interaction_constant is per mode: give n_wells for the "
-                         "per-well constant")
-        if exciton_binding_meV is not None and bohr_radius_nm is not None:
-            est = ciuti_estimate(exciton_binding_meV, bohr_radius_nm)
-            out["exciton_interaction_ratio"] = (
-                g_x / est, "1", f"exciton_interaction_constant over 6 E_b a_B^2 = {est:.4g} ueV "
-                "um^2 (Ciuti et al., PRB 58, 7926, 1998)")
-            prob = float(np.mean((g_x > est / 2) & (g_x < 2 * est)))
-            out["within_factor_two_of_estimate"] = (
-                np.asarray(prob), "1", "probability that the exciton interaction constant lies "
-                "within a factor 2 of 6 E_b a_B^2")
-    elif exciton_fraction is not None:
-        notes.append("exciton_interaction_constant not reported: no polariton interaction "
-                     "constant (see the other notes)")
-    if (exciton_binding_meV is None) != (bohr_radius_nm is None):
-        notes.append("the comparison with 6 E_b a_B^2 needs both exciton_binding_meV and "
-                      "bohr_radius_nm")
-    return out, notes

@@ -1,24 +1,28 @@
 """The power-series job: a pump-power series in, thresholds and interaction constants out.
 
-Each step is a public stage (a decision a practitioner would otherwise make by hand), here
-or in :mod:`polkit.jobs.power.stages`, so the interactive panel
-(:mod:`polkit.widgets.power_panel`) takes the same steps one at a time; :func:`fit_power`
-takes them in order:
+Each step is a public stage (a decision a practitioner would otherwise make by hand) in
+:mod:`polkit.jobs.power.stages`, :mod:`polkit.jobs.steps` or here, so the interactive
+panel (:mod:`polkit.widgets.power_panel`) takes the same steps one at a time;
+:func:`fit_power` takes them in order:
 
-1. :func:`prepare_power`: load the series (:func:`polkit.data.load_series`) or take an
-   in-memory Dataset; a spectra cube is reduced to intensity, peak energy and linewidth per
-   power by :func:`polkit.linefit.lines.extract_observables` (the extraction figure is written so
-   a person can check it); job-level checks (:func:`check_series`): sweep labels for
-   coherent drive, powers monotonic within each sweep, no empty sweep; calibration
-   (:func:`polkit.models.calibration.load_calibration`) and dispersion result
+1. :func:`~polkit.jobs.power.stages.prepare_power`: load the series
+   (:func:`polkit.data.load_series`) or take an in-memory Dataset; a spectra cube is
+   reduced to intensity, peak energy and linewidth per power by
+   :func:`polkit.linefit.lines.extract_observables` (the extraction figure is written so a
+   person can check it); job-level checks (:func:`~polkit.jobs.power.stages.check_series`):
+   sweep labels for coherent drive, powers monotonic within each sweep, no empty sweep;
+   calibration (:func:`polkit.config.calibration.read_calibration`) and dispersion result
    (:meth:`polkit.inference.FitResult.load`) read and checked before any sampling; default
    priors from the data ranges (:mod:`polkit.jobs.power.problem`), user priors on top;
-2. :func:`power_start` and :func:`refine_mode`: an automatic starting point, the MAP;
-3. :func:`sample_problem`: emcee until the convergence gate passes, checkpointed in HDF5;
+2. :func:`~polkit.jobs.power.stages.power_start` and
+   :func:`~polkit.jobs.power.stages.refine_mode`: an automatic starting point, the MAP;
+3. :func:`~polkit.jobs.steps.sample_problem`: emcee until the convergence gate passes,
+   checkpointed in HDF5;
 4. :func:`build_power_result`: derived quantities per posterior draw; calibration inputs
-   propagated per draw; the model check against a noise floor that owes nothing to the fit
-   (:func:`polkit.jobs.power.check.model_check`, the ``model_check`` entry of
-   summary.json); the result with notes; then files and figures.
+   propagated per draw (:mod:`polkit.jobs.power.calibrated`); the model check against a
+   noise floor that owes nothing to the fit (:func:`polkit.jobs.power.check.model_check`,
+   the ``model_check`` entry of summary.json); the result with notes; then files and
+   figures.
 """
 
 from __future__ import annotations
@@ -26,7 +30,6 @@ from __future__ import annotations
 import json
 import logging
 import os
-import threading
 import warnings
 from collections.abc import Mapping
 from pathlib import Path
@@ -37,18 +40,18 @@ import xarray as xr
 
 from polkit.errors import ConfigError, DataWarning
 from polkit.inference import FitResult, SamplerOutput, SamplerSettings
+from polkit.jobs.power.calibrated import calibrated_quantities, ciuti_estimate
 from polkit.jobs.power.check import check_line, model_check, observed_jumps
-from polkit.jobs.power.problem import PowerProblem, calibrated_quantities, ciuti_estimate
+from polkit.jobs.power.options import ExtractionWindow, PowerCalibration
+from polkit.jobs.power.problem import PowerProblem
 from polkit.jobs.power.stages import (
     EXTRACTION_FIGURE,
     PowerSetup,
-    check_series,
     power_start,
     prepare_power,
     refine_mode,
 )
 from polkit.jobs.steps import (
-    CHECKPOINT,
     checkpoint_file,
     job_identity,
     job_sampler,
@@ -59,20 +62,8 @@ from polkit.jobs.steps import (
 )
 from polkit.models.calibration import DensityCalibration
 
-__all__ = [
-    "fit_power",
-    "PowerFit",
-    "DEFAULT_STEPS",
-    "CHECKPOINT",
-    "EXTRACTION_FIGURE",
-    "check_series",
-    "PowerSetup",
-    "prepare_power",
-    "power_start",
-    "refine_mode",
-    "sample_problem",
-    "build_power_result",
-]
+__all__ = ["fit_power", "PowerFit", "PowerCalibration", "ExtractionWindow", "DEFAULT_STEPS",
+           "build_power_result"]
 
 log = logging.getLogger(__name__)
 
@@ -169,6 +160,21 @@ def build_power_result(
                      "an independent draw of the calibration's log-normal inputs (the "
                      "likelihood does not depend on them)")
 
+    prov = _provenance(problem, output, setup, notes, provenance)
+    attrs = {"notes": json.dumps(notes), "calibrated": int(cal is not None),
+             "intensity_units": problem.intensity_units, "model_check": check}
+    if problem.model == "coherent":
+        attrs["spot"] = problem.spot
+    return PowerFit.from_samples(output, space, derived=derived, model=setup.model,
+                                 kind="power", observed=setup.table, provenance=prov,
+                                 extra_attrs=attrs)
+
+
+def _provenance(problem: PowerProblem, output: SamplerOutput, setup: PowerSetup,
+                notes: list[str], provenance: Mapping[str, Any] | None) -> dict[str, Any]:
+    """The provenance of a power result: input, notes, priors, sweeps, calibration, options."""
+    opts = setup.options
+    lw_prior = setup.linewidth_prior
     prov: dict[str, Any] = {"input_sha256": setup.sha256, "input": setup.source_name,
                             "notes": notes,
                             "linewidth_prior": None if lw_prior is None else
@@ -191,13 +197,7 @@ def build_power_result(
     e_b, a_b = opts.get("exciton_binding_meV"), opts.get("bohr_radius_nm")
     if e_b is not None and a_b is not None:
         prov["exciton_interaction_estimate_ueV_um2"] = ciuti_estimate(float(e_b), float(a_b))
-    attrs = {"notes": json.dumps(notes), "calibrated": int(cal is not None),
-             "intensity_units": problem.intensity_units, "model_check": check}
-    if problem.model == "coherent":
-        attrs["spot"] = problem.spot
-    return PowerFit.from_samples(output, space, derived=derived, model=setup.model,
-                                 kind="power", observed=setup.table, provenance=prov,
-                                 extra_attrs=attrs)
+    return prov
 
 
 # --------------------------------------------------------------------------------------
@@ -208,26 +208,15 @@ def fit_power(
     source: str | os.PathLike | xr.Dataset,
     *,
     model: str = "coherent",
-    calibration: str | os.PathLike | DensityCalibration | dict | None = None,
+    calibration: PowerCalibration | str | os.PathLike | DensityCalibration | dict | None = None,
     dispersion: str | os.PathLike | FitResult | None = None,
     priors: str | os.PathLike | dict | None = None,
+    window: ExtractionWindow | dict | None = None,
     seed: int | np.random.SeedSequence | None = None,
     resume: bool = False,
-    strict: bool = False,
     out: str | os.PathLike | None = None,
-    max_steps: int | None = None,
-    n_walkers: int | None = None,
-    progress: bool = True,
-    stop_event: threading.Event | None = None,
+    sampler: SamplerSettings | dict | None = None,
     figures: bool = True,
-    energy_window: tuple[float, float] | None = None,
-    angle_window: tuple[float, float] | None = None,
-    n_wells: int | None = None,
-    exciton_binding_meV: float | None = None,
-    bohr_radius_nm: float | None = None,
-    reservoir_lifetime_ps: float | tuple[float, float] | None = None,
-    min_steps: int | None = None,
-    spot: str | None = None,
     quick: bool = False,
 ) -> PowerFit | dict:
     """Fit a mean-field nonlinear model to a pump-power series.
@@ -241,8 +230,9 @@ def fit_power(
         ``"coherent"`` (resonant drive, up and down sweeps fitted jointly) or
         ``"reservoir"`` (nonresonant drive through an exciton reservoir).
     calibration
-        Density calibration: a TOML file, a dict in the same form, or a
-        :class:`~polkit.models.calibration.DensityCalibration`.  Without it only the
+        A :class:`~polkit.jobs.power.options.PowerCalibration` (density calibration, sample
+        constants, pump-spot profile), or the density calibration alone (TOML file, dict or
+        :class:`~polkit.models.calibration.DensityCalibration`).  Without one only the
         identifiable products are reported, and the result says so.
     dispersion
         Output folder of a dispersion fit (or its result): its ``exciton_fraction_k0``
@@ -250,41 +240,23 @@ def fit_power(
         polariton-linewidth prior of the coherent model.
     priors
         TOML file or dict of priors overriding the defaults (keys: parameter names).
+    window
+        For a spectra cube: the :class:`~polkit.jobs.power.options.ExtractionWindow` (or a
+        dict ``{"energy": ..., "angle": ...}``).
     seed
         Root seed (recorded; the same seed gives the same result).
     resume
         Continue from ``out/chains.h5``.
-    strict
-        Four ensembles gated on nested R-hat <= 1.01.
     out
         Output folder (``posterior.nc``, ``summary.json``, figures, ``chains.h5``); nothing
         is written when ``None``.
-    max_steps, min_steps, n_walkers
-        Sampler limits (defaults 8000, 400 and max(32, 4 P)).
-    progress
-        Progress bar (tqdm.auto).
-    stop_event
-        A :class:`threading.Event` that ends sampling early (result marked not converged).
+    sampler
+        :class:`~polkit.inference.SamplerSettings` (or a dict of its fields): ``max_steps``,
+        ``min_steps`` (defaults 8000, 400), ``n_walkers`` (default max(32, 4 P)),
+        ``progress``, ``strict``, ``stop_event`` (ends sampling early, not converged).
     figures
         Write the result figures to ``out``.  For a cube the extraction figure
         (``extraction.png``) is written whenever ``out`` is given.
-    energy_window, angle_window
-        For a spectra cube: the extraction window in eV, and the angle (or k) window
-        replacing the default k = 0 columns.
-    n_wells
-        Number of equivalent quantum wells: the exciton interaction constant per well.
-    exciton_binding_meV, bohr_radius_nm
-        Exciton binding energy and Bohr radius: the exciton interaction constant is
-        compared with ``6 E_b a_B^2`` (Ciuti et al., PRB 58, 7926, 1998).
-    reservoir_lifetime_ps
-        Reservoir lifetime (ps), or ``(value, relative_error)``: with a cw calibration it
-        gives the reservoir density at threshold and ``reservoir_interaction_constant``.
-    spot
-        Pump-spot profile of the coherent model: ``"point"`` (one mode, the default),
-        ``"gaussian"`` (the steady state averaged over a Gaussian spot that the camera
-        integrates, :mod:`polkit.models.pump_spot`) or ``"flat"`` (a flat top: the
-        single-mode loop).  ``None`` takes the calibration file's ``spot`` key, else
-        ``"point"``.
     quick
         Stop after the quick answer at the mode (Laplace summary, labelled approximate):
         it is returned as a dict and written to ``out/quick_summary.json``; no chains.
@@ -303,16 +275,11 @@ def fit_power(
     ConfigError
         Bad options, priors or calibration file (e.g. a quantity without units).
     """
-    problem, setup = prepare_power(
-        source, model=model, calibration=calibration, dispersion=dispersion, priors=priors,
-        energy_window=energy_window, angle_window=angle_window, n_wells=n_wells,
-        exciton_binding_meV=exciton_binding_meV, bohr_radius_nm=bohr_radius_nm,
-        reservoir_lifetime_ps=reservoir_lifetime_ps, spot=spot)
+    problem, setup = prepare_power(source, model=model, calibration=calibration,
+                                   dispersion=dispersion, priors=priors, window=window)
     checkpoint = None if quick else checkpoint_file(out, resume, refusal=ConfigError(
         "resume needs the output folder that holds the checkpoint; pass out=", key="resume"))
-    sampler = job_sampler(DEFAULT_STEPS, SamplerSettings(
-        max_steps=max_steps, min_steps=min_steps, n_walkers=n_walkers, progress=progress,
-        strict=strict, stop_event=stop_event))
+    sampler = job_sampler(DEFAULT_STEPS, sampler)
 
     x0, _guess = power_start(problem)
     start = refine_mode(problem, x0)
@@ -321,12 +288,8 @@ def fit_power(
     if quick:  # the Laplace summary at the mode only: no chains
         return quick_answer(problem, start, out=out)
     output = sample_problem(problem, start, sampler=sampler, seed=seed,
-                            checkpoint=checkpoint, resume=resume, identity=job_identity(
-                                setup.sha256, model, "series", setup.linewidth_note, dict(
-                                    energy_window=energy_window, angle_window=angle_window,
-                                    calibration=setup.calibration_info,
-                                    dispersion=setup.dispersion_info, options=setup.options,
-                                    spot=problem.spot)))
+                            checkpoint=checkpoint, resume=resume,
+                            identity=_identity(problem, setup))
     result = build_power_result(problem, output, setup)
     for note in result.notes:
         log.info("%s", note)
@@ -334,13 +297,25 @@ def fit_power(
     if not check["passed"]:  # the command line turns this into a warning line and status 4
         log.warning("%s: %s", setup.source_name, check_line(check))
     if out is not None:
-        out_dir = Path(out)
-        result.save(out_dir)
-        if setup.extraction is not None:  # the check of the input: written whenever out is given
-            _extraction_figure(setup.cube, setup.extraction, out_dir / EXTRACTION_FIGURE)
-        if figures:
-            result.figures(out_dir)
+        _write(result, setup, Path(out), figures)
     return result
+
+
+def _identity(problem: PowerProblem, setup: PowerSetup) -> dict[str, object]:
+    """The job's part of the fit identity, stored in the checkpoint and checked on resume."""
+    return job_identity(setup.sha256, setup.model, "series", setup.linewidth_note, dict(
+        energy_window=setup.window.energy, angle_window=setup.window.angle,
+        calibration=setup.calibration_info, dispersion=setup.dispersion_info,
+        options=setup.options, spot=problem.spot))
+
+
+def _write(result: PowerFit, setup: PowerSetup, out_dir: Path, figures: bool) -> None:
+    """Save the result, the extraction figure of a cube and (with ``figures``) the figures."""
+    result.save(out_dir)
+    if setup.extraction is not None:  # the check of the input: written whenever out is given
+        _extraction_figure(setup.cube, setup.extraction, out_dir / EXTRACTION_FIGURE)
+    if figures:
+        result.figures(out_dir)
 
 
 def _extraction_figure(cube: xr.Dataset, obs: xr.Dataset, target: Path) -> Path:

@@ -26,20 +26,16 @@ from typing import Any
 import numpy as np
 import xarray as xr
 
-from polkit.config.quantities import read_table
+from polkit.config.calibration import read_calibration
 from polkit.errors import ConfigError, DataError
 from polkit.files import file_sha256
 from polkit.inference import FitResult, LogPosterior, MapResult, Prior, apply_priors, find_map
-from polkit.jobs.power.problem import (
-    MIN_POINTS,
-    MODELS,
-    PowerProblem,
-    ciuti_estimate,
-    linewidth_prior,
-    sweep_segments,
-)
+from polkit.jobs.power.calibrated import ciuti_estimate
+from polkit.jobs.power.channels import MIN_POINTS, sweep_segments
+from polkit.jobs.power.options import ExtractionWindow, PowerCalibration
+from polkit.jobs.power.problem import MODELS, PowerProblem, linewidth_prior
 from polkit.jobs.steps import clip_into
-from polkit.models.calibration import DensityCalibration, load_calibration
+from polkit.models.calibration import DensityCalibration
 from polkit.models.pump_spot import SPOTS
 
 __all__ = ["check_series", "PowerSetup", "prepare_power", "power_start", "refine_mode"]
@@ -155,42 +151,6 @@ def _table(series: xr.Dataset) -> xr.Dataset:
     return out
 
 
-#: calibration-file key of the pump-spot profile (read here: the density calibration
-#: itself does not depend on it)
-SPOT_KEY = "spot"
-
-
-def _calibration(calibration) -> tuple[DensityCalibration | None, dict[str, Any], str | None]:
-    """(calibration, its provenance, the spot profile it names or None)."""
-    if calibration is None:
-        return None, {}, None
-    spot = None
-    if isinstance(calibration, DensityCalibration):
-        cal = calibration
-        info = {"calibration": cal.to_dict()}
-    else:
-        table, path = read_table(calibration, what="calibration")
-        if SPOT_KEY in table:
-            spot = table.pop(SPOT_KEY)
-            if spot not in SPOTS:
-                raise ConfigError(f"expected one of {', '.join(map(repr, SPOTS))}, found "
-                                  f"{spot!r}; e.g. spot = \"gaussian\"", path=path,
-                                  key=SPOT_KEY)
-            try:
-                cal = load_calibration(table)
-            except ConfigError as exc:  # the rest of the file, refused with its path
-                raise ConfigError(exc.reason, path=path, key=exc.key) from None
-        else:
-            cal = load_calibration(calibration)
-        info = {"calibration": cal.to_dict()}
-        if spot is not None:
-            info["calibration"][SPOT_KEY] = spot
-        if isinstance(calibration, (str, os.PathLike)):
-            info["calibration_file"] = str(calibration)
-            info["calibration_sha256"] = file_sha256(calibration)
-    return cal, info, spot
-
-
 def _resolve_spot(spot, from_calibration, model) -> str:
     """The pump-spot profile: the option, else the calibration's key, else ``"point"``."""
     if spot is not None and spot not in SPOTS:
@@ -262,7 +222,10 @@ def _split_priors(priors, model):
     return table, path, lw
 
 
-def _check_options(model, n_wells, exciton_binding_meV, bohr_radius_nm, reservoir_lifetime_ps):
+def _check_options(model, physics: PowerCalibration):
+    """Refuse a bad model or sample constant; the reservoir lifetime as ``(value_ps, rel)``."""
+    n_wells, exciton_binding_meV = physics.n_wells, physics.exciton_binding_meV
+    bohr_radius_nm, reservoir_lifetime_ps = physics.bohr_radius_nm, physics.reservoir_lifetime_ps
     if model not in MODELS:
         raise ConfigError(f"expected model 'coherent' or 'reservoir', found {model!r}",
                           key="model")
@@ -318,6 +281,8 @@ class PowerSetup:
         For a spectra cube: the cube and the extracted observables (else ``None``).
     spot
         Pump-spot profile of the coherent model (``"point"``, ``"gaussian"``, ``"flat"``).
+    window
+        The extraction window of a spectra cube (:class:`ExtractionWindow`).
     """
 
     table: xr.Dataset
@@ -335,23 +300,92 @@ class PowerSetup:
     cube: xr.Dataset | None = None
     extraction: xr.Dataset | None = None
     spot: str = "point"
+    window: ExtractionWindow = field(default_factory=ExtractionWindow)
+
+
+@dataclass(eq=False)
+class _Observed:
+    """A loaded and checked series: what :func:`_observe` hands on to :func:`prepare_power`."""
+
+    raw: xr.Dataset
+    series: xr.Dataset
+    sha256: str
+    source_name: str
+    where: Any
+    extraction: xr.Dataset | None
+    notes: list[str]
+
+
+def _observe(source, model: str, window: ExtractionWindow, cube_refusal: str | None
+             ) -> _Observed:
+    """Load the source, reduce a spectra cube to observables, run the job-level checks."""
+    raw, sha, source_name, path = _load(source)
+    where = path if path is not None else source_name
+    cube = _is_cube(raw)
+    if cube and cube_refusal is not None:
+        raise DataError(cube_refusal, path=where, field="intensity")
+    if not cube and window.given:
+        key = "energy_window" if window.energy is not None else "angle_window"
+        raise ConfigError("windows apply to spectra cubes only; this source is a table of "
+                          "observables. Fix: drop the window", key=key)
+    notes: list[str] = []
+    extraction = None
+    if cube:
+        from polkit.linefit.lines import extract_observables
+
+        extraction = extract_observables(raw, energy_window=window.energy,
+                                         angle_window=window.angle, rng=0)
+        series = extraction
+        if "source" not in series.attrs or not series.attrs["source"]:
+            series.attrs["source"] = source_name
+        notes.append("observables extracted from the spectra cube (extract_observables, "
+                     f"{series.attrs.get('profile', 'lorentzian')} line, noise: "
+                     f"{series.attrs.get('noise_model', 'n/a')}); check {EXTRACTION_FIGURE}")
+    else:
+        series = raw
+    check_series(series, model, path=where)
+    return _Observed(raw, series, sha, source_name, where, extraction, notes)
+
+
+def _spot_note(spot: str) -> list[str]:
+    """What the pump-spot profile means for the result (none for a point spot)."""
+    if spot == "gaussian":
+        return ["Gaussian pump spot integrated by the camera: the single-mode steady "
+                "state is averaged over the spot, each radius on its own hysteresis "
+                "branch; the thresholds are the powers where the spot centre switches "
+                "(the integrated signal has no true jump: the switched area grows from "
+                "the centre, so the largest steps of the data need not sit there)"]
+    if spot == "flat":
+        return ["flat-top pump spot: every point of the imaged area sees the same "
+                "drive, so the single-mode loop applies"]
+    return []
+
+
+def _linewidth(model: str, user_lw: Prior | None, disp_draws: dict,
+               cal: DensityCalibration | None, notes: list[str]
+               ) -> tuple[Prior | None, str | None]:
+    """The polariton-linewidth prior of the coherent model and its note (``None`` else)."""
+    if model != "coherent":
+        return None, None
+    if user_lw is not None:
+        lw_prior, lw_note = user_lw, "polariton_linewidth prior as given by the user"
+    else:
+        lw_prior, lw_note = linewidth_prior(
+            dispersion_linewidth=disp_draws.get("lp_linewidth_k0"), calibration=cal)
+    notes.append(lw_note + "; drawn from this prior per posterior draw (the likelihood "
+                 "depends only on Delta/gamma)")
+    return lw_prior, lw_note
 
 
 def prepare_power(
     source: str | os.PathLike | xr.Dataset,
     *,
     model: str = "coherent",
-    calibration: str | os.PathLike | DensityCalibration | dict | None = None,
+    calibration: PowerCalibration | str | os.PathLike | DensityCalibration | dict | None = None,
     dispersion: str | os.PathLike | FitResult | None = None,
     priors: str | os.PathLike | dict | None = None,
-    energy_window: tuple[float, float] | None = None,
-    angle_window: tuple[float, float] | None = None,
-    n_wells: int | None = None,
-    exciton_binding_meV: float | None = None,
-    bohr_radius_nm: float | None = None,
-    reservoir_lifetime_ps: float | tuple[float, float] | None = None,
+    window: ExtractionWindow | dict | None = None,
     cube_refusal: str | None = None,
-    spot: str | None = None,
 ) -> tuple[PowerProblem, PowerSetup]:
     """Check the options, load and check the series, read the calibration and priors.
 
@@ -361,9 +395,6 @@ def prepare_power(
         Refuse a spectra cube with this message (a :class:`~polkit.errors.DataError` on
         ``intensity``); ``None`` reduces a cube with
         :func:`polkit.linefit.lines.extract_observables`.
-    spot
-        Pump-spot profile of the coherent model; ``None`` takes the calibration file's
-        ``spot`` key, else ``"point"``.
 
     Returns
     -------
@@ -376,70 +407,33 @@ def prepare_power(
     DataError, ConfigError
         Bad series, options, priors or calibration (naming the file and the field).
     """
-    lifetime_r = _check_options(model, n_wells, exciton_binding_meV, bohr_radius_nm,
-                                reservoir_lifetime_ps)
-    raw, sha, source_name, path = _load(source)
-    where = path if path is not None else source_name
-    cube = _is_cube(raw)
-    if cube and cube_refusal is not None:
-        raise DataError(cube_refusal, path=where, field="intensity")
-    if not cube and (energy_window is not None or angle_window is not None):
-        key = "energy_window" if energy_window is not None else "angle_window"
-        raise ConfigError("windows apply to spectra cubes only; this source is a table of "
-                          "observables. Fix: drop the window", key=key)
-    notes: list[str] = []
-    extraction = None
-    if cube:
-        from polkit.linefit.lines import extract_observables
-
-        extraction = extract_observables(raw, energy_window=energy_window,
-                                         angle_window=angle_window, rng=0)
-        series = extraction
-        if "source" not in series.attrs or not series.attrs["source"]:
-            series.attrs["source"] = source_name
-        notes.append("observables extracted from the spectra cube (extract_observables, "
-                     f"{series.attrs.get('profile', 'lorentzian')} line, noise: "
-                     f"{series.attrs.get('noise_model', 'n/a')}); check {EXTRACTION_FIGURE}")
-    else:
-        series = raw
-    check_series(series, model, path=where)
-    cal, cal_info, cal_spot = _calibration(calibration)
-    spot = _resolve_spot(spot, cal_spot, model)
+    physics = PowerCalibration.of(calibration)
+    window = ExtractionWindow.of(window)
+    lifetime_r = _check_options(model, physics)
+    seen = _observe(source, model, window, cube_refusal)
+    notes = seen.notes
+    cal, cal_info, cal_spot = read_calibration(physics.density)
+    spot = _resolve_spot(physics.spot, cal_spot, model)
     disp_draws, disp_info = _dispersion(dispersion)
 
-    table = _table(series)
-    problem = PowerProblem.from_series(table, model, path=where, spot=spot)
-    if spot == "gaussian":
-        notes.append("Gaussian pump spot integrated by the camera: the single-mode steady "
-                     "state is averaged over the spot, each radius on its own hysteresis "
-                     "branch; the thresholds are the powers where the spot centre switches "
-                     "(the integrated signal has no true jump: the switched area grows from "
-                     "the centre, so the largest steps of the data need not sit there)")
-    elif spot == "flat":
-        notes.append("flat-top pump spot: every point of the imaged area sees the same "
-                     "drive, so the single-mode loop applies")
+    table = _table(seen.series)
+    problem = PowerProblem.from_series(table, model, path=seen.where, spot=spot)
+    notes.extend(_spot_note(spot))
     if problem.ignored:
         notes.append(f"not used by the {model} model: {', '.join(problem.ignored)}")
     space = problem.default_space()
     user, prior_path, user_lw = _split_priors(priors, model)
     if user:
         problem.space = apply_priors(space, user, path=prior_path)
-    lw_prior, lw_note = None, None
-    if model == "coherent":
-        if user_lw is not None:
-            lw_prior, lw_note = user_lw, "polariton_linewidth prior as given by the user"
-        else:
-            lw_prior, lw_note = linewidth_prior(
-                dispersion_linewidth=disp_draws.get("lp_linewidth_k0"), calibration=cal)
-        notes.append(lw_note + "; drawn from this prior per posterior draw (the likelihood "
-                     "depends only on Delta/gamma)")
-    options = {"n_wells": n_wells, "exciton_binding_meV": exciton_binding_meV,
-               "bohr_radius_nm": bohr_radius_nm, "reservoir_lifetime": lifetime_r}
-    setup = PowerSetup(table=table, sha256=sha, source_name=source_name, model=model,
-                       calibration=cal, calibration_info=cal_info, dispersion_draws=disp_draws,
-                       dispersion_info=disp_info, linewidth_prior=lw_prior,
-                       linewidth_note=lw_note, notes=notes, options=options,
-                       cube=raw if cube else None, extraction=extraction, spot=spot)
+    lw_prior, lw_note = _linewidth(model, user_lw, disp_draws, cal, notes)
+    options = {"n_wells": physics.n_wells, "exciton_binding_meV": physics.exciton_binding_meV,
+               "bohr_radius_nm": physics.bohr_radius_nm, "reservoir_lifetime": lifetime_r}
+    setup = PowerSetup(table=table, sha256=seen.sha256, source_name=seen.source_name,
+                       model=model, calibration=cal, calibration_info=cal_info,
+                       dispersion_draws=disp_draws, dispersion_info=disp_info,
+                       linewidth_prior=lw_prior, linewidth_note=lw_note, notes=notes,
+                       options=options, cube=seen.raw if seen.extraction is not None else None,
+                       extraction=seen.extraction, spot=spot, window=window)
     return problem, setup
 
 
