@@ -116,6 +116,7 @@ def _dispersion_stage(folder: Path, out: Path, seed: int, fit: dict) -> dict:
 
 def _power_stage(folder: Path, out: Path, seed: int, fit: dict) -> dict:
     """Stage 3: the coherent (calibrated) and the nonresonant power series."""
+    from polkit.inference.settings import SamplerSettings
     from polkit.jobs.power.run import fit_power
 
     _say("\n== 3. power series: coherent drive (up and down sweeps), calibrated ==")
@@ -124,12 +125,12 @@ def _power_stage(folder: Path, out: Path, seed: int, fit: dict) -> dict:
         pc = fit_power(folder / "ds1_p1_power_coherent.csv", model="coherent",
                        calibration=folder / "ds1_calibration.toml",
                        dispersion=out / "dispersion_p1", seed=seed + 2,
-                       out=out / "power_coherent", **fit)
+                       out=out / "power_coherent", sampler=SamplerSettings(**fit))
     _say(pc.table())
 
     _say("\n== 3b. power series: nonresonant drive, condensation threshold ==")
     pr = fit_power(folder / "ds1_p1_power_nonresonant.csv", model="reservoir", seed=seed + 3,
-                   out=out / "power_nonresonant", **fit)
+                   out=out / "power_nonresonant", sampler=SamplerSettings(**fit))
     _say(pr.table())
     return {"power_coherent": pc, "power_nonresonant": pr}
 

@@ -95,21 +95,22 @@ def _progress(args) -> bool:
 
 def _fit_options(args, out: Path) -> dict:
     """The options every fitting command shares (priors, seed, resume, limits, output)."""
-    return dict(priors=args.priors, seed=args.seed, resume=args.resume, strict=args.strict,
-                out=out, max_steps=args.max_steps, n_walkers=args.walkers,
-                progress=_progress(args))
+    from polkit.inference.settings import SamplerSettings
+
+    return dict(priors=args.priors, seed=args.seed, resume=args.resume, out=out,
+                sampler=SamplerSettings(max_steps=args.max_steps, n_walkers=args.walkers,
+                                        strict=args.strict, progress=_progress(args)))
 
 
 def _cmd_power(args) -> int:
-    from polkit.jobs.power.run import fit_power
+    from polkit.jobs.power.run import PowerCalibration, fit_power
 
     out = args.out or Path("polkit-out") / args.series.stem
     result = fit_power(
         args.series,
         model=args.model,
-        calibration=args.calibration,
+        calibration=PowerCalibration(density=args.calibration, spot=args.spot),
         dispersion=args.dispersion,
-        spot=args.spot,
         **_fit_options(args, out),
         quick=args.quick,
     )

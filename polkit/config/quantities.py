@@ -1,6 +1,6 @@
 """Reading the small TOML files of polkit: a table of quantities with units and uncertainties.
 
-The density calibration (:func:`polkit.models.calibration.load_calibration`) and the
+The density calibration (:func:`polkit.config.calibration.load_calibration`) and the
 device description (:func:`polkit.config.device.load_device`) write every physical
 quantity as ``{value = ..., error = ... | rel_error = ..., units = "..."}``: ``error`` is
 absolute (in the units of ``value``), ``rel_error`` relative, and either becomes the

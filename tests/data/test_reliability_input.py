@@ -33,7 +33,7 @@ from polkit.data import load_map, load_series, make_map, validate_map, validate_
 from polkit.errors import ConfigError, DataError, DataWarning
 from polkit.inference import Parameter, ParameterSpace, Prior, apply_priors
 from polkit.config.device import load_device
-from polkit.models.calibration import load_calibration
+from polkit.config.calibration import load_calibration
 
 PACKAGE = Path(__file__).resolve().parents[2] / "polkit"
 GUARD_S = 20  # a loader still busy after this long on a few-kB file is hung

@@ -122,7 +122,7 @@ def test_fit_power_quick_returns_the_quick_answer_without_chains(tmp_path):
 
     out = tmp_path / "p"
     summary = fit_power(DEMO / "ds1_p1_power_coherent.csv", model="coherent", seed=1,
-                        out=out, progress=False, quick=True)
+                        out=out, sampler={"progress": False}, quick=True)
     assert summary["available"] and summary["method"] == LABEL
     assert not (out / "chains.h5").exists() and (out / "quick_summary.json").exists()
     for v in summary["parameters"].values():

@@ -13,6 +13,7 @@ from coherent_loops import centre_thresholds, loop_powers, noisy_series, point_l
 from scipy.integrate import quad
 
 from polkit.errors import ConfigError, DataError
+from polkit.jobs.power.options import PowerCalibration
 from polkit.jobs.power.problem import PowerProblem
 from polkit.jobs.power.stages import prepare_power
 from polkit.models import pump_spot
@@ -108,9 +109,10 @@ def test_flat_spot_keeps_the_single_mode_loop():
 def test_spot_options_are_checked(tmp_path):
     s = _series()
     with pytest.raises(ConfigError, match="spot"):
-        prepare_power(s, model="coherent", spot="square")
+        prepare_power(s, model="coherent", calibration=PowerCalibration(spot="square"))
     with pytest.raises(ConfigError, match="coherent model only"):
-        prepare_power(s.drop_vars("sweep"), model="reservoir", spot="gaussian")
+        prepare_power(s.drop_vars("sweep"), model="reservoir",
+                      calibration=PowerCalibration(spot="gaussian"))
     cal = tmp_path / "cal.toml"
     cal.write_text('drive = "cw"\nspot = "gaussian"\n'
                    'spot_fwhm = {value = 3.0, units = "um"}\n'
@@ -119,7 +121,7 @@ def test_spot_options_are_checked(tmp_path):
     problem, setup = prepare_power(s, model="coherent", calibration=cal)
     assert problem.spot == setup.spot == "gaussian"
     with pytest.raises(ConfigError, match="make them agree"):
-        prepare_power(s, model="coherent", calibration=cal, spot="point")
+        prepare_power(s, model="coherent", calibration=PowerCalibration(density=cal, spot="point"))
     bad = tmp_path / "bad.toml"
     bad.write_text(cal.read_text().replace('"gaussian"', '"round"'), encoding="utf-8")
     with pytest.raises(ConfigError, match=r"bad\.toml: key 'spot'"):

@@ -209,7 +209,7 @@ def _advice(problem: PowerProblem, passed: bool, ran: bool, floors, failing) -> 
     if problem.model == "coherent" and problem.spot != "gaussian":
         text += ("; a loop measured with a Gaussian pump spot and a camera integrating the "
                  "whole spot is smeared and widened: refit with --spot gaussian "
-                 "(spot=\"gaussian\" in fit_power)")
+                 "(calibration=PowerCalibration(spot=\"gaussian\") in fit_power)")
     elif problem.model == "coherent":
         text += ("; the Gaussian-spot average does not describe them either: check the spot "
                  "profile, detector saturation, drift between sweeps and the sweep labels")
