@@ -1,7 +1,7 @@
 """Compiled, fused kernels for the whole-map variable projection (numba), with a numpy fallback.
 
-The hot path of a whole-map fit is :func:`polkit.models.spectral.project_linear` on a
-lazily evaluated :class:`~polkit.models.spectral.MapBasis`: for every walker ``w`` and
+The hot path of a whole-map fit is :func:`polkit.numerics.projection.project_linear` on a
+lazily evaluated :class:`~polkit.numerics.projection.MapBasis`: for every walker ``w`` and
 in-plane point ``a`` it needs the weighted Gram blocks::
 
     G[w, a, k, l] = sum_E s(E)^2 B_k(E) B_l(E)          (basis x basis)
@@ -315,7 +315,7 @@ def _accumulate(buf, rhs, a, g, c, w):
 def _solve_rows(g, cross, pinv, hb, c0, subsets, sizes, nonneg, rtol, chi2_out, amps_out):
     """Background elimination and the exact small non-negative solves, row by row.
 
-    The same arithmetic as ``spectral.project_linear``'s numpy path: the background
+    The same arithmetic as ``projection.project_linear``'s numpy path: the background
     columns are eliminated by their Schur complement, then every active set (in the
     order of ``subsets``, sizes 1 to K <= 3) is solved in closed form with the same
     singularity test, and the admissible solution with the smallest ``chi^2`` is kept.
@@ -669,7 +669,7 @@ def gram_lorentz(energy, xr, h2, ah, b, sqrt_weight, weighted_rhs):
         Per-row line coefficients, shape ``(W, A, K)`` (pole position eV, squared half
         width eV^2, residue terms; see ``spectral._lorentz_coefficients``).
     sqrt_weight, weighted_rhs
-        ``(A, E)`` and ``(A, J, E)`` from :func:`polkit.models.spectral.prepare_map`.
+        ``(A, E)`` and ``(A, J, E)`` from :func:`polkit.numerics.projection.prepare_map`.
 
     Returns
     -------

@@ -16,18 +16,10 @@ from scipy import integrate, optimize
 
 from polkit.errors import DataError
 from polkit.models.dispersion import cavity_energy
-from polkit.models.spectral import (
-    MapBasis,
-    branch_poles,
-    emission_basis,
-    exciton_propagator,
-    photon_green,
-    photon_spectral_function,
-    prepare_map,
-    project_linear,
-    reflectance_basis,
-    simulate_map,
-)
+from polkit.models.green import exciton_propagator, photon_green, photon_spectral_function
+from polkit.models.simulate import simulate_map
+from polkit.models.spectral import branch_poles, emission_basis, reflectance_basis
+from polkit.numerics.projection import MapBasis, prepare_map, project_linear
 
 # Invented, sample-like parameters (eV); not a real device.
 TRUTH = dict(e_c0=1.526, n_eff=3.3, e_x=1.530, g=0.0017, gamma_c=0.0006, gamma_x=0.0004)

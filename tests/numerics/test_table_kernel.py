@@ -34,7 +34,7 @@ from polkit.jobs.dispersion.problem import (
 from polkit.jobs.dispersion.run import prepare_dispersion
 from polkit.models import spectral
 from polkit.models.dispersion import cavity_energy, two_mode_eigenvalues
-from polkit.models.spectral import photon_green
+from polkit.models.green import photon_green
 from polkit.numerics import kernels as _kernels
 
 pytestmark = pytest.mark.skipif(not _kernels.available(),
