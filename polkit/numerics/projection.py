@@ -458,27 +458,60 @@ def project_linear(
         If the map, the inverse variances or the basis do not fit together, or contain
         infinities / negative weights.
     """
-    if isinstance(basis, MapBasis):
-        batch = basis.batch_shape
-        n_w, n_a, n_k = basis.n_walkers, basis.n_in_plane, basis.n_columns
-        n_e = basis.energy_ev.size
-        get = basis.block
-        if energy_ev is None:
-            energy_ev = basis.energy_ev
+    rows = _basis_rows(basis)
+    if energy_ev is None and isinstance(basis, MapBasis):
+        energy_ev = basis.energy_ev
+    data = _weighted_map(y, inv_var, basis, rows, background, energy_ev)
+    kernels = _compiled_kernels(basis)
+    g_bb, cross = _gram_sums(basis, rows, data, kernels)
+    if kernels is not None and rows.n_k <= kernels.MAX_SOLVE_COLUMNS:
+        chi2_angle, amps = kernels.solve_rows(
+            g_bb, cross, data.background_pinv, data.h_background, data.chi2_background,
+            nonneg=nonneg, rtol=_RTOL_SINGULAR)
     else:
-        arr = np.asarray(basis, dtype=float)
-        if arr.ndim < 3:
-            raise DataError(
-                f"expected a basis of shape (..., in-plane, columns, energy), found {arr.shape}.",
-                field="basis")
-        batch = arr.shape[:-3]
-        n_a, n_k, n_e = arr.shape[-3:]
-        n_w = int(np.prod(batch)) if batch else 1
-        flat_arr = arr.reshape((n_w, n_a, n_k, n_e))
+        chi2_angle, amps = _solve_rows(g_bb, cross, data, nonneg)
+    chi2 = chi2_angle.sum(axis=-1).reshape(rows.batch)
+    if not return_parts:
+        return chi2
+    return _solution(rows, data, cross, amps, chi2, chi2_angle)
 
-        def get(ws: slice, as_: slice) -> NDArray:
-            return flat_arr[ws, as_].copy()
 
+@dataclass(frozen=True)
+class _Rows:
+    """A basis seen as ``(W, A, K, E)`` rows: its sizes and a block reader."""
+
+    batch: tuple[int, ...]
+    n_w: int
+    n_a: int
+    n_k: int
+    n_e: int
+    get: Callable[[slice, slice], NDArray]
+
+
+def _basis_rows(basis: MapBasis | ArrayLike) -> _Rows:
+    """The sizes of a basis and ``get(walkers, in_plane)``, a fresh block the caller may scale."""
+    if isinstance(basis, MapBasis):
+        return _Rows(basis.batch_shape, basis.n_walkers, basis.n_in_plane, basis.n_columns,
+                     basis.energy_ev.size, basis.block)
+    arr = np.asarray(basis, dtype=float)
+    if arr.ndim < 3:
+        raise DataError(
+            f"expected a basis of shape (..., in-plane, columns, energy), found {arr.shape}.",
+            field="basis")
+    batch = arr.shape[:-3]
+    n_a, n_k, n_e = arr.shape[-3:]
+    n_w = int(np.prod(batch)) if batch else 1
+    flat_arr = arr.reshape((n_w, n_a, n_k, n_e))
+
+    def get(ws: slice, as_: slice) -> NDArray:
+        return flat_arr[ws, as_].copy()
+
+    return _Rows(batch, n_w, n_a, n_k, n_e, get)
+
+
+def _weighted_map(y, inv_var, basis, rows: _Rows, background, energy_ev) -> WeightedMap:
+    """The map prepared for the projection, checked against the basis it meets."""
+    n_a, n_e = rows.n_a, rows.n_e
     if isinstance(y, WeightedMap):
         data = y
         found = data.shape
@@ -503,34 +536,33 @@ def project_linear(
         raise DataError("expected the prepared map and the basis to share one energy axis, "
                         "found different axes. Prepare the map with the basis's energies.",
                         field="energy_ev")
-    m = data.columns.shape[1]
-    sw, rhs = data.sqrt_weight, data.weighted_rhs
+    return data
 
-    kernels = _compiled_kernels(basis)
+
+def _gram_sums(basis, rows: _Rows, data: WeightedMap, kernels):
+    """Weighted Gram blocks ``B^T W B`` (W, A, K, K) and ``B^T W [C, y]`` (W, A, K, m + 1)."""
+    sw, rhs = data.sqrt_weight, data.weighted_rhs
     if kernels is not None:  # fused compiled pass: line shapes and Gram sums together
         mode, args = basis._fused
         gram = {"lorentz": kernels.gram_lorentz, "disorder": kernels.gram_disorder,
                 "reflectance": kernels.gram_reflectance}[mode]
-        g_bb, cross = gram(*args, sw, rhs)
-    else:
-        g_bb = np.empty((n_w, n_a, n_k, n_k))
-        cross = np.empty((n_w, n_a, n_k, m + 1))
-        for ws, as_ in _iter_blocks(n_w, n_a, n_k * n_e):
-            blk = get(ws, as_)
-            blk *= sw[as_, None, :]
-            g_bb[ws, as_] = _rowdot(blk[..., :, None, :], blk[..., None, :, :])
-            cross[ws, as_] = _rowdot(blk[..., :, None, :], rhs[as_, None, :, :])
+        return gram(*args, sw, rhs)
+    n_w, n_a, n_k, n_e = rows.n_w, rows.n_a, rows.n_k, rows.n_e
+    m = data.columns.shape[1]
+    g_bb = np.empty((n_w, n_a, n_k, n_k))
+    cross = np.empty((n_w, n_a, n_k, m + 1))
+    for ws, as_ in _iter_blocks(n_w, n_a, n_k * n_e):
+        blk = rows.get(ws, as_)
+        blk *= sw[as_, None, :]
+        g_bb[ws, as_] = _rowdot(blk[..., :, None, :], blk[..., None, :, :])
+        cross[ws, as_] = _rowdot(blk[..., :, None, :], rhs[as_, None, :, :])
+    return g_bb, cross
 
-    if kernels is not None and n_k <= kernels.MAX_SOLVE_COLUMNS:
-        chi2_angle, amps = kernels.solve_rows(
-            g_bb, cross, data.background_pinv, data.h_background, data.chi2_background,
-            nonneg=nonneg, rtol=_RTOL_SINGULAR)
-    else:
-        chi2_angle, amps = _solve_rows(g_bb, cross, data, nonneg)
-    chi2 = chi2_angle.sum(axis=-1).reshape(batch)
-    if not return_parts:
-        return chi2
 
+def _solution(rows: _Rows, data: WeightedMap, cross, amps, chi2, chi2_angle) -> LinearSolution:
+    """Background coefficients and the best-fit map of solved amplitudes."""
+    batch, n_w, n_a, n_k, n_e = rows.batch, rows.n_w, rows.n_a, rows.n_k, rows.n_e
+    m = data.columns.shape[1]
     if m:
         resid_h = data.h_background[None] - np.einsum("wakj,wak->waj", cross[..., :m], amps)
         coef = np.einsum("aij,waj->wai", data.background_pinv, resid_h)
@@ -538,7 +570,7 @@ def project_linear(
         coef = np.zeros((n_w, n_a, 0))
     model = np.einsum("waj,ej->wae", coef, data.columns)
     for ws, as_ in _iter_blocks(n_w, n_a, n_k * n_e):
-        model[ws, as_] += np.einsum("wak,wake->wae", amps[ws, as_], get(ws, as_))
+        model[ws, as_] += np.einsum("wak,wake->wae", amps[ws, as_], rows.get(ws, as_))
     return LinearSolution(
         chi2=chi2,
         chi2_per_angle=chi2_angle.reshape(batch + (n_a,)),
@@ -546,4 +578,3 @@ def project_linear(
         background=coef.reshape(batch + (n_a, m)),
         model=model.reshape(batch + (n_a, n_e)),
     )
-
