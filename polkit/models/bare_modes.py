@@ -54,10 +54,8 @@ def bare_mode_basis(
 
     Parameters
     ----------
-    in_plane
-        1-D angle (degree) or k (1/um) axis of length ``A``, see ``axis``.
-    energy_ev
-        1-D energy axis of length ``E``, eV.
+    in_plane, energy_ev, axis
+        As in :func:`polkit.models.spectral.emission_basis`.
     e_c0, n_eff
         Cavity energy at normal incidence (eV) and effective index.
     e_x
@@ -67,8 +65,6 @@ def bare_mode_basis(
     kappa
         Top-mirror coupling, eV: given, the basis is the reflectance form; ``None`` gives
         the emission form.
-    axis
-        ``"angle"`` (degree, default) or ``"k"`` (1/um).
 
     Returns
     -------

@@ -126,10 +126,8 @@ def gaussian_spot_sweep(
 
     Parameters
     ----------
-    delta
-        Pump detuning ``E_pump - E_LP`` in meV (e.g. shape ``(W, 1)``).
-    gamma
-        Linewidth (FWHM) in meV, > 0.
+    delta, gamma
+        As in :func:`polkit.models.coherent.turning_points` (meV; e.g. shape ``(W, 1)``).
     drive
         Centre drive ``F_0 = alpha kappa P`` in meV^3, >= 0, in acquisition order along
         the last axis: non-decreasing for ``"up"``, non-increasing for ``"down"``.

@@ -437,24 +437,8 @@ def reflectance_basis(
 
     Parameters
     ----------
-    in_plane
-        1-D angle (degree) or k (1/um) axis of length ``A``, see ``axis``.
-    energy_ev
-        1-D energy axis of length ``E``, eV.
-    e_c0
-        Cavity energy at normal incidence, eV.
-    n_eff
-        Effective index of the cavity mode.
-    e_x, g, gamma_x
-        Exciton energy, coupling (Rabi splitting ``2 g``) and FWHM, eV; lists for
-        several excitons (a single ``gamma_x`` is shared).  Linewidths must be > 0 (a
-        zero-width line cannot be represented on a pixel grid).
-    gamma_c
-        Cavity FWHM, eV (> 0).
-    sigma_x
-        Gaussian exciton-energy disorder (standard deviation, eV) or ``None``.
-    axis
-        ``"angle"`` (degree, default) or ``"k"`` (1/um).
+    in_plane, energy_ev, e_c0, n_eff, e_x, g, gamma_c, gamma_x, sigma_x, axis
+        As in :func:`emission_basis`.
     kappa
         Top-mirror coupling, eV.
 

@@ -1,5 +1,12 @@
 """Compiled, fused kernels for the whole-map variable projection (numba), with a numpy fallback.
 
+Unrolled on purpose: ``_lorentz2`` and ``_lorentz3`` repeat the general loop of
+``_lorentz`` written out for two and three branches, and the kernels repeat the line
+formula rather than call a shared helper.  That repetition is the point of this module:
+it keeps every sum of a row in a register and the compiled loops free of calls, which is
+where the speed of the hot path comes from (and the compiled arithmetic, fixed by the
+tests, stays exactly as it is).  Do not fold it back into loops or helpers.
+
 The hot path of a whole-map fit is :func:`polkit.numerics.projection.project_linear` on a
 lazily evaluated :class:`~polkit.numerics.projection.MapBasis`: for every walker ``w`` and
 in-plane point ``a`` it needs the weighted Gram blocks::

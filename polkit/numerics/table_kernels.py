@@ -42,6 +42,16 @@ __all__ = [
 # --------------------------------------------------------------------------------------
 # kernels (numba compiles them on first use and caches the machine code on disk)
 # --------------------------------------------------------------------------------------
+def _peak_term(e, de, pos, w_ok, wr, wd, h):
+    """One peak against one branch: ``((e - pos) / de)^2 + [w_ok] ((wr - 2 h) / wd)^2``."""
+    r = (e - pos) / de
+    term = r * r
+    if w_ok:
+        q = (wr - 2.0 * h) / wd
+        term += q * q
+    return term
+
+
 def _table_walker_chi2(pr, h, ratio, t_e, t_de, t_wr, t_wd, t_w_ok, t_own, t_resp, t_all,
                        t_found, has_resp):
     """Peak-table chi-square of one walker: peaks matched to branches, Gaussian terms summed.
@@ -78,11 +88,7 @@ def _table_walker_chi2(pr, h, ratio, t_e, t_de, t_wr, t_wd, t_w_ok, t_own, t_res
                     pos = pr[a, p] + shift
                 else:
                     pos = pr[a, p] - h[a, p] * ratio[a, p]
-                r = (e - pos) / de
-                term = r * r
-                if t_w_ok[a, p]:
-                    q = (t_wr[a, p] - 2.0 * h[a, p]) / t_wd[a, p]
-                    term += q * q
+                term = _peak_term(e, de, pos, t_w_ok[a, p], t_wr[a, p], t_wd[a, p], h[a, p])
             else:
                 term = np.inf
                 for k in range(n_k):
@@ -90,11 +96,7 @@ def _table_walker_chi2(pr, h, ratio, t_e, t_de, t_wr, t_wd, t_w_ok, t_own, t_res
                         pos = pr[a, k] + t_own[a, p] * ratio[a, k]
                     else:
                         pos = pr[a, k] - h[a, k] * ratio[a, k]
-                    r = (e - pos) / de
-                    v = r * r
-                    if t_w_ok[a, p]:
-                        q = (t_wr[a, p] - 2.0 * h[a, k]) / t_wd[a, p]
-                        v += q * q
+                    v = _peak_term(e, de, pos, t_w_ok[a, p], t_wr[a, p], t_wd[a, p], h[a, k])
                     if v != v:  # NaN wins, as in numpy.min
                         term = v
                         break
@@ -251,6 +253,7 @@ def _two_mode_table(theta, columns, scales, grid, k_axis, n_eff_limit, t_e, t_de
 if _numba is not None:
     # the peak-table helpers keep strict IEEE arithmetic (no fastmath)
     _strict = _numba.njit(cache=True, error_model="numpy")
+    _peak_term = _strict(_peak_term)
     _table_walker_chi2 = _strict(_table_walker_chi2)
     _two_mode_rows = _strict(_two_mode_rows)
     _walker_physics = _strict(_walker_physics)
