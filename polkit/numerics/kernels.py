@@ -1,11 +1,13 @@
 """Compiled, fused kernels for the whole-map variable projection (numba), with a numpy fallback.
 
 Unrolled on purpose: ``_lorentz2`` and ``_lorentz3`` repeat the general loop of
-``_lorentz`` written out for two and three branches, and the kernels repeat the line
+``_lorentz`` written out for two and three branches, and the Gram kernels repeat the line
 formula rather than call a shared helper.  That repetition is the point of this module:
-it keeps every sum of a row in a register and the compiled loops free of calls, which is
+it keeps every sum of a row in a register and the per-pixel loops free of calls, which is
 where the speed of the hot path comes from (and the compiled arithmetic, fixed by the
-tests, stays exactly as it is).  Do not fold it back into loops or helpers.
+tests, stays exactly as it is).  Do not fold it back into loops or helpers.  The solve,
+which runs once per row rather than per pixel and keeps strict IEEE arithmetic, is
+written in steps.
 
 The hot path of a whole-map fit is :func:`polkit.numerics.projection.project_linear` on a
 lazily evaluated :class:`~polkit.numerics.projection.MapBasis`: for every walker ``w`` and
@@ -300,6 +302,81 @@ def _accumulate(buf, rhs, a, g, c, w):
             g[w, a, q, k] = acc
 
 
+def _row_is_finite(g, cross, w, a):
+    """True if the Gram blocks of row ``(w, a)`` are finite (a broken basis gives NaN)."""
+    n_k = g.shape[2]
+    n_j = cross.shape[3]
+    finite = True
+    for k in range(n_k):
+        for q in range(n_k):
+            if not np.isfinite(g[w, a, k, q]):
+                finite = False
+        for j in range(n_j):
+            if not np.isfinite(cross[w, a, k, j]):
+                finite = False
+    return finite
+
+
+def _eliminate_background(g, cross, pinv, hb, w, a, t, gr, hr):
+    """Schur complement of the background columns of row ``(w, a)`` into ``gr`` and ``hr``."""
+    n_k = g.shape[2]
+    m = cross.shape[3] - 1
+    for k in range(n_k):
+        for i in range(m):
+            acc = 0.0
+            for j in range(m):
+                acc += cross[w, a, k, j] * pinv[a, j, i]
+            t[k, i] = acc
+    for k in range(n_k):
+        for q in range(n_k):
+            acc = 0.0
+            for i in range(m):
+                acc += t[k, i] * cross[w, a, q, i]
+            gr[k, q] = g[w, a, k, q] - acc
+        acc = 0.0
+        for i in range(m):
+            acc += t[k, i] * hb[a, i]
+        hr[k] = cross[w, a, k, m] - acc
+
+
+def _solve_subset(gr, hr, g, w, a, subset, p, rtol, x):
+    """Closed-form solve of the active set ``subset[:p]`` into ``x``; False if singular."""
+    i0 = subset[0]
+    if p == 1:
+        d = gr[i0, i0]
+        ok = d > rtol * g[w, a, i0, i0]
+        x[0] = hr[i0] / (d if ok else 1.0)
+    elif p == 2:
+        i1 = subset[1]
+        ga, gb, gc = gr[i0, i0], gr[i0, i1], gr[i1, i1]
+        det = ga * gc - gb * gb
+        ok = det > rtol * g[w, a, i0, i0] * g[w, a, i1, i1]
+        inv = 1.0 / (det if ok else 1.0)
+        x[0] = (gc * hr[i0] - gb * hr[i1]) * inv
+        x[1] = (ga * hr[i1] - gb * hr[i0]) * inv
+    else:
+        i1 = subset[1]
+        i2 = subset[2]
+        g00, g01, g02 = gr[i0, i0], gr[i0, i1], gr[i0, i2]
+        g10, g11, g12 = gr[i1, i0], gr[i1, i1], gr[i1, i2]
+        g20, g21, g22 = gr[i2, i0], gr[i2, i1], gr[i2, i2]
+        c00 = g11 * g22 - g12 * g21
+        c01 = g12 * g20 - g10 * g22
+        c02 = g10 * g21 - g11 * g20
+        c11 = g00 * g22 - g02 * g20
+        c12 = g01 * g20 - g00 * g21
+        c22 = g00 * g11 - g01 * g10
+        det = g00 * c00 + g01 * c01 + g02 * c02
+        scale = g[w, a, i0, i0] * g[w, a, i1, i1] * g[w, a, i2, i2]
+        ok = det > rtol * scale
+        inv = 1.0 / (det if ok else 1.0)
+        r0, r1, r2 = hr[i0], hr[i1], hr[i2]
+        x[0] = (c00 * r0 + c01 * r1 + c02 * r2) * inv
+        x[1] = (c01 * r0 + c11 * r1 + c12 * r2) * inv
+        x[2] = (c02 * r0 + c12 * r1 + c22 * r2) * inv
+    return ok
+
+
 def _solve_rows(g, cross, pinv, hb, c0, subsets, sizes, nonneg, rtol, chi2_out, amps_out):
     """Background elimination and the exact small non-negative solves, row by row.
 
@@ -309,77 +386,22 @@ def _solve_rows(g, cross, pinv, hb, c0, subsets, sizes, nonneg, rtol, chi2_out, 
     singularity test, and the admissible solution with the smallest ``chi^2`` is kept.
     """
     n_w, n_a, n_k = g.shape[0], g.shape[1], g.shape[2]
-    n_j = cross.shape[3]
-    m = n_j - 1
+    m = cross.shape[3] - 1
     t = np.empty((n_k, max(m, 1)))
     gr = np.empty((n_k, n_k))
     hr = np.empty(n_k)
     x = np.empty(3)
     for w in range(n_w):
         for a in range(n_a):
-            finite = True
-            for k in range(n_k):
-                for q in range(n_k):
-                    if not np.isfinite(g[w, a, k, q]):
-                        finite = False
-                for j in range(n_j):
-                    if not np.isfinite(cross[w, a, k, j]):
-                        finite = False
-            for k in range(n_k):
-                for i in range(m):
-                    acc = 0.0
-                    for j in range(m):
-                        acc += cross[w, a, k, j] * pinv[a, j, i]
-                    t[k, i] = acc
-            for k in range(n_k):
-                for q in range(n_k):
-                    acc = 0.0
-                    for i in range(m):
-                        acc += t[k, i] * cross[w, a, q, i]
-                    gr[k, q] = g[w, a, k, q] - acc
-                acc = 0.0
-                for i in range(m):
-                    acc += t[k, i] * hb[a, i]
-                hr[k] = cross[w, a, k, m] - acc
+            finite = _row_is_finite(g, cross, w, a)
+            _eliminate_background(g, cross, pinv, hb, w, a, t, gr, hr)
             base = c0[a]
             best = base
             for k in range(n_k):
                 amps_out[w, a, k] = 0.0
             for s in range(sizes.size):
                 p = sizes[s]
-                i0 = subsets[s, 0]
-                if p == 1:
-                    d = gr[i0, i0]
-                    ok = d > rtol * g[w, a, i0, i0]
-                    x[0] = hr[i0] / (d if ok else 1.0)
-                elif p == 2:
-                    i1 = subsets[s, 1]
-                    ga, gb, gc = gr[i0, i0], gr[i0, i1], gr[i1, i1]
-                    det = ga * gc - gb * gb
-                    ok = det > rtol * g[w, a, i0, i0] * g[w, a, i1, i1]
-                    inv = 1.0 / (det if ok else 1.0)
-                    x[0] = (gc * hr[i0] - gb * hr[i1]) * inv
-                    x[1] = (ga * hr[i1] - gb * hr[i0]) * inv
-                else:
-                    i1 = subsets[s, 1]
-                    i2 = subsets[s, 2]
-                    g00, g01, g02 = gr[i0, i0], gr[i0, i1], gr[i0, i2]
-                    g10, g11, g12 = gr[i1, i0], gr[i1, i1], gr[i1, i2]
-                    g20, g21, g22 = gr[i2, i0], gr[i2, i1], gr[i2, i2]
-                    c00 = g11 * g22 - g12 * g21
-                    c01 = g12 * g20 - g10 * g22
-                    c02 = g10 * g21 - g11 * g20
-                    c11 = g00 * g22 - g02 * g20
-                    c12 = g01 * g20 - g00 * g21
-                    c22 = g00 * g11 - g01 * g10
-                    det = g00 * c00 + g01 * c01 + g02 * c02
-                    scale = g[w, a, i0, i0] * g[w, a, i1, i1] * g[w, a, i2, i2]
-                    ok = det > rtol * scale
-                    inv = 1.0 / (det if ok else 1.0)
-                    r0, r1, r2 = hr[i0], hr[i1], hr[i2]
-                    x[0] = (c00 * r0 + c01 * r1 + c02 * r2) * inv
-                    x[1] = (c01 * r0 + c11 * r1 + c12 * r2) * inv
-                    x[2] = (c02 * r0 + c12 * r1 + c22 * r2) * inv
+                ok = _solve_subset(gr, hr, g, w, a, subsets[s], p, rtol, x)
                 if ok and nonneg:
                     for i in range(p):
                         if not x[i] >= 0.0:
@@ -407,12 +429,19 @@ if _numba is not None:
     _lorentz2 = _inner(_lorentz2)
     _lorentz3 = _inner(_lorentz3)
     _outer = _numba.njit(cache=True, fastmath=_FASTMATH, error_model="numpy")
+    # the solve and its steps keep strict IEEE arithmetic (no fastmath); the steps are
+    # inlined into the row loop, which stays a single call-free loop once compiled
+    _solve_strict = _numba.njit(cache=True, error_model="numpy")
+    _solve_step = _numba.njit(cache=True, error_model="numpy", inline="always")
+    _row_is_finite = _solve_step(_row_is_finite)
+    _eliminate_background = _solve_step(_eliminate_background)
+    _solve_subset = _solve_step(_solve_subset)
     _KERNELS = {
         "lorentz": _outer(_lorentz),
         "disorder": _outer(_disorder),
         "reflectance": _outer(_reflectance),
         # the solve keeps strict IEEE arithmetic: it mirrors the numpy closed forms
-        "solve": _numba.njit(cache=True, error_model="numpy")(_solve_rows),
+        "solve": _solve_strict(_solve_rows),
     }
 else:  # pragma: no cover - only where numba does not import
     _KERNELS = {}
