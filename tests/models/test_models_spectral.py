@@ -384,6 +384,20 @@ def test_bad_inputs_are_refused():
                                             "e_c0": np.ones(4) * 1.52})
 
 
+def test_simulate_map_names_a_misspelt_or_missing_physics_keyword():
+    # common practice, no published source: the physics travels by name, so a typo or a
+    # forgotten parameter is refused by name (as Python does for a keyword argument)
+    # instead of being ignored or reaching the basis half-filled
+    with pytest.raises(TypeError, match="'gama_c'"):
+        simulate_map(ANGLES, ENERGIES, **TRUTH, gama_c=1e-3)
+    missing = {k: v for k, v in TRUTH.items() if k != "n_eff"}
+    with pytest.raises(TypeError, match="'n_eff'"):
+        simulate_map(ANGLES, ENERGIES, **missing)
+    plain = simulate_map(ANGLES, ENERGIES, **TRUTH, amplitudes=[1.0, 0.3])
+    ignored = simulate_map(ANGLES, ENERGIES, **TRUTH, amplitudes=[1.0, 0.3], kappa=1e-4)
+    np.testing.assert_array_equal(ignored.signal, plain.signal)
+
+
 def _benchmark(repeats: int = 30) -> None:  # pragma: no cover - run by hand
     """Print one projected emission map (32 walkers, 80 x 600) against a Lorentzian pass."""
     import time
