@@ -16,7 +16,7 @@ branch bases of :mod:`polkit.models.spectral` (the cavity column is exactly the 
 spectral function of the bare cavity), except that the exciton keeps a column of its
 own: with no coupling it is not seen through the cavity mode, only directly.
 
-Shapes, units and the lazy :class:`~polkit.models.spectral.MapBasis` layout are those of
+Shapes, units and the lazy :class:`~polkit.numerics.projection.MapBasis` layout are those of
 :mod:`polkit.models.spectral`: energies and widths in eV, a batch ``(W,)`` of walkers.
 """
 
@@ -27,7 +27,7 @@ from numpy.typing import ArrayLike, NDArray
 
 from polkit.errors import DataError
 from polkit.models.dispersion import cavity_energy
-from polkit.models.spectral import MapBasis
+from polkit.numerics.projection import MapBasis
 
 __all__ = ["bare_mode_basis"]
 
@@ -54,10 +54,8 @@ def bare_mode_basis(
 
     Parameters
     ----------
-    in_plane
-        1-D angle (degree) or k (1/um) axis of length ``A``, see ``axis``.
-    energy_ev
-        1-D energy axis of length ``E``, eV.
+    in_plane, energy_ev, axis
+        As in :func:`polkit.models.spectral.emission_basis`.
     e_c0, n_eff
         Cavity energy at normal incidence (eV) and effective index.
     e_x
@@ -67,8 +65,6 @@ def bare_mode_basis(
     kappa
         Top-mirror coupling, eV: given, the basis is the reflectance form; ``None`` gives
         the emission form.
-    axis
-        ``"angle"`` (degree, default) or ``"k"`` (1/um).
 
     Returns
     -------

@@ -192,10 +192,8 @@ def blueshift_roots(delta: ArrayLike, gamma: ArrayLike, drive: ArrayLike) -> NDA
 
     Parameters
     ----------
-    delta
-        Pump detuning ``E_pump - E_LP`` in meV.
-    gamma
-        Linewidth (FWHM) in meV, > 0.
+    delta, gamma
+        As in :func:`turning_points` (meV).
     drive
         ``F = alpha kappa P`` in meV^3, >= 0.
 
@@ -293,10 +291,8 @@ def steady_state_sweep(
 
     Parameters
     ----------
-    delta
-        Pump detuning ``E_pump - E_LP`` in meV (e.g. shape ``(W, 1)``).
-    gamma
-        Linewidth (FWHM) in meV, > 0.
+    delta, gamma
+        As in :func:`turning_points` (meV; e.g. shape ``(W, 1)``).
     drive
         ``F = alpha kappa P`` in meV^3, >= 0, in acquisition order along the last axis.
     direction

@@ -71,19 +71,15 @@ def gaussian(E: ArrayLike, center: ArrayLike, fwhm: ArrayLike, area: ArrayLike =
 
     Parameters
     ----------
-    E
-        Energy grid.
-    center
-        Line centre :math:`E_0`, in the units of ``E``.
+    E, center, area
+        As in :func:`lorentzian`.
     fwhm
         Full width at half maximum (> 0), in the units of ``E``.
-    area
-        Integrated area :math:`A` (default 1).
 
     Returns
     -------
     numpy.ndarray
-        The profile, broadcast over all arguments, in ``area`` per unit of ``E``.
+        As in :func:`lorentzian`.
     """
     E = np.asarray(E, dtype=float)
     sigma = np.asarray(fwhm, dtype=float) / FWHM_PER_SIGMA
@@ -114,21 +110,17 @@ def voigt(
 
     Parameters
     ----------
-    E
-        Energy grid.
-    center
-        Line centre :math:`E_0`, in the units of ``E``.
+    E, center, area
+        As in :func:`lorentzian`.
     fwhm_l
         FWHM :math:`\Gamma` of the Lorentzian part (>= 0), in the units of ``E``.
     sigma_g
         Standard deviation :math:`\sigma` of the Gaussian part (>= 0), in the units of ``E``.
-    area
-        Integrated area :math:`A` (default 1).
 
     Returns
     -------
     numpy.ndarray
-        The profile, broadcast over all arguments, in ``area`` per unit of ``E``.
+        As in :func:`lorentzian`.
     """
     E = np.asarray(E, dtype=float)
     x = E - np.asarray(center, dtype=float)

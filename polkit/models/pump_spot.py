@@ -126,10 +126,8 @@ def gaussian_spot_sweep(
 
     Parameters
     ----------
-    delta
-        Pump detuning ``E_pump - E_LP`` in meV (e.g. shape ``(W, 1)``).
-    gamma
-        Linewidth (FWHM) in meV, > 0.
+    delta, gamma
+        As in :func:`polkit.models.coherent.turning_points` (meV; e.g. shape ``(W, 1)``).
     drive
         Centre drive ``F_0 = alpha kappa P`` in meV^3, >= 0, in acquisition order along
         the last axis: non-decreasing for ``"up"``, non-increasing for ``"down"``.
@@ -149,6 +147,18 @@ def gaussian_spot_sweep(
         Spot-integrated blueshift in meV times the area ``pi w^2 / 2``, shape of the
         broadcast inputs.
     """
+    d, g, f, before = _checked_sweep(delta, gamma, drive, direction, drive_before, nodes)
+    if direction == "up":
+        fmax = np.maximum.accumulate(f, axis=-1)
+    else:
+        start = np.maximum(np.broadcast_to(before, f.shape)[..., 0], f[..., 0])
+        fmax = np.broadcast_to(start[..., None], f.shape)
+    edge = switched_edge_drive(d, g, f, fmax)
+    return _spot_integral(d, g, f, edge, int(nodes))
+
+
+def _checked_sweep(delta, gamma, drive, direction, drive_before, nodes):
+    """The inputs of :func:`gaussian_spot_sweep`, checked and broadcast (drive last)."""
     if direction not in ("up", "down"):
         raise DataError(f"expected direction 'up' or 'down', found {direction!r}",
                         field="direction")
@@ -170,12 +180,11 @@ def gaussian_spot_sweep(
                 f"expected drives in acquisition order of a {direction} sweep, found "
                 f"{int(wrong.sum())} step(s) the other way; reverse the axis for a down sweep",
                 field="drive")
-    if direction == "up":
-        fmax = np.maximum.accumulate(f, axis=-1)
-    else:
-        start = np.maximum(np.broadcast_to(before, f.shape)[..., 0], f[..., 0])
-        fmax = np.broadcast_to(start[..., None], f.shape)
-    edge = switched_edge_drive(d, g, f, fmax)
+    return d, g, f, before
+
+
+def _spot_integral(d, g, f, edge, nodes: int) -> NDArray:
+    """``integral_0^F_0 y(u) du / u`` in three Gauss-Legendre pieces, switching at ``edge``."""
     g2 = d * d + 0.25 * g * g
     tp = coherent.turning_points(d, g)
     # monostable: split at the steepest point of the response, the inflection y = 2 Delta / 3
@@ -186,7 +195,7 @@ def gaussian_spot_sweep(
     knee = np.where(np.isnan(tp.drive_up), np.where(d > 0, inflection, g2 ** 1.5), np.inf)
     a_top = np.minimum(edge, knee)          # lower branch, linear in u: [0, a_top]
     b_top = np.maximum(edge, a_top)         # lower branch, in ln u: [a_top, edge]
-    x, w = _legendre(int(nodes))
+    x, w = _legendre(nodes)
     ex = (...,) + (None,)
     # piece A: u = a_top x, integrand y(u) / u, weight a_top w
     u_a = a_top[ex] * x

@@ -157,10 +157,8 @@ def reservoir_fraction(x: ArrayLike, n_s: ArrayLike) -> NDArray:
 
     Parameters
     ----------
-    x
-        Pump in units of threshold, ``P / P_th`` >= 0.
-    n_s
-        Saturation number ``gamma_R / R`` > 0.
+    x, n_s
+        As in :func:`condensate_occupation`.
 
     Returns
     -------

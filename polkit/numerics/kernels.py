@@ -1,7 +1,16 @@
 """Compiled, fused kernels for the whole-map variable projection (numba), with a numpy fallback.
 
-The hot path of a whole-map fit is :func:`polkit.models.spectral.project_linear` on a
-lazily evaluated :class:`~polkit.models.spectral.MapBasis`: for every walker ``w`` and
+Unrolled on purpose: ``_lorentz2`` and ``_lorentz3`` repeat the general loop of
+``_lorentz`` written out for two and three branches, and the Gram kernels repeat the line
+formula rather than call a shared helper.  That repetition is the point of this module:
+it keeps every sum of a row in a register and the per-pixel loops free of calls, which is
+where the speed of the hot path comes from (and the compiled arithmetic, fixed by the
+tests, stays exactly as it is).  Do not fold it back into loops or helpers.  The solve,
+which runs once per row rather than per pixel and keeps strict IEEE arithmetic, is
+written in steps.
+
+The hot path of a whole-map fit is :func:`polkit.numerics.projection.project_linear` on a
+lazily evaluated :class:`~polkit.numerics.projection.MapBasis`: for every walker ``w`` and
 in-plane point ``a`` it needs the weighted Gram blocks::
 
     G[w, a, k, l] = sum_E s(E)^2 B_k(E) B_l(E)          (basis x basis)
@@ -25,17 +34,8 @@ Three basis families are covered, the same formulas as the numpy blocks of
   ``base`` is the walker's self-energy row, computed in numpy with the Faddeeva function);
 * ``reflectance``: ``|1 - i kappa / (base(E) - E_C)|^2`` (one column).
 
-The peak-table likelihood (``DispersionProblem.table_log_likelihood``) has a kernel of
-its own, :func:`table_chi2`: given the branch poles and residue ratios of every walker
-(computed in numpy by :func:`polkit.models.spectral.branch_poles`), it matches the table
-peaks to branches and sums the Gaussian chi-square in one pass, instead of a dozen numpy
-operations on small ``(W, A, P, K)`` arrays whose cost is call overhead, not arithmetic.
-For one exciton (two branches) :func:`two_mode_table_chi2` goes further and starts from
-the sampled parameters: cavity energy, closed-form poles and photon residues per walker and
-angle (the formulas of :func:`polkit.models.dispersion.cavity_energy`,
-:func:`polkit.models.dispersion.two_mode_eigenvalues` and ``spectral._poles_flat``, the
-numpy functions that stay their reference), then the same chi-square, in one compiled call
-without intermediate arrays.
+The peak-table likelihood has kernels of its own, in :mod:`polkit.numerics.table_kernels`
+(they share the switch below).
 
 Switch: the compiled path is used when numba imports and the environment variable
 ``POLKIT_COMPILED`` is not ``0``; :func:`use_compiled` switches it at run time (tests run
@@ -47,9 +47,7 @@ runs one fit per core.
 
 from __future__ import annotations
 
-import cmath
 import logging
-import math
 import os
 
 import numpy as np
@@ -64,14 +62,6 @@ __all__ = [
     "gram_reflectance",
     "solve_rows",
     "MAX_SOLVE_COLUMNS",
-    "table_chi2",
-    "table_chi2_prepared",
-    "TWO_MODE_PARAMETERS",
-    "in_plane_terms",
-    "parameter_map",
-    "table_operands",
-    "two_mode_poles",
-    "two_mode_table_chi2",
 ]
 
 logger = logging.getLogger(__name__)
@@ -312,86 +302,106 @@ def _accumulate(buf, rhs, a, g, c, w):
             g[w, a, q, k] = acc
 
 
+def _row_is_finite(g, cross, w, a):
+    """True if the Gram blocks of row ``(w, a)`` are finite (a broken basis gives NaN)."""
+    n_k = g.shape[2]
+    n_j = cross.shape[3]
+    finite = True
+    for k in range(n_k):
+        for q in range(n_k):
+            if not np.isfinite(g[w, a, k, q]):
+                finite = False
+        for j in range(n_j):
+            if not np.isfinite(cross[w, a, k, j]):
+                finite = False
+    return finite
+
+
+def _eliminate_background(g, cross, pinv, hb, w, a, t, gr, hr):
+    """Schur complement of the background columns of row ``(w, a)`` into ``gr`` and ``hr``."""
+    n_k = g.shape[2]
+    m = cross.shape[3] - 1
+    for k in range(n_k):
+        for i in range(m):
+            acc = 0.0
+            for j in range(m):
+                acc += cross[w, a, k, j] * pinv[a, j, i]
+            t[k, i] = acc
+    for k in range(n_k):
+        for q in range(n_k):
+            acc = 0.0
+            for i in range(m):
+                acc += t[k, i] * cross[w, a, q, i]
+            gr[k, q] = g[w, a, k, q] - acc
+        acc = 0.0
+        for i in range(m):
+            acc += t[k, i] * hb[a, i]
+        hr[k] = cross[w, a, k, m] - acc
+
+
+def _solve_subset(gr, hr, g, w, a, subset, p, rtol, x):
+    """Closed-form solve of the active set ``subset[:p]`` into ``x``; False if singular."""
+    i0 = subset[0]
+    if p == 1:
+        d = gr[i0, i0]
+        ok = d > rtol * g[w, a, i0, i0]
+        x[0] = hr[i0] / (d if ok else 1.0)
+    elif p == 2:
+        i1 = subset[1]
+        ga, gb, gc = gr[i0, i0], gr[i0, i1], gr[i1, i1]
+        det = ga * gc - gb * gb
+        ok = det > rtol * g[w, a, i0, i0] * g[w, a, i1, i1]
+        inv = 1.0 / (det if ok else 1.0)
+        x[0] = (gc * hr[i0] - gb * hr[i1]) * inv
+        x[1] = (ga * hr[i1] - gb * hr[i0]) * inv
+    else:
+        i1 = subset[1]
+        i2 = subset[2]
+        g00, g01, g02 = gr[i0, i0], gr[i0, i1], gr[i0, i2]
+        g10, g11, g12 = gr[i1, i0], gr[i1, i1], gr[i1, i2]
+        g20, g21, g22 = gr[i2, i0], gr[i2, i1], gr[i2, i2]
+        c00 = g11 * g22 - g12 * g21
+        c01 = g12 * g20 - g10 * g22
+        c02 = g10 * g21 - g11 * g20
+        c11 = g00 * g22 - g02 * g20
+        c12 = g01 * g20 - g00 * g21
+        c22 = g00 * g11 - g01 * g10
+        det = g00 * c00 + g01 * c01 + g02 * c02
+        scale = g[w, a, i0, i0] * g[w, a, i1, i1] * g[w, a, i2, i2]
+        ok = det > rtol * scale
+        inv = 1.0 / (det if ok else 1.0)
+        r0, r1, r2 = hr[i0], hr[i1], hr[i2]
+        x[0] = (c00 * r0 + c01 * r1 + c02 * r2) * inv
+        x[1] = (c01 * r0 + c11 * r1 + c12 * r2) * inv
+        x[2] = (c02 * r0 + c12 * r1 + c22 * r2) * inv
+    return ok
+
+
 def _solve_rows(g, cross, pinv, hb, c0, subsets, sizes, nonneg, rtol, chi2_out, amps_out):
     """Background elimination and the exact small non-negative solves, row by row.
 
-    The same arithmetic as ``spectral.project_linear``'s numpy path: the background
+    The same arithmetic as ``projection.project_linear``'s numpy path: the background
     columns are eliminated by their Schur complement, then every active set (in the
     order of ``subsets``, sizes 1 to K <= 3) is solved in closed form with the same
     singularity test, and the admissible solution with the smallest ``chi^2`` is kept.
     """
     n_w, n_a, n_k = g.shape[0], g.shape[1], g.shape[2]
-    n_j = cross.shape[3]
-    m = n_j - 1
+    m = cross.shape[3] - 1
     t = np.empty((n_k, max(m, 1)))
     gr = np.empty((n_k, n_k))
     hr = np.empty(n_k)
     x = np.empty(3)
     for w in range(n_w):
         for a in range(n_a):
-            finite = True
-            for k in range(n_k):
-                for q in range(n_k):
-                    if not np.isfinite(g[w, a, k, q]):
-                        finite = False
-                for j in range(n_j):
-                    if not np.isfinite(cross[w, a, k, j]):
-                        finite = False
-            for k in range(n_k):
-                for i in range(m):
-                    acc = 0.0
-                    for j in range(m):
-                        acc += cross[w, a, k, j] * pinv[a, j, i]
-                    t[k, i] = acc
-            for k in range(n_k):
-                for q in range(n_k):
-                    acc = 0.0
-                    for i in range(m):
-                        acc += t[k, i] * cross[w, a, q, i]
-                    gr[k, q] = g[w, a, k, q] - acc
-                acc = 0.0
-                for i in range(m):
-                    acc += t[k, i] * hb[a, i]
-                hr[k] = cross[w, a, k, m] - acc
+            finite = _row_is_finite(g, cross, w, a)
+            _eliminate_background(g, cross, pinv, hb, w, a, t, gr, hr)
             base = c0[a]
             best = base
             for k in range(n_k):
                 amps_out[w, a, k] = 0.0
             for s in range(sizes.size):
                 p = sizes[s]
-                i0 = subsets[s, 0]
-                if p == 1:
-                    d = gr[i0, i0]
-                    ok = d > rtol * g[w, a, i0, i0]
-                    x[0] = hr[i0] / (d if ok else 1.0)
-                elif p == 2:
-                    i1 = subsets[s, 1]
-                    ga, gb, gc = gr[i0, i0], gr[i0, i1], gr[i1, i1]
-                    det = ga * gc - gb * gb
-                    ok = det > rtol * g[w, a, i0, i0] * g[w, a, i1, i1]
-                    inv = 1.0 / (det if ok else 1.0)
-                    x[0] = (gc * hr[i0] - gb * hr[i1]) * inv
-                    x[1] = (ga * hr[i1] - gb * hr[i0]) * inv
-                else:
-                    i1 = subsets[s, 1]
-                    i2 = subsets[s, 2]
-                    g00, g01, g02 = gr[i0, i0], gr[i0, i1], gr[i0, i2]
-                    g10, g11, g12 = gr[i1, i0], gr[i1, i1], gr[i1, i2]
-                    g20, g21, g22 = gr[i2, i0], gr[i2, i1], gr[i2, i2]
-                    c00 = g11 * g22 - g12 * g21
-                    c01 = g12 * g20 - g10 * g22
-                    c02 = g10 * g21 - g11 * g20
-                    c11 = g00 * g22 - g02 * g20
-                    c12 = g01 * g20 - g00 * g21
-                    c22 = g00 * g11 - g01 * g10
-                    det = g00 * c00 + g01 * c01 + g02 * c02
-                    scale = g[w, a, i0, i0] * g[w, a, i1, i1] * g[w, a, i2, i2]
-                    ok = det > rtol * scale
-                    inv = 1.0 / (det if ok else 1.0)
-                    r0, r1, r2 = hr[i0], hr[i1], hr[i2]
-                    x[0] = (c00 * r0 + c01 * r1 + c02 * r2) * inv
-                    x[1] = (c01 * r0 + c11 * r1 + c12 * r2) * inv
-                    x[2] = (c02 * r0 + c12 * r1 + c22 * r2) * inv
+                ok = _solve_subset(gr, hr, g, w, a, subsets[s], p, rtol, x)
                 if ok and nonneg:
                     for i in range(p):
                         if not x[i] >= 0.0:
@@ -413,234 +423,25 @@ def _solve_rows(g, cross, pinv, hb, c0, subsets, sizes, nonneg, rtol, chi2_out, 
             chi2_out[w, a] = 0.0 if best < 0.0 else best
 
 
-def _table_walker_chi2(pr, h, ratio, t_e, t_de, t_wr, t_wd, t_w_ok, t_own, t_resp, t_all,
-                       t_found, has_resp):
-    """Peak-table chi-square of one walker: peaks matched to branches, Gaussian terms summed.
-
-    ``pr``, ``h`` and ``ratio`` are the walker's ``(A, K)`` rows.  The same arithmetic as the
-    numpy path of ``DispersionProblem.table_log_likelihood``.  Peak ``p`` at angle ``a``
-    compared with branch ``k`` contributes::
-
-        ((e - pos) / de)^2 + [w_ok] ((wr - 2 h) / wd)^2
-
-    with ``pos = Re eps - h beta`` (no response table) or ``Re eps + R[a, p, p] beta``
-    (``beta`` the residue ratio of branch ``k``).  Where every branch is found at an angle
-    and the table has one column per branch, peak ``p`` is branch ``p``, and with a
-    response table its centre carries the joint response ``sum_k R[a, p, k] beta_k``;
-    elsewhere each found peak takes the branch with the smallest term (NaN if any term is
-    NaN, as ``numpy.min``).  Peaks not found contribute nothing.
-    """
-    n_a, n_k = pr.shape
-    n_p = t_e.shape[1]
-    ordered_ok = n_p == n_k
-    acc = 0.0
-    for a in range(n_a):
-        ordered = ordered_ok and t_all[a]
-        for p in range(n_p):
-            if not t_found[a, p]:
-                continue
-            e = t_e[a, p]
-            de = t_de[a, p]
-            if ordered:
-                if has_resp:
-                    shift = 0.0
-                    for k in range(n_k):
-                        shift += t_resp[a, p, k] * ratio[a, k]
-                    pos = pr[a, p] + shift
-                else:
-                    pos = pr[a, p] - h[a, p] * ratio[a, p]
-                r = (e - pos) / de
-                term = r * r
-                if t_w_ok[a, p]:
-                    q = (t_wr[a, p] - 2.0 * h[a, p]) / t_wd[a, p]
-                    term += q * q
-            else:
-                term = np.inf
-                for k in range(n_k):
-                    if has_resp:
-                        pos = pr[a, k] + t_own[a, p] * ratio[a, k]
-                    else:
-                        pos = pr[a, k] - h[a, k] * ratio[a, k]
-                    r = (e - pos) / de
-                    v = r * r
-                    if t_w_ok[a, p]:
-                        q = (t_wr[a, p] - 2.0 * h[a, k]) / t_wd[a, p]
-                        v += q * q
-                    if v != v:  # NaN wins, as in numpy.min
-                        term = v
-                        break
-                    if v < term:
-                        term = v
-            acc += term
-    return acc
-
-
-def _table_chi2(pr, h, ratio, t_e, t_de, t_wr, t_wd, t_w_ok, t_own, t_resp, t_all, t_found,
-                has_resp, chi2_out):
-    """Peak-table chi-square per walker from branch poles given as ``(W, A, K)`` arrays."""
-    for w in range(pr.shape[0]):
-        chi2_out[w] = _table_walker_chi2(pr[w], h[w], ratio[w], t_e, t_de, t_wr, t_wd, t_w_ok,
-                                         t_own, t_resp, t_all, t_found, has_resp)
-
-
-def _two_mode_rows(ec0, n_eff, e_x, g, gamma_c, gamma_x, grid, k_axis, pr, h, rr, ri):
-    """Branch poles and photon residues of one walker, one exciton, along the in-plane axis.
-
-    Fills the ``(A, 2)`` rows ``pr = Re eps``, ``h = -Im eps`` and ``rr + i ri = r`` (lower,
-    upper branch).  The numpy functions it mirrors stay the reference (the tests hold the
-    two together):
-
-    * :func:`polkit.models.dispersion.cavity_energy`, operation for operation:
-      ``E_C = E_C0 / sqrt(1 - s2 / n^2)`` with ``grid = s2 = sin^2(angle)`` (angle axis), or
-      ``E_C = sqrt(E_C0^2 + (q / n)^2)`` with ``grid = q = hbar c k`` in eV (k axis);
-    * :func:`polkit.models.dispersion.two_mode_eigenvalues`, operation for operation:
-      ``eps = mean -/+ root``, ``mean = (E_C + E_X)/2 - i (gamma_C + gamma_X)/4``, ``root``
-      the principal square root (``cmath.sqrt``, real part >= 0) of ``g^2 + half^2``,
-      ``half = (E_C - E_X)/2 - i (gamma_C - gamma_X)/4``.  A zero imaginary part of the
-      radicand is +0, as numpy's complex addition of ``g^2 + 0j`` leaves it, so below the
-      exceptional point at zero detuning the lower label goes to the broader pole there too;
-    * the photon residues of :func:`polkit.models.spectral.branch_poles`,
-      ``r_lo = (eps_lo - E_X + i gamma_X/2) / (eps_lo - eps_up)`` and ``r_up = 1 - r_lo``,
-      in the equal form ``r_lo = (root - half) / (2 root)``, ``r_up = (root + half) /
-      (2 root)``, where whichever of ``root -/+ half`` is the smaller comes from
-      ``(root - half)(root + half) = g^2``.  The numpy form subtracts energies of order
-      1 eV to get the residue of an exciton-like branch, which loses about
-      ``u |eps| / |eps_up - eps_lo|`` (u = 2^-53); at ``g = 0`` it is all rounding and
-      ``Im r / Re r`` becomes noise, while here the residues of uncoupled modes are
-      exactly 0 and 1.
-    """
-    mean_i = 0.0 - 0.25 * (gamma_c + gamma_x)
-    half_i = 0.5 * (0.0 - 0.5 * (gamma_c - gamma_x))
-    half_i2 = half_i * half_i
-    gg = g * g
-    nn = n_eff * n_eff
-    for a in range(grid.size):
-        if k_axis:
-            q = grid[a] / n_eff
-            ec = math.sqrt(ec0 * ec0 + q * q)
-        else:
-            ec = ec0 / math.sqrt(1.0 - grid[a] / nn)
-        mean_r = 0.5 * (ec + e_x)
-        half_r = 0.5 * (ec - e_x)
-        z_r = gg + (half_r * half_r - half_i2)
-        z_i = 0.0 + (half_r * half_i + half_i * half_r)  # -0 becomes +0, as in numpy
-        root = cmath.sqrt(complex(z_r, z_i))
-        lo_r = mean_r - root.real
-        lo_i = mean_i - root.imag
-        up_r = mean_r + root.real
-        up_i = mean_i + root.imag
-        pr[a, 0] = lo_r
-        pr[a, 1] = up_r
-        h[a, 0] = -lo_i
-        h[a, 1] = -up_i
-        # photon residues r_lo = (root - half) / (2 root), r_up = (root + half) / (2 root)
-        # (= (lo - x) / (lo - up) and 1 - r_lo); the factor of the two that cancels is
-        # taken from (root - half)(root + half) = g^2 instead
-        m_r = root.real - half_r
-        m_i = root.imag - half_i
-        p_r = root.real + half_r
-        p_i = root.imag + half_i
-        p2 = p_r * p_r + p_i * p_i
-        m2 = m_r * m_r + m_i * m_i
-        if p2 >= m2:  # m = g^2 / p = g^2 conj(p) / |p|^2
-            f = gg / p2
-            m_r = f * p_r
-            m_i = -f * p_i
-        else:
-            f = gg / m2
-            p_r = f * m_r
-            p_i = -f * m_i
-        # 1 / (2 root) = conj(root) / (2 |root|^2); inf or nan at root = 0, as numpy's
-        f = 0.5 / (root.real * root.real + root.imag * root.imag)
-        inv_r = f * root.real
-        inv_i = -f * root.imag
-        rr[a, 0] = m_r * inv_r - m_i * inv_i
-        ri[a, 0] = m_r * inv_i + m_i * inv_r
-        rr[a, 1] = p_r * inv_r - p_i * inv_i
-        ri[a, 1] = p_r * inv_i + p_i * inv_r
-
-
-def _walker_physics(theta, w, columns, scales, phys):
-    """Physics parameters of walker ``w``: ``theta[w, columns[j]] * scales[j]`` (0 if -1)."""
-    for j in range(columns.size):
-        c = columns[j]
-        phys[j] = theta[w, c] * scales[j] if c >= 0 else 0.0
-
-
-def _in_domain(phys, n_eff_limit):
-    """The checks of ``spectral._check_physics``: g >= 0, levels and widths > 0, n_eff > limit.
-
-    ``phys`` is ``(e_c0, n_eff, e_x, g, gamma_c, gamma_x)``; NaN fails every test.
-    """
-    return (phys[3] >= 0.0 and phys[0] > 0.0 and phys[2] > 0.0 and phys[4] > 0.0
-            and phys[5] > 0.0 and phys[1] > n_eff_limit)
-
-
-def _two_mode_poles(theta, columns, scales, grid, k_axis, pr, h, rr, ri):
-    """Poles and residues of every walker, ``(W, A, 2)`` arrays (for the tests)."""
-    phys = np.empty(6)
-    for w in range(theta.shape[0]):
-        _walker_physics(theta, w, columns, scales, phys)
-        _two_mode_rows(phys[0], phys[1], phys[2], phys[3], phys[4], phys[5], grid, k_axis,
-                       pr[w], h[w], rr[w], ri[w])
-
-
-def _two_mode_table(theta, columns, scales, grid, k_axis, n_eff_limit, t_e, t_de, t_wr, t_wd,
-                    t_w_ok, t_own, t_resp, t_all, t_found, has_resp, chi2_out):
-    """Peak-table chi-square per walker for one exciton, from the sampled parameters.
-
-    Per walker: the physics columns, the domain test (a walker outside it gets NaN and is
-    counted; the caller then takes the numpy path, which raises), the branch rows of
-    :func:`_two_mode_rows` and the chi-square of :func:`_table_walker_chi2`.  Returns the
-    number of walkers outside the domain.
-    """
-    n_a = grid.size
-    pr = np.empty((n_a, 2))
-    h = np.empty((n_a, 2))
-    rr = np.empty((n_a, 2))
-    ri = np.empty((n_a, 2))
-    ratio = np.empty((n_a, 2))
-    phys = np.empty(6)
-    outside = 0
-    for w in range(theta.shape[0]):
-        _walker_physics(theta, w, columns, scales, phys)
-        if not _in_domain(phys, n_eff_limit):
-            outside += 1
-            chi2_out[w] = np.nan
-            continue
-        _two_mode_rows(phys[0], phys[1], phys[2], phys[3], phys[4], phys[5], grid, k_axis,
-                       pr, h, rr, ri)
-        for a in range(n_a):
-            for k in range(2):
-                # Im r / Re r where Re r > 0, else 0 (numpy.divide with where=)
-                ratio[a, k] = ri[a, k] / rr[a, k] if rr[a, k] > 0.0 else 0.0
-        chi2_out[w] = _table_walker_chi2(pr, h, ratio, t_e, t_de, t_wr, t_wd, t_w_ok, t_own,
-                                         t_resp, t_all, t_found, has_resp)
-    return outside
-
-
 if _numba is not None:
     _inner = _numba.njit(cache=True, fastmath=_FASTMATH, error_model="numpy")
     _accumulate = _inner(_accumulate)
     _lorentz2 = _inner(_lorentz2)
     _lorentz3 = _inner(_lorentz3)
     _outer = _numba.njit(cache=True, fastmath=_FASTMATH, error_model="numpy")
-    # the peak-table helpers keep strict IEEE arithmetic (no fastmath)
-    _strict = _numba.njit(cache=True, error_model="numpy")
-    _table_walker_chi2 = _strict(_table_walker_chi2)
-    _two_mode_rows = _strict(_two_mode_rows)
-    _walker_physics = _strict(_walker_physics)
-    _in_domain = _strict(_in_domain)
+    # the solve and its steps keep strict IEEE arithmetic (no fastmath); the steps are
+    # inlined into the row loop, which stays a single call-free loop once compiled
+    _solve_strict = _numba.njit(cache=True, error_model="numpy")
+    _solve_step = _numba.njit(cache=True, error_model="numpy", inline="always")
+    _row_is_finite = _solve_step(_row_is_finite)
+    _eliminate_background = _solve_step(_eliminate_background)
+    _solve_subset = _solve_step(_solve_subset)
     _KERNELS = {
         "lorentz": _outer(_lorentz),
         "disorder": _outer(_disorder),
         "reflectance": _outer(_reflectance),
         # the solve keeps strict IEEE arithmetic: it mirrors the numpy closed forms
-        "solve": _numba.njit(cache=True, error_model="numpy")(_solve_rows),
-        # strict IEEE arithmetic too: the same numbers as the numpy peak-table path
-        "table": _strict(_table_chi2),
-        "two_mode_poles": _strict(_two_mode_poles),
-        "two_mode_table": _strict(_two_mode_table),
+        "solve": _solve_strict(_solve_rows),
     }
 else:  # pragma: no cover - only where numba does not import
     _KERNELS = {}
@@ -669,7 +470,7 @@ def gram_lorentz(energy, xr, h2, ah, b, sqrt_weight, weighted_rhs):
         Per-row line coefficients, shape ``(W, A, K)`` (pole position eV, squared half
         width eV^2, residue terms; see ``spectral._lorentz_coefficients``).
     sqrt_weight, weighted_rhs
-        ``(A, E)`` and ``(A, J, E)`` from :func:`polkit.models.spectral.prepare_map`.
+        ``(A, E)`` and ``(A, J, E)`` from :func:`polkit.numerics.projection.prepare_map`.
 
     Returns
     -------
@@ -792,230 +593,3 @@ def solve_rows(gram, cross, background_pinv, h_background, chi2_background, *, n
     _KERNELS["solve"](_f64(gram), _f64(cross), pinv, hb, _f64(chi2_background),
                                subsets, sizes, bool(nonneg), float(rtol), chi2, amps)
     return chi2, amps
-
-
-def _flag(a) -> np.ndarray:
-    """``a`` as a C-contiguous boolean array."""
-    if type(a) is np.ndarray and a.dtype == np.bool_ and a.flags.c_contiguous:
-        return a
-    return np.array(a, dtype=np.bool_, order="C")
-
-
-def table_chi2(pole_energy, half_width, residue_ratio, table_energy, table_energy_error,
-               table_width, table_width_error, width_ok, own_response, response, all_found,
-               found) -> np.ndarray:
-    """Chi-square of a peak table against the branches of every walker, shape ``(W,)``.
-
-    Each found peak is compared with a branch through its centre and width::
-
-        chi2 = sum_(a, p found) ((e - pos) / de)^2 + [width_ok] ((wr - 2 h) / wd)^2
-
-    ``pos = Re eps - h beta`` without a response table, ``Re eps + R[a, p, p] beta`` with
-    one, ``beta = Im r / Re r`` the branch's residue ratio.  Where every branch is found at
-    an angle (``all_found``) and the table has one column per branch, peak ``p`` is matched
-    to branch ``p`` (with the joint centre ``Re eps_p + sum_k R[a, p, k] beta_k`` when
-    ``response`` is given); elsewhere each peak takes the branch that gives the smallest
-    term.
-
-    Parameters
-    ----------
-    pole_energy, half_width, residue_ratio
-        ``Re eps`` (eV), ``h = -Im eps`` (eV) and ``Im r / Re r`` (0 where ``Re r <= 0``)
-        of the branches, shape ``(W, A, K)``, branches in energy order.
-    table_energy, table_energy_error
-        Peak centres and their standard errors (eV), shape ``(A, P)``; only the entries
-        where ``found`` is true are read.
-    table_width, table_width_error, width_ok
-        Peak FWHM and its standard error (eV), and where the width is usable, ``(A, P)``.
-    own_response, response
-        ``R[a, p, p]`` as ``(A, P)`` and ``R`` as ``(A, P, P)`` (eV per unit ``beta``; see
-        ``dispersion_model.table_centre_response``), or both None for the first-order
-        centre of a uniform-weight fit.
-    all_found, found
-        ``(A,)``: every branch found at that angle; ``(A, P)``: the peak was found.
-
-    Returns
-    -------
-    ndarray
-        Chi-square per walker (NaN where a compared branch was NaN).
-    """
-    operands = table_operands(table_energy, table_energy_error, table_width,
-                              table_width_error, width_ok, own_response, response, all_found,
-                              found)
-    return table_chi2_prepared(pole_energy, half_width, residue_ratio, operands)
-
-
-def table_chi2_prepared(pole_energy, half_width, residue_ratio, operands) -> np.ndarray:
-    """:func:`table_chi2` with the table side already converted by :func:`table_operands`.
-
-    For a likelihood called thousands of times per fit: the table is converted once.
-    """
-    pole_energy = _f64(pole_energy)
-    chi2 = np.empty(pole_energy.shape[0])
-    _KERNELS["table"](pole_energy, _f64(half_width), _f64(residue_ratio), *operands, chi2)
-    return chi2
-
-
-# --------------------------------------------------------------------------------------
-# peak table, one exciton: from the sampled parameters to the chi-square in one call
-# --------------------------------------------------------------------------------------
-#: order of the physics parameters the one-exciton kernels read from ``theta``
-TWO_MODE_PARAMETERS = ("e_c0", "n_eff", "e_x", "g", "gamma_c", "gamma_x")
-
-
-def in_plane_terms(in_plane, axis: str) -> tuple[np.ndarray, bool, float]:
-    """What the one-exciton kernels need of the in-plane axis, computed once per fit.
-
-    Parameters
-    ----------
-    in_plane
-        1-D angle (degree) or k (1/um) axis.
-    axis
-        ``"angle"`` or ``"k"``.
-
-    Returns
-    -------
-    grid : ndarray
-        ``sin^2(angle)`` per angle (angle axis), or ``hbar c k`` in eV (k axis), computed as
-        :func:`polkit.models.dispersion.cavity_energy` computes them.
-    k_axis : bool
-        True for the k axis.
-    n_eff_limit : float
-        ``max |sin(angle)|`` (0 on the k axis or an empty axis): ``n_eff`` must exceed it,
-        the test of ``spectral._check_physics``.
-    """
-    from polkit.constants import HBARC_EV_UM
-
-    x = np.asarray(in_plane, dtype=float)
-    if axis == "angle":
-        s = np.sin(np.deg2rad(x))
-        limit = float(np.abs(s).max()) if x.size else 0.0
-        return np.ascontiguousarray(s * s), False, limit
-    if axis == "k":
-        return np.ascontiguousarray(HBARC_EV_UM * x), True, 0.0
-    raise ValueError(f"expected axis 'angle' or 'k', found {axis!r}")
-
-
-def table_operands(table_energy, table_energy_error, table_width, table_width_error,
-                   width_ok, own_response, response, all_found, found) -> tuple:
-    """The table side of the peak-table kernels, converted once per fit.
-
-    Arguments as in :func:`table_chi2`; the result is passed whole to
-    :func:`two_mode_table_chi2` (an absent response table becomes zeros and a flag).
-    """
-    table_energy = _f64(table_energy)
-    n_a, n_p = table_energy.shape
-    has_resp = response is not None
-    if has_resp:
-        own = _f64(own_response)
-        resp = _f64(response)
-    else:
-        own = np.zeros((n_a, n_p))
-        resp = np.zeros((n_a, n_p, n_p))
-    return (table_energy, _f64(table_energy_error), _f64(table_width),
-            _f64(table_width_error), _flag(width_ok), own, resp, _flag(all_found),
-            _flag(found), has_resp)
-
-
-def parameter_map(columns, scales, n_parameters: int) -> tuple[np.ndarray, np.ndarray, int]:
-    """How the one-exciton kernels read the physics from ``theta``, checked once per fit.
-
-    Parameters
-    ----------
-    columns
-        For each of :data:`TWO_MODE_PARAMETERS` (``e_c0``, ``n_eff``, ``e_x``, ``g``,
-        ``gamma_c``, ``gamma_x``) its column of ``theta``, or -1 for the value 0 (``g`` of
-        the uncoupled-modes model).
-    scales
-        The factor that turns each column into eV (1 for ``n_eff``; ``0.5e-3`` turns a
-        Rabi splitting in meV into ``g`` in eV).
-    n_parameters
-        Number of columns of ``theta``.
-
-    Returns
-    -------
-    tuple
-        ``(columns int64 (6,), scales float64 (6,), n_parameters)`` for
-        :func:`two_mode_poles` and :func:`two_mode_table_chi2`.
-    """
-    columns = np.array(columns, dtype=np.int64)
-    scales = np.array(scales, dtype=np.float64)
-    n = len(TWO_MODE_PARAMETERS)
-    if (columns.shape != (n,) or scales.shape != (n,) or columns.min() < -1
-            or columns.max() >= n_parameters):
-        raise ValueError(f"expected {n} column indices in [-1, {n_parameters}) and {n} scales, "
-                         f"in the order {TWO_MODE_PARAMETERS}; found {columns!r}, {scales!r}")
-    return columns, scales, int(n_parameters)
-
-
-def _theta(theta, n_parameters: int) -> np.ndarray:
-    theta = _f64(theta)
-    if theta.ndim != 2 or theta.shape[1] != n_parameters:
-        raise ValueError(f"expected theta of shape (W, {n_parameters}), found {theta.shape}")
-    return theta
-
-
-def two_mode_poles(theta, parameters, axis_terms) -> tuple[np.ndarray, np.ndarray]:
-    """Branch poles and photon residues of one exciton from the sampled parameters, compiled.
-
-    The compiled counterpart of :func:`polkit.models.spectral.branch_poles` for one
-    exciton (cavity energy of :func:`polkit.models.dispersion.cavity_energy`, closed-form
-    poles of :func:`polkit.models.dispersion.two_mode_eigenvalues`, residues
-    ``r_lo = (eps_lo - E_X + i gamma_X/2) / (eps_lo - eps_up)``, ``r_up = 1 - r_lo``), the
-    kernel that :func:`two_mode_table_chi2` runs (residues in a form without cancellation,
-    see ``_two_mode_rows``); no domain check.
-
-    Parameters
-    ----------
-    theta
-        Sampled parameters ``(W, P)``.
-    parameters
-        ``(columns, scales, P)`` from :func:`parameter_map`: physics value ``j`` (order
-        :data:`TWO_MODE_PARAMETERS`) is ``theta[:, columns[j]] * scales[j]``.
-    axis_terms
-        ``(grid, k_axis, n_eff_limit)`` from :func:`in_plane_terms`.
-
-    Returns
-    -------
-    poles, residues : ndarray of complex, shape ``(W, A, 2)``
-        Lower and upper branch (``Re`` eV, ``-2 Im`` the FWHM in eV).
-    """
-    columns, scales, n_parameters = parameters
-    theta = _theta(theta, n_parameters)
-    grid, k_axis, _ = axis_terms
-    shape = (theta.shape[0], grid.size, 2)
-    pr, h, rr, ri = (np.empty(shape) for _ in range(4))
-    _KERNELS["two_mode_poles"](theta, columns, scales, _f64(grid), bool(k_axis), pr, h, rr, ri)
-    return pr - 1j * h, rr + 1j * ri
-
-
-def two_mode_table_chi2(theta, parameters, axis_terms, operands) -> tuple[np.ndarray, int]:
-    """Peak-table chi-square per walker for one exciton, from ``theta`` in one compiled call.
-
-    Per walker and in-plane point: the cavity energy, the two complex poles and the photon
-    residues (as :func:`two_mode_poles`), then the matching and the chi-square of
-    :func:`table_chi2`.  A walker outside the model's domain (``g < 0``, a level or width
-    ``<= 0``, ``n_eff <= max |sin(angle)|``, or NaN) gets NaN and is counted, so the caller
-    can rerun the numpy path, which names the offending parameter.
-
-    Parameters
-    ----------
-    theta, parameters, axis_terms
-        As in :func:`two_mode_poles`.
-    operands
-        The table side, from :func:`table_operands`.
-
-    Returns
-    -------
-    chi2 : ndarray
-        ``(W,)`` chi-square (NaN for the walkers outside the domain).
-    outside : int
-        Number of walkers outside the domain.
-    """
-    columns, scales, n_parameters = parameters
-    theta = _theta(theta, n_parameters)
-    chi2 = np.empty(theta.shape[0])
-    grid, k_axis, limit = axis_terms
-    outside = _KERNELS["two_mode_table"](theta, columns, scales, grid, k_axis, limit,
-                                         *operands, chi2)
-    return chi2, int(outside)

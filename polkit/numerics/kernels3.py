@@ -173,6 +173,16 @@ def _sorted_pairs(z0, r0, z1, r1, z2, r2):
     return z0, r0, z1, r1, z2, r2
 
 
+def _store(pr, pi, rr, ri, w, a, k, z, r):
+    """Pole ``z`` and residue ``r`` into row ``(w, a)``, column ``k``; True if all are finite."""
+    pr[w, a, k] = z.real
+    pi[w, a, k] = z.imag
+    rr[w, a, k] = r.real
+    ri[w, a, k] = r.imag
+    return (math.isfinite(z.real) and math.isfinite(z.imag)
+            and math.isfinite(r.real) and math.isfinite(r.imag))
+
+
 def _three_mode_rows(e_c, gamma_c, e_x1, e_x2, g1, g2, gamma_x1, gamma_x2, pr, pi, rr, ri,
                      bad):
     """Poles ``pr + i pi`` and photon residues ``rr + i ri``, ``(W, A, 3)``, every row.
@@ -205,12 +215,7 @@ def _three_mode_rows(e_c, gamma_c, e_x1, e_x2, g1, g2, gamma_x1, gamma_x2, pr, p
                 for k in range(3):
                     z = z0 if k == 0 else z1 if k == 1 else z2
                     r = q0 if k == 0 else q1 if k == 1 else q2
-                    pr[w, a, k] = z.real
-                    pi[w, a, k] = z.imag
-                    rr[w, a, k] = r.real
-                    ri[w, a, k] = r.imag
-                    if not (math.isfinite(z.real) and math.isfinite(z.imag)
-                            and math.isfinite(r.real) and math.isfinite(r.imag)):
+                    if not _store(pr, pi, rr, ri, w, a, k, z, r):
                         ok = False
                 bad[w, a] = not ok
                 if not ok:
@@ -230,13 +235,7 @@ def _three_mode_rows(e_c, gamma_c, e_x1, e_x2, g1, g2, gamma_x1, gamma_x2, pr, p
                     r = num
                 else:
                     r = num / den
-                e = s + z
-                pr[w, a, k] = e.real
-                pi[w, a, k] = e.imag
-                rr[w, a, k] = r.real
-                ri[w, a, k] = r.imag
-                if not (math.isfinite(e.real) and math.isfinite(e.imag)
-                        and math.isfinite(r.real) and math.isfinite(r.imag)):
+                if not _store(pr, pi, rr, ri, w, a, k, s + z, r):
                     ok = False
             bad[w, a] = not ok
             if not ok:
@@ -253,6 +252,7 @@ if _kernels._numba is not None:
     _roots = _strict(_roots)
     _pair = _strict(_pair)
     _sorted_pairs = _strict(_sorted_pairs)
+    _store = _strict(_store)
     _KERNELS = {"three_mode": _strict(_three_mode_rows)}
 else:  # pragma: no cover - only where numba does not import
     _KERNELS = {}

@@ -16,18 +16,10 @@ from scipy import integrate, optimize
 
 from polkit.errors import DataError
 from polkit.models.dispersion import cavity_energy
-from polkit.models.spectral import (
-    MapBasis,
-    branch_poles,
-    emission_basis,
-    exciton_propagator,
-    photon_green,
-    photon_spectral_function,
-    prepare_map,
-    project_linear,
-    reflectance_basis,
-    simulate_map,
-)
+from polkit.models.green import exciton_propagator, photon_green, photon_spectral_function
+from polkit.models.simulate import simulate_map
+from polkit.models.spectral import branch_poles, emission_basis, reflectance_basis
+from polkit.numerics.projection import MapBasis, prepare_map, project_linear
 
 # Invented, sample-like parameters (eV); not a real device.
 TRUTH = dict(e_c0=1.526, n_eff=3.3, e_x=1.530, g=0.0017, gamma_c=0.0006, gamma_x=0.0004)
@@ -390,6 +382,20 @@ def test_bad_inputs_are_refused():
     with pytest.raises(DataError, match="one batch shape"):
         emission_basis(ANGLES, ENERGIES, **{**TRUTH, "g": np.ones(3) * 1e-3,
                                             "e_c0": np.ones(4) * 1.52})
+
+
+def test_simulate_map_names_a_misspelt_or_missing_physics_keyword():
+    # common practice, no published source: the physics travels by name, so a typo or a
+    # forgotten parameter is refused by name (as Python does for a keyword argument)
+    # instead of being ignored or reaching the basis half-filled
+    with pytest.raises(TypeError, match="'gama_c'"):
+        simulate_map(ANGLES, ENERGIES, **TRUTH, gama_c=1e-3)
+    missing = {k: v for k, v in TRUTH.items() if k != "n_eff"}
+    with pytest.raises(TypeError, match="'n_eff'"):
+        simulate_map(ANGLES, ENERGIES, **missing)
+    plain = simulate_map(ANGLES, ENERGIES, **TRUTH, amplitudes=[1.0, 0.3])
+    ignored = simulate_map(ANGLES, ENERGIES, **TRUTH, amplitudes=[1.0, 0.3], kappa=1e-4)
+    np.testing.assert_array_equal(ignored.signal, plain.signal)
 
 
 def _benchmark(repeats: int = 30) -> None:  # pragma: no cover - run by hand

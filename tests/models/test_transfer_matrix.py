@@ -23,7 +23,8 @@ from tmm_reference import (
 )
 
 from polkit.models.dispersion import cavity_energy, two_mode_eigenvalues
-from polkit.models.spectral import prepare_map, project_linear, reflectance_basis
+from polkit.models.spectral import reflectance_basis
+from polkit.numerics.projection import prepare_map, project_linear
 
 N_HIGH, N_LOW, N_SUB = 3.5, 2.95, 3.5  # GaAs/AlAs-like indices, value from memory
 E_BRAGG = 1.530  # eV, invented

@@ -33,15 +33,11 @@ import numpy as np
 import pytest
 from scipy import optimize
 
-from polkit.models import spectral
-from polkit.models.spectral import (
-    emission_basis,
-    prepare_map,
-    project_linear,
-    reflectance_basis,
-    simulate_map,
-)
+from polkit.models.simulate import simulate_map
+from polkit.models.spectral import emission_basis, reflectance_basis
 from polkit.numerics import kernels as _kernels
+from polkit.numerics import projection
+from polkit.numerics.projection import prepare_map, project_linear
 
 pytestmark = pytest.mark.skipif(not _kernels.available(),
                                 reason="numba does not import: only the numpy path exists")
@@ -132,7 +128,7 @@ def both_paths(numpy_path, prepared, basis, nonneg: bool):
 @pytest.mark.parametrize("disorder", [False, True])
 @pytest.mark.parametrize("masked", [False, True])
 def test_compiled_chi2_equals_numpy_chi2(numpy_path, kind, excitons, disorder, masked):
-    # Source: the numpy projection of polkit.models.spectral (blocks + closed-form
+    # Source: the numpy projection of polkit.numerics.projection (blocks + closed-form
     # solves), itself checked against scipy.optimize.nnls / lsq_linear in
     # tests/models/test_models_spectral.py; simulated data with known truth
     rng = np.random.default_rng(1000 * excitons + 100 * disorder + 10 * masked + len(kind))
@@ -259,8 +255,8 @@ def test_singular_and_broken_rows_behave_as_in_the_numpy_path():
     c = np.einsum("wake,aje->wakj", full, prepared.weighted_rhs)
     got_chi2, got_amps = _kernels.solve_rows(g, c, prepared.background_pinv,
                                              prepared.h_background, prepared.chi2_background,
-                                             nonneg=True, rtol=spectral._RTOL_SINGULAR)
-    ref_chi2, ref_amps = spectral._solve_rows(g, c, prepared, True)
+                                             nonneg=True, rtol=projection._RTOL_SINGULAR)
+    ref_chi2, ref_amps = projection._solve_rows(g, c, prepared, True)
     assert np.isnan(got_chi2[2, 0]) and np.isnan(ref_chi2[2, 0])
     ok = ~np.isnan(ref_chi2)
     np.testing.assert_allclose(got_chi2[ok], ref_chi2[ok], rtol=1e-10)
@@ -330,6 +326,7 @@ def test_numpy_path_runs_where_numba_does_not_import(tmp_path):
         "import numpy as np\n"
         "from polkit.numerics import kernels as _kernels\n"
         "from polkit.models import spectral\n"
+        "from polkit.numerics import projection\n"
         "case = np.load('case.npz')\n"
         "batch = json.load(open('batch.json'))\n"
         "batch = {k: [np.array(x) for x in v] if k in ('e_x', 'g', 'gamma_x')\n"
@@ -337,7 +334,7 @@ def test_numpy_path_runs_where_numba_does_not_import(tmp_path):
         f"angles = np.linspace({ANGLES[0]!r}, {ANGLES[-1]!r}, {ANGLES.size})\n"
         f"energy = np.linspace({ENERGIES[0]!r}, {ENERGIES[-1]!r}, {ENERGIES.size})\n"
         "basis = spectral.emission_basis(angles, energy, **batch)\n"
-        "chi2 = spectral.project_linear(case['y'], case['iv'], basis)\n"
+        "chi2 = projection.project_linear(case['y'], case['iv'], basis)\n"
         "print(json.dumps({'available': _kernels.available(), 'chi2': chi2.tolist()}))\n"
     )
     env = {k: v for k, v in os.environ.items() if k != _kernels.ENV_SWITCH}

@@ -2,7 +2,7 @@
 
 ``DispersionProblem.table_log_likelihood`` computes the branch poles in numpy and then, when
 the compiled kernels are on, matches table peaks to branches and sums the chi-square in
-:func:`polkit.numerics.kernels.table_chi2`; otherwise a numpy path does the same on
+:func:`polkit.numerics.table_kernels.table_chi2`; otherwise a numpy path does the same on
 ``(W, A, P, K)`` arrays.  Both must give the same log-likelihood on the bundled demo maps
 (emission and reflectance; two and three oscillators; weak coupling; Lorentzian and Voigt
 peak tables, the latter without a centre-response table) and on invented tables where
@@ -34,8 +34,9 @@ from polkit.jobs.dispersion.problem import (
 from polkit.jobs.dispersion.run import prepare_dispersion
 from polkit.models import spectral
 from polkit.models.dispersion import cavity_energy, two_mode_eigenvalues
-from polkit.models.spectral import photon_green
+from polkit.models.green import photon_green
 from polkit.numerics import kernels as _kernels
+from polkit.numerics import table_kernels as _table_kernels
 
 pytestmark = pytest.mark.skipif(not _kernels.available(),
                                 reason="numba does not import: only the numpy path exists")
@@ -330,7 +331,7 @@ def test_kernel_chi2_is_the_loop_chi2():
         ANGLES, **{k: v for k, v in phys.items() if k != "axis"})
     h = -poles.imag
     ratio = np.divide(res.imag, res.real, out=np.zeros_like(h), where=res.real > 0)
-    chi2 = _kernels.table_chi2(poles.real, h, ratio, *problem._t_kernel)
+    chi2 = _table_kernels.table_chi2(poles.real, h, ratio, *problem._t_kernel)
     expected, n_obs = loop_chi2(problem, theta)
     assert n_obs == problem._t_nobs
     np.testing.assert_allclose(chi2, expected, rtol=REL, atol=0)
@@ -348,7 +349,7 @@ def test_a_nan_branch_gives_nan_on_both_paths():
     poles[2, 0, 0] = complex(np.nan, poles[2, 0, 0].imag)  # ordered angle
     h = -poles.imag
     ratio = np.divide(res.imag, res.real, out=np.zeros_like(h), where=res.real > 0)
-    compiled = _kernels.table_chi2(poles.real, h, ratio, *problem._t_kernel)
+    compiled = _table_kernels.table_chi2(poles.real, h, ratio, *problem._t_kernel)
     plain = problem._table_chi2_numpy(poles, h, ratio)
     assert np.isnan(compiled[1]) and np.isnan(plain[1])
     assert np.isnan(compiled[2]) and np.isnan(plain[2])
@@ -365,7 +366,7 @@ def test_the_switch_chooses_the_path(monkeypatch, switch, n_excitons, route):
     calls = []
 
     def spy(name):
-        kernel = getattr(_kernels, name)
+        kernel = getattr(_table_kernels, name)
 
         def wrapped(*args):
             calls.append(name)
@@ -373,7 +374,7 @@ def test_the_switch_chooses_the_path(monkeypatch, switch, n_excitons, route):
         return wrapped
 
     for name in ("table_chi2", "table_chi2_prepared", "two_mode_table_chi2"):
-        monkeypatch.setattr(_kernels, name, spy(name))
+        monkeypatch.setattr(_table_kernels, name, spy(name))
     theta = x_true[None]
     switch(None)
     monkeypatch.setenv(_kernels.ENV_SWITCH, "0")
@@ -400,7 +401,7 @@ def pole_routes(problem: DispersionProblem, theta: np.ndarray, *,
     """Log-likelihood from the numpy poles, matched by the compiled and the numpy chi-square.
 
     These are the routes the likelihood took before the fused kernel: ``branch_poles``, then
-    ``_kernels.table_chi2`` (compiled) or ``_table_chi2_numpy``.  ``uncoupled=True`` uses
+    ``_table_kernels.table_chi2`` (compiled) or ``_table_chi2_numpy``.  ``uncoupled=True`` uses
     the exact photon residues of uncoupled modes (0 for the exciton, 1 for the cavity, so
     ``Im r / Re r = 0`` on both branches) instead of the numpy residues.
     """
@@ -412,7 +413,7 @@ def pole_routes(problem: DispersionProblem, theta: np.ndarray, *,
         ratio = np.zeros_like(h)
     else:
         ratio = np.divide(res.imag, res.real, out=np.zeros_like(h), where=res.real > 0)
-    return (noise_term(problem, theta, _kernels.table_chi2(poles.real, h, ratio,
+    return (noise_term(problem, theta, _table_kernels.table_chi2(poles.real, h, ratio,
                                                            *problem._t_kernel)),
             noise_term(problem, theta, problem._table_chi2_numpy(poles, h, ratio)))
 
@@ -421,7 +422,7 @@ def fused(problem: DispersionProblem, theta: np.ndarray, switch) -> np.ndarray:
     """The likelihood with the compiled path on, checked to run the fused kernel."""
     assert problem._t_fused is not None
     switch(True)
-    chi2, outside = _kernels.two_mode_table_chi2(theta, *problem._t_fused)
+    chi2, outside = _table_kernels.two_mode_table_chi2(theta, *problem._t_fused)
     assert outside == 0
     value = problem.table_log_likelihood(theta)
     np.testing.assert_array_equal(value, noise_term(problem, theta, chi2))
@@ -542,7 +543,7 @@ def test_domain_errors_are_the_same_on_both_paths(axis, name, value, field, swit
         problem.table_log_likelihood(theta)
     # the other walkers alone are inside the domain and take the fused kernel
     switch(True)
-    chi2, outside = _kernels.two_mode_table_chi2(theta, *problem._t_fused)
+    chi2, outside = _table_kernels.two_mode_table_chi2(theta, *problem._t_fused)
     assert outside == 1 and np.isnan(chi2[5]) and np.all(np.isfinite(np.delete(chi2, 5)))
 
 
@@ -561,8 +562,9 @@ POLE_CASES = {
 def kernel_poles(axis: str, grid: np.ndarray, e_c0, n_eff, e_x, g, gamma_c, gamma_x):
     """Poles and residues of the fused kernel for walkers given directly in eV."""
     theta = np.column_stack(np.broadcast_arrays(e_c0, n_eff, e_x, g, gamma_c, gamma_x))
-    parameters = _kernels.parameter_map(range(6), np.ones(6), 6)
-    return _kernels.two_mode_poles(theta, parameters, _kernels.in_plane_terms(grid, axis))
+    parameters = _table_kernels.parameter_map(range(6), np.ones(6), 6)
+    terms = _table_kernels.in_plane_terms(grid, axis)
+    return _table_kernels.two_mode_poles(theta, parameters, terms)
 
 
 @pytest.mark.parametrize("case", list(POLE_CASES))
@@ -656,14 +658,14 @@ def test_parameter_map_and_axis_terms_refuse_what_the_kernel_cannot_read():
     # common practice, no published source: the kernel reads theta without bounds checks,
     # so the column map is checked once, when it is built
     with pytest.raises(ValueError, match="column indices"):
-        _kernels.parameter_map([0, 1, 2, 3, 4, 7], np.ones(6), 7)
+        _table_kernels.parameter_map([0, 1, 2, 3, 4, 7], np.ones(6), 7)
     with pytest.raises(ValueError, match="column indices"):
-        _kernels.parameter_map([0, 1, 2, -2, 4, 5], np.ones(6), 7)
+        _table_kernels.parameter_map([0, 1, 2, -2, 4, 5], np.ones(6), 7)
     with pytest.raises(ValueError, match="column indices"):
-        _kernels.parameter_map([0, 1, 2, 3], np.ones(4), 7)
-    parameters = _kernels.parameter_map(range(6), np.ones(6), 6)
+        _table_kernels.parameter_map([0, 1, 2, 3], np.ones(4), 7)
+    parameters = _table_kernels.parameter_map(range(6), np.ones(6), 6)
     with pytest.raises(ValueError, match=r"shape \(W, 6\)"):
-        _kernels.two_mode_poles(np.ones((3, 5)), parameters,
-                                _kernels.in_plane_terms(ANGLES, "angle"))
+        _table_kernels.two_mode_poles(np.ones((3, 5)), parameters,
+                                _table_kernels.in_plane_terms(ANGLES, "angle"))
     with pytest.raises(ValueError, match="axis"):
-        _kernels.in_plane_terms(ANGLES, "energy")
+        _table_kernels.in_plane_terms(ANGLES, "energy")
