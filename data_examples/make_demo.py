@@ -19,7 +19,7 @@ import xarray as xr
 from polkit.constants import HC_EV_NM
 from polkit.models import coherent, reservoir
 from polkit.models.dispersion import cavity_energy, two_mode_eigenvalues
-from polkit.models.spectral import simulate_map
+from polkit.models.simulate import simulate_map
 
 ROOT_SEED = 20261202
 HERE = Path(__file__).resolve().parent

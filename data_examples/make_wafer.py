@@ -19,7 +19,7 @@ import numpy as np
 import xarray as xr
 
 from polkit.models.dispersion import cavity_energy, two_mode_eigenvalues
-from polkit.models.spectral import simulate_map
+from polkit.models.simulate import simulate_map
 
 ROOT_SEED = 20261207
 HERE = Path(__file__).resolve().parent

@@ -15,7 +15,7 @@ stays sensible (all numbers invented):
   (line maxima and widths of the two polariton lines) with Gaussian errors, fitted with
   :meth:`polkit.jobs.dispersion.problem.DispersionProblem.table_log_likelihood`;
 * :class:`WholeMapCase` -- a small emission map simulated with
-  :func:`polkit.models.spectral.simulate_map` plus Gaussian noise, fitted with
+  :func:`polkit.models.simulate.simulate_map` plus Gaussian noise, fitted with
   :meth:`~polkit.jobs.dispersion.problem.DispersionProblem.log_likelihood`;
 * :class:`CoherentCase` -- an up-and-down power sweep of a coherently driven mode simulated
   with :func:`polkit.models.coherent.steady_state_sweep` plus Gaussian errors, fitted with
@@ -54,7 +54,7 @@ from polkit.inference import (
 )
 from polkit.jobs.dispersion.problem import DispersionProblem, fitted_line_centre
 from polkit.jobs.power.problem import PowerProblem
-from polkit.models import spectral
+from polkit.models import simulate, spectral
 from polkit.models.coherent import steady_state_sweep
 
 MEV = 1e-3
@@ -376,7 +376,7 @@ class PeakTableCase:
 class WholeMapCase:
     """A small emission map (9 angles x 60 energies) fitted with the whole-map likelihood.
 
-    Mean map: :func:`polkit.models.spectral.simulate_map` with branch occupations 1 and 0.3
+    Mean map: :func:`polkit.models.simulate.simulate_map` with branch occupations 1 and 0.3
     (scaled to a lower-branch peak near 400 signal units, invented) and a background of 20;
     noise Gaussian with standard deviation ``noise_scale x 10`` on every pixel.  Amplitudes
     and backgrounds are solved per angle by the likelihood (variable projection), as in the
@@ -399,10 +399,10 @@ class WholeMapCase:
                                    space=self.space)
         p = {k: v[0] if isinstance(v, np.ndarray) else v
              for k, v in helper.physics(truth[None, :]).items()}
-        unit = spectral.simulate_map(self.angle, self.energy, kind="emission",
+        unit = simulate.simulate_map(self.angle, self.energy, kind="emission",
                                      amplitudes=[1.0, 0.3], **p)
         scale = 400.0 / float(np.max(unit.signal))
-        mean = spectral.simulate_map(self.angle, self.energy, kind="emission",
+        mean = simulate.simulate_map(self.angle, self.energy, kind="emission",
                                      amplitudes=[scale, 0.3 * scale], background=20.0,
                                      **p).signal
         s = truth[self.space.index("noise_scale")]

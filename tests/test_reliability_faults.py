@@ -32,7 +32,7 @@ from polkit.data import make_map
 from polkit.errors import ConvergenceWarning
 from polkit.inference import FitResult, Parameter, ParameterSpace, Prior, run_ensemble
 from polkit.jobs.dispersion.run import fit_dispersion
-from polkit.models.spectral import simulate_map
+from polkit.models.simulate import simulate_map
 
 MEV = 1e-3
 SEED = 5

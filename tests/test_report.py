@@ -38,7 +38,7 @@ CELLS = [
 
 
 def _map(path):
-    from polkit.models.spectral import simulate_map
+    from polkit.models.simulate import simulate_map
 
     rng = np.random.default_rng(4)
     angles = np.linspace(-20.0, 20.0, 15)

@@ -84,7 +84,7 @@ def simulated_map(
         The canonical map (counts, with ``gain`` and ``read_noise`` attrs), the true
         inverse variance per pixel (1/counts^2) and the noiseless signal.
     """
-    from polkit.models.spectral import simulate_map
+    from polkit.models.simulate import simulate_map
 
     t = dict(TRUTH if truth is None else truth)
     angles = np.linspace(-ANGLE_SPAN, ANGLE_SPAN, n_angles)

@@ -26,7 +26,7 @@ SEED = 20261202
 def simulated_map(n_angles: int = N_ANGLES, n_energies: int = N_ENERGIES,
                   seed: int = SEED) -> xr.DataArray:
     """An invented emission map in counts (GaAs-like numbers, not a measurement)."""
-    from polkit.models.spectral import simulate_map
+    from polkit.models.simulate import simulate_map
 
     rng = np.random.default_rng(seed)
     angles = np.linspace(-24.0, 24.0, n_angles)

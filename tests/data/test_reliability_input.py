@@ -368,7 +368,7 @@ CLI_MENTIONS = {"power_typo.csv": "mw", "decimal_comma.csv": "decimal comma",
 
 @pytest.fixture(scope="module")
 def small_map(tmp_path_factory) -> Path:
-    from polkit.models.spectral import simulate_map
+    from polkit.models.simulate import simulate_map
 
     ang, energy = np.linspace(-15, 15, 9), np.linspace(1.530, 1.556, 60)
     sim = simulate_map(ang, energy, e_c0=1.542, n_eff=3.4, e_x=1.545, g=0.005,

@@ -27,7 +27,7 @@ from polkit.folder_lock import LOCK_FILE, FolderLockedError, folder_lock, read_l
 from polkit.inference import checkpoint as checkpoint_module
 from polkit.jobs import steps as _steps
 from polkit.jobs.dispersion.run import DispersionFit, fit_dispersion
-from polkit.models.spectral import simulate_map
+from polkit.models.simulate import simulate_map
 
 MEV = 1e-3
 SEED = 5

@@ -23,7 +23,7 @@ from polkit.inference.settings import SamplerSettings
 from polkit.jobs.survey.result import SurveyResult
 from polkit.jobs.survey.run import run_survey
 from polkit.jobs.survey.tasks import fit_position
-from polkit.models.spectral import simulate_map
+from polkit.models.simulate import simulate_map
 
 MEV = 1e-3
 E_X = 1.545  # exciton energy, eV

@@ -27,7 +27,7 @@ TRUTH = {"exciton_energy": 1.545, "cavity_energy": 1.541, "n_eff": 3.4, "rabi_sp
 
 
 def _emission_map(n_angles=21, n_energies=170, seed=7) -> xr.DataArray:
-    from polkit.models.spectral import simulate_map
+    from polkit.models.simulate import simulate_map
 
     rng = np.random.default_rng(seed)
     angles = np.linspace(-20.0, 20.0, n_angles)
