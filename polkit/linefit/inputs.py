@@ -30,11 +30,13 @@ MIN_ENERGIES = 20
 
 
 def source_of(obj) -> str | None:
+    """The ``source`` attribute of a map or cube (the file it came from), or None."""
     src = obj.attrs.get("source") if hasattr(obj, "attrs") else None
     return str(src) if src not in (None, "") else None
 
 
 def check_choice(value, allowed, key):
+    """Refuse an option ``key`` whose value is not one of ``allowed``."""
     if value not in allowed:
         raise ConfigError(
             f"expected one of {', '.join(repr(a) for a in allowed)}, found {value!r}", key=key
@@ -42,6 +44,7 @@ def check_choice(value, allowed, key):
 
 
 def as_rng(rng) -> np.random.Generator:
+    """A generator from None (seed 0), an integer seed, a SeedSequence or a Generator."""
     if isinstance(rng, np.random.Generator):
         return rng
     if rng is None:
@@ -55,6 +58,7 @@ def as_rng(rng) -> np.random.Generator:
 
 
 def parse_window(value, key) -> tuple[float, float] | None:
+    """The window option ``key`` as a pair of floats ``low < high``, or None."""
     if value is None:
         return None
     try:
@@ -69,6 +73,7 @@ def parse_window(value, key) -> tuple[float, float] | None:
 
 
 def check_energy(da: xr.DataArray, path) -> None:
+    """Refuse data without a finite, strictly ascending energy axis in eV."""
     if "energy" not in da.coords:
         raise DataError("expected an 'energy' coordinate in eV, found none", path=path,
                         field="energy")
@@ -85,6 +90,7 @@ def check_energy(da: xr.DataArray, path) -> None:
 
 
 def check_values(da: xr.DataArray, path, name: str) -> None:
+    """Refuse values that are not numbers, or NaN/Inf unless NaN marks masked pixels."""
     values = np.asarray(da.values)
     if not np.issubdtype(values.dtype, np.number):
         raise DataError(f"expected numbers, found dtype {values.dtype}", path=path, field=name)
@@ -97,7 +103,13 @@ def check_values(da: xr.DataArray, path, name: str) -> None:
                 "pixels to ignore as NaN and set attrs['masked'] = 1", path=path, field=name)
 
 
-def select_window(da: xr.DataArray, dim: str, window, path, key: str, minimum: int) -> xr.DataArray:
+def select_window(da: xr.DataArray, dim: str, window, path, key: str,
+                  minimum: int) -> xr.DataArray:
+    """The part of ``da`` inside the option ``key``'s window along ``dim`` (None: all of it).
+
+    Refuses a malformed window, or one holding fewer than ``minimum`` points.
+    """
+    window = parse_window(window, key)
     if window is None:
         return da
     coord = da[dim].values

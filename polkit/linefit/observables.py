@@ -14,22 +14,8 @@ import xarray as xr
 from scipy.ndimage import gaussian_filter1d
 
 from polkit.errors import DataError
+from polkit.linefit import inputs
 from polkit.linefit.detection import baseline_seed, detect, line_params, seed_line
-from polkit.linefit.inputs import (
-    ANGLE_DIMS,
-    MIN_ENERGIES,
-    PROFILES,
-    SERIES_DIMS,
-    as_rng,
-    check_choice,
-    check_energy,
-    check_min_snr,
-    check_values,
-    parse_window,
-    record_seed,
-    select_window,
-    source_of,
-)
 from polkit.linefit.noise import noise_from_attrs
 from polkit.linefit.spectrum import SMOOTH_PX, Fit, Line, LineFitter
 
@@ -46,7 +32,7 @@ _SERIES_VARS = ("intensity", "intensity_error", "peak_energy", "peak_energy_erro
 def _intensity_of(cube):
     """The intensity array of a cube, the attrs that apply to it and the cube's source."""
     if isinstance(cube, xr.Dataset):
-        path = source_of(cube)
+        path = inputs.source_of(cube)
         if "intensity" in cube.data_vars:
             da = cube["intensity"]
         else:
@@ -58,7 +44,7 @@ def _intensity_of(cube):
             da = cube[cands[0]]
         attrs = {**cube.attrs, **da.attrs}
     elif isinstance(cube, xr.DataArray):
-        da, attrs, path = cube, dict(cube.attrs), source_of(cube)
+        da, attrs, path = cube, dict(cube.attrs), inputs.source_of(cube)
     else:
         raise DataError(f"expected an xarray Dataset or DataArray, found {type(cube).__name__}")
     return da, attrs, path
@@ -67,20 +53,20 @@ def _intensity_of(cube):
 def series_spectra(cube, energy_window, angle_window):
     """The (series, energy) spectra to fit, with the column selection and metadata."""
     da, attrs, path = _intensity_of(cube)
-    sdims = [d for d in da.dims if d in SERIES_DIMS]
-    adims = [d for d in da.dims if d in ANGLE_DIMS]
-    extra = [d for d in da.dims if d not in (*SERIES_DIMS, *ANGLE_DIMS, "energy")]
+    sdims = [d for d in da.dims if d in inputs.SERIES_DIMS]
+    adims = [d for d in da.dims if d in inputs.ANGLE_DIMS]
+    extra = [d for d in da.dims if d not in (*inputs.SERIES_DIMS, *inputs.ANGLE_DIMS, "energy")]
     if len(sdims) != 1 or "energy" not in da.dims or len(adims) > 1 or extra:
         raise DataError(
             f"expected dims (power or point, energy[, angle or k]), found {tuple(da.dims)}",
             path=path, field="intensity")
     sdim = sdims[0]
-    check_energy(da, path)
-    check_values(da.assign_attrs(attrs), path, "intensity")
-    da = select_window(da, "energy", parse_window(energy_window, "energy_window"), path,
-                       "energy_window", MIN_ENERGIES)
-    if da.sizes["energy"] < MIN_ENERGIES:
-        raise DataError(f"expected at least {MIN_ENERGIES} energies, found "
+    inputs.check_energy(da, path)
+    inputs.check_values(da.assign_attrs(attrs), path, "intensity")
+    da = inputs.select_window(da, "energy", energy_window, path, "energy_window",
+                              inputs.MIN_ENERGIES)
+    if da.sizes["energy"] < inputs.MIN_ENERGIES:
+        raise DataError(f"expected at least {inputs.MIN_ENERGIES} energies, found "
                         f"{da.sizes['energy']}", path=path, field="energy")
     info = {"path": path, "sdim": sdim, "attrs": attrs, "n_avg": 1, "columns": None,
             "adim": None}
@@ -93,7 +79,7 @@ def series_spectra(cube, energy_window, angle_window):
 def _average_columns(da: xr.DataArray, adim: str, angle_window, path, info: dict):
     """Mean over the angle columns in ``angle_window`` (default: around k = 0); notes in info."""
     a = np.asarray(da[adim].values, dtype=float)
-    win = parse_window(angle_window, "angle_window")
+    win = inputs.parse_window(angle_window, "angle_window")
     if win is None:
         half = _K0_HALF_WIDTH[adim]
         nearest = float(a[np.argmin(np.abs(a))])
@@ -161,9 +147,9 @@ def extract_observables(
     ConfigError
         For an unknown ``profile`` or malformed windows.
     """
-    check_choice(profile, PROFILES, "profile")
-    check_min_snr(min_snr)
-    gen = as_rng(rng)
+    inputs.check_choice(profile, inputs.PROFILES, "profile")
+    inputs.check_min_snr(min_snr)
+    gen = inputs.as_rng(rng)
     da, info = series_spectra(cube, energy_window, angle_window)
     attrs, path, sdim = info["attrs"], info["path"], info["sdim"]
     kind = str(attrs.get("kind", "emission"))
@@ -182,7 +168,7 @@ def extract_observables(
     previous = None
     for i in range(n):
         ok = np.isfinite(values[i])
-        if ok.sum() < MIN_ENERGIES:
+        if ok.sum() < inputs.MIN_ENERGIES:
             continue
         f = LineFitter(x_all[ok], values[i, ok], profile=profile, sign=sign, noise=noise,
                        rng=gen)
@@ -288,6 +274,6 @@ def _assemble_series(cube, da, info, out, found, profile, noise, kind, min_snr, 
         ds.attrs["angle_dim"] = info["adim"]
         ds.attrs["angle_window"] = info["window"]
         ds.attrs["angle_columns"] = info["columns"]
-    record_seed(ds.attrs, rng)
+    inputs.record_seed(ds.attrs, rng)
     return ds
 

@@ -15,6 +15,7 @@ import numpy as np
 import xarray as xr
 
 from polkit.errors import ConfigError, DataError, DataWarning
+from polkit.linefit import inputs
 from polkit.linefit.detection import (
     baseline_seed,
     detect,
@@ -22,20 +23,6 @@ from polkit.linefit.detection import (
     line_params,
     seed_line,
     seed_width,
-)
-from polkit.linefit.inputs import (
-    ANGLE_DIMS,
-    MIN_ENERGIES,
-    PROFILES,
-    as_rng,
-    check_choice,
-    check_energy,
-    check_min_snr,
-    check_values,
-    parse_window,
-    record_seed,
-    select_window,
-    source_of,
 )
 from polkit.linefit.noise import Noise, noise_from_attrs
 from polkit.linefit.spectrum import Fit, Line, LineFitter
@@ -53,30 +40,29 @@ _VOIGT_VARS = ("fwhm_lorentzian", "fwhm_lorentzian_error", "sigma_gaussian",
 
 
 def _prepare_map(map_: xr.DataArray, angle_window, energy_window):
-    path = source_of(map_) if isinstance(map_, xr.DataArray) else None
+    path = inputs.source_of(map_) if isinstance(map_, xr.DataArray) else None
     if not isinstance(map_, xr.DataArray):
         raise DataError(f"expected an xarray.DataArray map, found {type(map_).__name__}; "
                         "load it with polkit.data.load_map")
-    adims = [d for d in map_.dims if d in ANGLE_DIMS]
+    adims = [d for d in map_.dims if d in inputs.ANGLE_DIMS]
     if map_.ndim != 2 or "energy" not in map_.dims or len(adims) != 1:
         raise DataError(
             f"expected dims (angle or k, energy), found {tuple(map_.dims)}; a map has one "
             "angle-like dim ('angle' in degree or 'k' in 1/um) and 'energy' in eV",
             path=path, field="dims")
     adim = adims[0]
-    check_energy(map_, path)
-    check_values(map_, path, map_.name or "signal")
+    inputs.check_energy(map_, path)
+    inputs.check_values(map_, path, map_.name or "signal")
     a = np.asarray(map_[adim].values, dtype=float) if adim in map_.coords else None
     if a is None or not np.all(np.isfinite(a)) or np.unique(a).size != a.size:
         raise DataError(f"expected a finite '{adim}' coordinate without repeats", path=path,
                         field=adim)
     da = map_.transpose(adim, "energy").sortby(adim)
-    da = select_window(da, "energy", parse_window(energy_window, "energy_window"), path,
-                       "energy_window", MIN_ENERGIES)
-    da = select_window(da, adim, parse_window(angle_window, "angle_window"), path,
-                       "angle_window", 1)
-    if da.sizes["energy"] < MIN_ENERGIES:
-        raise DataError(f"expected at least {MIN_ENERGIES} energies, found "
+    da = inputs.select_window(da, "energy", energy_window, path, "energy_window",
+                              inputs.MIN_ENERGIES)
+    da = inputs.select_window(da, adim, angle_window, path, "angle_window", 1)
+    if da.sizes["energy"] < inputs.MIN_ENERGIES:
+        raise DataError(f"expected at least {inputs.MIN_ENERGIES} energies, found "
                         f"{da.sizes['energy']}", path=path, field="energy")
     return da, adim, path
 
@@ -113,10 +99,10 @@ class _TableOptions:
     rng: int | np.random.Generator | None
 
     def check(self) -> None:
-        check_choice(self.profile, PROFILES, "profile")
+        inputs.check_choice(self.profile, inputs.PROFILES, "profile")
         if isinstance(self.n_peaks, bool) or self.n_peaks not in (1, 2, 3):
             raise ConfigError(f"expected 1, 2 or 3, found {self.n_peaks!r}", key="n_peaks")
-        check_min_snr(self.min_snr)
+        inputs.check_min_snr(self.min_snr)
 
 
 @dataclass
@@ -199,7 +185,7 @@ def peak_table(
     """
     opts = _TableOptions(n_peaks, profile, angle_window, energy_window, min_snr, rng)
     opts.check()
-    gen = as_rng(rng)
+    gen = inputs.as_rng(rng)
     da, adim, path = _prepare_map(map, angle_window, energy_window)
     kind = str(da.attrs.get("kind", "emission"))
     sign = -1.0 if kind == "reflectance" else 1.0
@@ -233,7 +219,7 @@ def _sweep_of(da: xr.DataArray, adim: str, opts: _TableOptions, sign: float, noi
     fitters, cands = [], []
     for i in range(n_ang):
         ok = np.isfinite(values[i])
-        if ok.sum() < MIN_ENERGIES:
+        if ok.sum() < inputs.MIN_ENERGIES:
             fitters.append(None)
             cands.append([])
             continue
@@ -442,7 +428,7 @@ def _assemble_table(da: xr.DataArray, adim: str, sw: _Sweep, opts: _TableOptions
         ds.attrs["angle_window"] = [float(v) for v in opts.angle_window]
     if opts.energy_window is not None:
         ds.attrs["energy_window"] = [float(v) for v in opts.energy_window]
-    record_seed(ds.attrs, opts.rng)
+    inputs.record_seed(ds.attrs, opts.rng)
     logger.info("peak table: %d angles, lines found per slot %s", n_ang,
                 found.sum(axis=0).tolist())
     return ds

@@ -55,7 +55,7 @@ def plot_peak_table(map: xr.DataArray, table: xr.Dataset, ax=None, *,
     Parameters
     ----------
     map
-        The map given to :func:`peak_table`.
+        The map given to :func:`polkit.linefit.peak_table`.
     table
         Its result.
     ax
@@ -115,7 +115,7 @@ def plot_extraction(cube: xr.Dataset | xr.DataArray, obs: xr.Dataset, *,
     Parameters
     ----------
     cube
-        The cube given to :func:`extract_observables`.
+        The cube given to :func:`polkit.linefit.extract_observables`.
     obs
         Its result.
     n_examples
