@@ -13,11 +13,10 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.ndimage import gaussian_filter1d
 from scipy.signal import find_peaks, peak_widths
-from scipy.special import voigt_profile
 
 from polkit.linefit.noise import robust_sd
 from polkit.linefit.spectrum import SMOOTH_PX, Line, LineFitter
-from polkit.models.lineshapes import FWHM_PER_SIGMA, voigt_fwhm
+from polkit.models.lineshapes import FWHM_PER_SIGMA, voigt, voigt_fwhm
 
 __all__ = ["Candidate", "detect", "seed_line", "baseline_seed", "fit_lines", "seed_width",
            "line_params"]
@@ -60,7 +59,7 @@ def seed_line(fitter: LineFitter, centre: float, fwhm: float, height: float) -> 
     if fitter.profile == "lorentzian":
         return np.array([centre, fwhm, 0.5 * np.pi * fwhm * height])
     fl, sg = 0.5 * fwhm, 0.5 * fwhm / FWHM_PER_SIGMA
-    area = height / float(voigt_profile(0.0, sg, 0.5 * fl))
+    area = height / float(voigt(0.0, 0.0, fl, sg))  # height of the unit-area line
     return np.array([centre, fl, sg, area])
 
 
