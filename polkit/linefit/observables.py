@@ -17,7 +17,7 @@ from polkit.errors import DataError
 from polkit.linefit import inputs
 from polkit.linefit.detection import baseline_seed, detect, line_params, seed_line
 from polkit.linefit.noise import noise_from_attrs
-from polkit.linefit.spectrum import SMOOTH_PX, Fit, Line, LineFitter
+from polkit.linefit.spectrum import SMOOTH_PX, Fit, Line, LineFitter, row_fitters
 
 __all__ = ["extract_observables", "series_spectra"]
 
@@ -155,23 +155,17 @@ def extract_observables(
     kind = str(attrs.get("kind", "emission"))
     sign = -1.0 if kind == "reflectance" else 1.0
     noise = noise_from_attrs(attrs, kind, path, n_avg=info["n_avg"])
-    energy = np.asarray(da["energy"].values, dtype=float)
-    e_ref = 0.5 * (energy[0] + energy[-1])
-    x_all = 1e3 * (energy - e_ref)
-    values = np.asarray(da.values, dtype=float)
-    n = values.shape[0]
+    e_ref, fitters = row_fitters(da, profile=profile, sign=sign, noise=noise, rng=gen)
+    n = len(fitters)
     names = list(_SERIES_VARS)
     if profile == "voigt":
         names += ["fwhm_lorentzian", "sigma_gaussian"]
     out = {k: np.full(n, np.nan) for k in names}
     found = np.zeros(n, dtype=np.int8)
     previous = None
-    for i in range(n):
-        ok = np.isfinite(values[i])
-        if ok.sum() < inputs.MIN_ENERGIES:
+    for i, f in enumerate(fitters):
+        if f is None:
             continue
-        f = LineFitter(x_all[ok], values[i, ok], profile=profile, sign=sign, noise=noise,
-                       rng=gen)
         good, fit, line = _fit_main_line(f, previous, e_ref, min_snr)
         _store_series_point(out, i, f, fit, line, good, sign, profile)
         found[i] = int(good)

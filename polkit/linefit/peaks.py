@@ -25,7 +25,7 @@ from polkit.linefit.detection import (
     seed_width,
 )
 from polkit.linefit.noise import Noise, noise_from_attrs
-from polkit.linefit.spectrum import Fit, Line, LineFitter
+from polkit.linefit.spectrum import Fit, Line, LineFitter, row_fitters
 
 __all__ = ["peak_table"]
 
@@ -209,24 +209,10 @@ def _sweep_of(da: xr.DataArray, adim: str, opts: _TableOptions, sign: float, noi
               gen: np.random.Generator) -> _Sweep:
     """A fitter and the detected maxima for every angle of the map with enough pixels."""
     angles = np.asarray(da[adim].values, dtype=float)
-    energy = np.asarray(da["energy"].values, dtype=float)
-    e_ref = 0.5 * (energy[0] + energy[-1])
-    x_all = 1e3 * (energy - e_ref)
-    values = np.asarray(da.values, dtype=float)
-    n_ang = angles.size
-    step = float(np.median(np.diff(angles))) if n_ang > 1 else 1.0
-
-    fitters, cands = [], []
-    for i in range(n_ang):
-        ok = np.isfinite(values[i])
-        if ok.sum() < inputs.MIN_ENERGIES:
-            fitters.append(None)
-            cands.append([])
-            continue
-        f = LineFitter(x_all[ok], values[i, ok], profile=opts.profile, sign=sign, noise=noise,
-                       rng=gen)
-        fitters.append(f)
-        cands.append(detect(f, sign * (f.y - baseline_seed(f)), opts.min_snr))
+    step = float(np.median(np.diff(angles))) if angles.size > 1 else 1.0
+    e_ref, fitters = row_fitters(da, profile=opts.profile, sign=sign, noise=noise, rng=gen)
+    cands = [[] if f is None else detect(f, sign * (f.y - baseline_seed(f)), opts.min_snr)
+             for f in fitters]
     return _Sweep(angles, fitters, cands, e_ref, opts.n_peaks, opts.min_snr, step)
 
 

@@ -17,10 +17,11 @@ from scipy.ndimage import gaussian_filter1d
 from scipy.optimize import least_squares, nnls
 from scipy.special import wofz
 
+from polkit.linefit.inputs import MIN_ENERGIES
 from polkit.linefit.noise import Noise
 from polkit.models.lineshapes import FWHM_PER_SIGMA, voigt_fwhm
 
-__all__ = ["SMOOTH_PX", "Fit", "Line", "LineFitter"]
+__all__ = ["SMOOTH_PX", "Fit", "Line", "LineFitter", "row_fitters"]
 
 SMOOTH_PX = 1.5  # Gaussian smoothing (pixels) used only to find starting guesses
 #: at most this many pixels are pooled in the detection test (a broad bump of background
@@ -281,3 +282,25 @@ def _propagate(grad: np.ndarray, cov: np.ndarray) -> float:
     var = float(grad @ cov @ grad)
     return math.sqrt(var) if var >= 0 else float("nan")
 
+
+
+def row_fitters(da, *, profile: str, sign: float, noise: Noise,
+                rng: np.random.Generator) -> tuple[float, list[LineFitter | None]]:
+    """A fitter for each row of a (row, energy) array, over the row's finite pixels.
+
+    Returns the reference energy [eV] of the fitters' meV axis and the fitters, None for a
+    row with fewer than :data:`~polkit.linefit.inputs.MIN_ENERGIES` finite pixels.
+    """
+    energy = np.asarray(da["energy"].values, dtype=float)
+    e_ref = 0.5 * (energy[0] + energy[-1])
+    x_all = 1e3 * (energy - e_ref)
+    values = np.asarray(da.values, dtype=float)
+    fitters = []
+    for i in range(values.shape[0]):
+        ok = np.isfinite(values[i])
+        if ok.sum() < MIN_ENERGIES:
+            fitters.append(None)
+            continue
+        fitters.append(LineFitter(x_all[ok], values[i, ok], profile=profile, sign=sign,
+                                  noise=noise, rng=rng))
+    return e_ref, fitters
