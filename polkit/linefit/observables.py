@@ -8,6 +8,7 @@ and linewidth of its main line per spectrum, each with its standard error.
 from __future__ import annotations
 
 import math
+from dataclasses import dataclass
 
 import numpy as np
 import xarray as xr
@@ -19,7 +20,7 @@ from polkit.linefit.detection import baseline_seed, detect, line_params, seed_li
 from polkit.linefit.noise import noise_from_attrs
 from polkit.linefit.spectrum import SMOOTH_PX, Fit, Line, LineFitter, row_fitters
 
-__all__ = ["extract_observables", "series_spectra"]
+__all__ = ["extract_observables", "series_spectra", "SeriesInfo"]
 
 #: default half-width of the k = 0 window of extract_observables, per angle-like dim
 _K0_HALF_WIDTH = {"angle": 1.0, "k": 0.15}
@@ -27,6 +28,19 @@ _K0_HALF_WIDTH = {"angle": 1.0, "k": 0.15}
 _SERIES_VARS = ("intensity", "intensity_error", "peak_energy", "peak_energy_error", "linewidth",
                 "linewidth_error", "amplitude", "amplitude_error", "area", "area_error",
                 "background", "snr", "reduced_chi2")
+
+
+@dataclass
+class SeriesInfo:
+    """What :func:`series_spectra` selected: the source, dims, attrs and angle columns."""
+
+    path: str | None  # the cube's source
+    sdim: str  # the series dim, ``power`` or ``point``
+    attrs: dict  # the cube's attrs updated by the intensity's
+    n_avg: int = 1  # number of angle columns averaged per spectrum
+    columns: list[float] | None = None  # their coordinates
+    adim: str | None = None  # the angle-like dim averaged over, if any
+    window: list[float] | None = None  # the angle window used, [low, high]
 
 
 def _intensity_of(cube):
@@ -51,7 +65,11 @@ def _intensity_of(cube):
 
 
 def series_spectra(cube, energy_window, angle_window):
-    """The (series, energy) spectra to fit, with the column selection and metadata."""
+    """The (series, energy) spectra to fit, and a :class:`SeriesInfo` of what was selected.
+
+    With an angle-like dim the spectra are the mean over the columns in ``angle_window``
+    (default: around k = 0).
+    """
     da, attrs, path = _intensity_of(cube)
     sdims = [d for d in da.dims if d in inputs.SERIES_DIMS]
     adims = [d for d in da.dims if d in inputs.ANGLE_DIMS]
@@ -68,15 +86,14 @@ def series_spectra(cube, energy_window, angle_window):
     if da.sizes["energy"] < inputs.MIN_ENERGIES:
         raise DataError(f"expected at least {inputs.MIN_ENERGIES} energies, found "
                         f"{da.sizes['energy']}", path=path, field="energy")
-    info = {"path": path, "sdim": sdim, "attrs": attrs, "n_avg": 1, "columns": None,
-            "adim": None}
+    info = SeriesInfo(path=path, sdim=sdim, attrs=attrs)
     if adims:
         da = _average_columns(da, adims[0], angle_window, path, info)
     da = da.transpose(sdim, "energy")
     return da, info
 
 
-def _average_columns(da: xr.DataArray, adim: str, angle_window, path, info: dict):
+def _average_columns(da: xr.DataArray, adim: str, angle_window, path, info: SeriesInfo):
     """Mean over the angle columns in ``angle_window`` (default: around k = 0); notes in info."""
     a = np.asarray(da[adim].values, dtype=float)
     win = inputs.parse_window(angle_window, "angle_window")
@@ -92,8 +109,8 @@ def _average_columns(da: xr.DataArray, adim: str, angle_window, path, info: dict
             f"none (the data span {a.min():.4g} to {a.max():.4g}); widen angle_window",
             path=path, field=adim)
     sel = da.isel({adim: keep})
-    info.update(n_avg=int(keep.size), columns=[float(v) for v in a[keep]], adim=adim,
-                window=[float(win[0]), float(win[1])])
+    info.n_avg, info.columns = int(keep.size), [float(v) for v in a[keep]]
+    info.adim, info.window = adim, [float(win[0]), float(win[1])]
     return sel.mean(adim, skipna=True, keep_attrs=True)
 
 
@@ -151,10 +168,10 @@ def extract_observables(
     inputs.check_min_snr(min_snr)
     gen = inputs.as_rng(rng)
     da, info = series_spectra(cube, energy_window, angle_window)
-    attrs, path, sdim = info["attrs"], info["path"], info["sdim"]
+    attrs, path = info.attrs, info.path
     kind = str(attrs.get("kind", "emission"))
     sign = -1.0 if kind == "reflectance" else 1.0
-    noise = noise_from_attrs(attrs, kind, path, n_avg=info["n_avg"])
+    noise = noise_from_attrs(attrs, kind, path, n_avg=info.n_avg)
     e_ref, fitters = row_fitters(da, profile=profile, sign=sign, noise=noise, rng=gen)
     n = len(fitters)
     names = list(_SERIES_VARS)
@@ -171,8 +188,7 @@ def extract_observables(
         found[i] = int(good)
         if good:
             previous = line_params(f, line)
-    return _assemble_series(cube, da, info, out, found, profile, noise, kind, min_snr, sdim,
-                            rng)
+    return _assemble_series(cube, da, info, out, found, profile, noise, kind, min_snr, rng)
 
 
 def _fit_main_line(f: LineFitter, previous, e_ref: float, min_snr: float):
@@ -228,9 +244,10 @@ def _store_series_point(out, i, f: LineFitter, fit: Fit, line: Line, good, sign,
             out["fwhm_lorentzian"][i], out["sigma_gaussian"][i] = line.shape
 
 
-def _assemble_series(cube, da, info, out, found, profile, noise, kind, min_snr, sdim,
+def _assemble_series(cube, da, info: SeriesInfo, out, found, profile, noise, kind, min_snr,
                      rng) -> xr.Dataset:
-    units = str(info["attrs"].get("units", "counts"))
+    sdim = info.sdim
+    units = str(info.attrs.get("units", "counts"))
     meta = {
         "intensity": (units, "background-subtracted signal summed over the energy window"),
         "intensity_error": (units, "standard error of intensity"),
@@ -260,14 +277,14 @@ def _assemble_series(cube, da, info, out, found, profile, noise, kind, min_snr, 
         ds[name] = (sdim, arr, {"units": meta[name][0], "long_name": meta[name][1]})
     ds["found"] = (sdim, found, {"long_name": f"1 where snr >= {min_snr:g}"})
     ds.attrs.update({
-        "profile": profile, "kind": kind, "source": info["path"] or "",
+        "profile": profile, "kind": kind, "source": info.path or "",
         "noise_model": noise.describe(), "min_snr": float(min_snr),
         "energy_window": [float(da["energy"].values[0]), float(da["energy"].values[-1])],
     })
-    if info["adim"] is not None:
-        ds.attrs["angle_dim"] = info["adim"]
-        ds.attrs["angle_window"] = info["window"]
-        ds.attrs["angle_columns"] = info["columns"]
+    if info.adim is not None:
+        ds.attrs["angle_dim"] = info.adim
+        ds.attrs["angle_window"] = info.window
+        ds.attrs["angle_columns"] = info.columns
     inputs.record_seed(ds.attrs, rng)
     return ds
 

@@ -40,6 +40,7 @@ _VOIGT_VARS = ("fwhm_lorentzian", "fwhm_lorentzian_error", "sigma_gaussian",
 
 
 def _prepare_map(map_: xr.DataArray, angle_window, energy_window):
+    """The checked map as (angle-like, energy), inside the windows; its angle dim and source."""
     path = inputs.source_of(map_) if isinstance(map_, xr.DataArray) else None
     if not isinstance(map_, xr.DataArray):
         raise DataError(f"expected an xarray.DataArray map, found {type(map_).__name__}; "
