@@ -14,8 +14,9 @@ from scipy.special import voigt_profile
 
 from polkit.errors import ConfigError, DataError, DataWarning
 from polkit.files import save_figure
-from polkit.linefit.lines import extract_observables, peak_table, plot_extraction, plot_peak_table
+from polkit.linefit import extract_observables, peak_table
 from polkit.models.lineshapes import lorentzian, voigt
+from polkit.plotting.linefit import plot_extraction, plot_peak_table
 
 # ---------------------------------------------------------------------------------------------
 # synthetic data
@@ -334,14 +335,15 @@ def test_bad_options_are_refused():
 
 def test_analytic_jacobian_matches_finite_differences():
     # Source: central finite differences, independent of the derivative formulas; both shapes
-    from polkit.linefit.lines import _LineFitter, _Noise
+    from polkit.linefit.noise import Noise
+    from polkit.linefit.spectrum import LineFitter
 
     x = np.linspace(-6.0, 6.0, 81)
     rng = np.random.default_rng(0)
     for profile, p in (("lorentzian", [3.0, -1.0, 1.2, 40.0, 2.0, 0.7, 15.0]),
                        ("voigt", [3.0, -1.0, 0.8, 0.4, 40.0, 2.0, 0.3, 0.9, 15.0])):
-        fitter = _LineFitter(x, rng.normal(size=x.size), profile=profile, sign=-1.0,
-                             noise=_Noise(), rng=rng)
+        fitter = LineFitter(x, rng.normal(size=x.size), profile=profile, sign=-1.0,
+                            noise=Noise(), rng=rng)
         p = np.array(p)
         jac = fitter.model_jac(p)[1]
         for j in range(p.size):
