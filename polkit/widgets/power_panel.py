@@ -294,7 +294,7 @@ def power_panel(
     ----------
     source
         A series table (CSV with bracketed units, netCDF, ``.npz``) or an in-memory series
-        Dataset (spectra cubes: run :func:`polkit.linefit.lines.extract_observables` first, or
+        Dataset (spectra cubes: run :func:`polkit.linefit.extract_observables` first, or
         use :func:`~polkit.jobs.power.run.fit_power`).
     model
         ``"coherent"`` or ``"reservoir"``.
@@ -319,7 +319,7 @@ def power_panel(
     problem, setup = stages.prepare_power(
         source, model=model, calibration=calibration, dispersion=dispersion, priors=priors,
         cube_refusal="the panel takes a table of observables, found a spectra cube; reduce it "
-        "with polkit.linefit.lines.extract_observables first")
+        "with polkit.linefit.extract_observables first")
     steps = int(max_steps) if max_steps is not None else pw.DEFAULT_STEPS["max_steps"]
     return PowerPanel(problem, setup, seed=seed, max_steps=steps, min_steps=min_steps,
                       n_walkers=n_walkers, out=out)

@@ -7,7 +7,7 @@ which the likelihood is given exactly), each map is fitted twice with polkit's s
 
 * the whole-map path, :meth:`DispersionProblem.log_likelihood` (MAP, then emcee);
 * the peak-table path, :meth:`DispersionProblem.table_log_likelihood` on the per-angle
-  line fits of :func:`polkit.linefit.lines.peak_table`.
+  line fits of :func:`polkit.linefit.peak_table`.
 
 The Cramer-Rao bound comes from the Fisher information of the whole-map Gaussian
 likelihood at the truth, ``F = J^T W J``, where ``J`` is the model's Jacobian with respect
@@ -167,7 +167,7 @@ def run(
         Override the sizes.
     """
     from polkit.errors import DataWarning
-    from polkit.linefit.lines import peak_table
+    from polkit.linefit import peak_table
 
     n_angles = n_angles or (40 if quick else 80)
     n_energies = n_energies or (300 if quick else 600)

@@ -29,7 +29,7 @@ from polkit.data import (
     validate_map,
 )
 from polkit.errors import ConfigError, ConvergenceWarning, DataError, DataWarning
-from polkit.linefit.lines import peak_table
+from polkit.linefit import peak_table
 
 HC_EV_NM = sc.h * sc.c / sc.e * 1e9  # Source: CODATA via scipy.constants
 HEADER = "rows: wavelength [nm]; columns: angle [degree]; signal: counts"

@@ -72,7 +72,7 @@ class PowerCalibration:
 @dataclass(frozen=True)
 class ExtractionWindow:
     """Where the observables of a spectra cube are extracted
-    (:func:`polkit.linefit.lines.extract_observables`); a table of observables takes none.
+    (:func:`polkit.linefit.extract_observables`); a table of observables takes none.
 
     Attributes
     ----------

@@ -8,7 +8,7 @@ panel (:mod:`polkit.widgets.power_panel`) takes the same steps one at a time;
 1. :func:`~polkit.jobs.power.stages.prepare_power`: load the series
    (:func:`polkit.data.load_series`) or take an in-memory Dataset; a spectra cube is
    reduced to intensity, peak energy and linewidth per power by
-   :func:`polkit.linefit.lines.extract_observables` (the extraction figure is written so a
+   :func:`polkit.linefit.extract_observables` (the extraction figure is written so a
    person can check it); job-level checks (:func:`~polkit.jobs.power.stages.check_series`):
    sweep labels for coherent drive, powers monotonic within each sweep, no empty sweep;
    calibration (:func:`polkit.config.calibration.read_calibration`) and dispersion result
@@ -320,7 +320,7 @@ def _write(result: PowerFit, setup: PowerSetup, out_dir: Path, figures: bool) ->
 
 def _extraction_figure(cube: xr.Dataset, obs: xr.Dataset, target: Path) -> Path:
     from polkit import files
-    from polkit.linefit.lines import plot_extraction
+    from polkit.plotting.linefit import plot_extraction
     from polkit.plotting.base import pyplot
 
     plt = pyplot()

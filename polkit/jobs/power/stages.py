@@ -4,7 +4,7 @@
 (:mod:`polkit.widgets.power_panel`) one at a time:
 
 * :func:`prepare_power`: the options checked, the series loaded (a spectra cube reduced
-  by :func:`polkit.linefit.lines.extract_observables`) and checked (:func:`check_series`), the
+  by :func:`polkit.linefit.extract_observables`) and checked (:func:`check_series`), the
   calibration and the dispersion result read, the
   :class:`~polkit.jobs.power.problem.PowerProblem` with its priors and the
   polariton-linewidth prior of the coherent model;
@@ -331,7 +331,7 @@ def _observe(source, model: str, window: ExtractionWindow, cube_refusal: str | N
     notes: list[str] = []
     extraction = None
     if cube:
-        from polkit.linefit.lines import extract_observables
+        from polkit.linefit import extract_observables
 
         extraction = extract_observables(raw, energy_window=window.energy,
                                          angle_window=window.angle, rng=0)
@@ -394,7 +394,7 @@ def prepare_power(
     cube_refusal
         Refuse a spectra cube with this message (a :class:`~polkit.errors.DataError` on
         ``intensity``); ``None`` reduces a cube with
-        :func:`polkit.linefit.lines.extract_observables`.
+        :func:`polkit.linefit.extract_observables`.
 
     Returns
     -------
