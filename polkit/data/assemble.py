@@ -46,6 +46,7 @@ import xarray as xr
 from polkit import units as U
 from polkit.data.camera_raw import camera_step, jacobian_coord, record_lines
 from polkit.data.fourier import calibrate_pixel_axis
+from polkit.data.options import LoadOptions
 from polkit.data.roles import SIGNAL_NAMES, axis_role
 from polkit.data.schema import (
     CARRIED_ATTRS,
@@ -441,23 +442,15 @@ def _mask(
 
 # ----------------------------------------------------------------------------- maps
 def raw_to_map(
-    raw: xr.Dataset,
-    *,
-    path,
-    reader: str,
-    kind: str | None = None,
-    wavelength_medium: str | None = None,
-    energy_units: str | None = None,
-    angle_units: str | None = None,
-    fourier: dict | None = None,
-    mask_nonfinite: bool = False,
-    wavelength_jacobian: bool = True,
-    variable: str | None = None,
-    signal_units: str | None = None,
-    dark=None,
-    mask_saturated: bool = False,
+    raw: xr.Dataset, options: LoadOptions | None = None, *, path, reader: str, **changes
 ) -> xr.DataArray:
-    """Build and validate a canonical map from a raw dataset (see :func:`polkit.data.load_map`)."""
+    """Build and validate a canonical map from a raw dataset (see :func:`polkit.data.load_map`).
+
+    ``options`` is a :class:`polkit.data.LoadOptions` (or a dict of its fields), ``changes``
+    replace its fields; the reader's options and a job's windows and camera are not used.
+    """
+    opts = LoadOptions.of(options, **changes)
+    variable = opts.variable
     if raw_content(raw) == "table" and variable is None:
         raise DataError(
             "expected a 2-D signal (a map); found a table of columns "
@@ -466,10 +459,10 @@ def raw_to_map(
             field="signal",
         )
     sig_name = find_signal(raw, variable=variable, path=path)
-    _apply_signal_units(raw, sig_name, signal_units, path=path)
+    _apply_signal_units(raw, sig_name, opts.signal_units, path=path)
     record: dict = {}
-    medium = _choose_medium(wavelength_medium, raw.attrs, path=path)
-    kind_ = _choose_kind(kind, {**raw.attrs, **raw[sig_name].attrs}, sig_name, path=path)
+    medium = _choose_medium(opts.wavelength_medium, raw.attrs, path=path)
+    kind_ = _choose_kind(opts.kind, {**raw.attrs, **raw[sig_name].attrs}, sig_name, path=path)
     signal, order, coords, sig_units, extra, history = _convert_grid(
         raw,
         sig_name,
@@ -477,15 +470,16 @@ def raw_to_map(
         path=path,
         kind=kind_,
         medium=medium,
-        energy_units=energy_units,
-        angle_units=angle_units,
-        fourier=fourier,
-        jacobian=wavelength_jacobian,
-        raw_step=camera_step(raw.attrs, dark=dark, mask_saturated=mask_saturated, path=path,
-                              record=record),
+        energy_units=opts.energy_units,
+        angle_units=opts.angle_units,
+        fourier=opts.fourier,
+        jacobian=opts.wavelength_jacobian,
+        raw_step=camera_step(raw.attrs, dark=opts.dark, mask_saturated=opts.mask_saturated,
+                              path=path, record=record),
     )
     attrs = _carried(raw.attrs, raw[sig_name].attrs, path=path)
     n_sat = int(record.get("saturated", {}).get("pixels", 0))
+    mask_nonfinite = opts.mask_nonfinite
     signal, n_bad = _mask(signal, mask_nonfinite, path=path, field=sig_name, n_masked=n_sat)
     attrs.update(extra)
     jac_coord = jacobian_coord(attrs)
@@ -510,20 +504,13 @@ def raw_to_map(
 
 
 # ----------------------------------------------------------------------------- cubes
-def cube_to_series(
-    raw,
-    *,
-    path,
-    reader,
-    medium,
-    energy_units,
-    angle_units,
-    fourier,
-    mask_nonfinite,
-    jacobian,
-    variable,
-    signal_units,
-) -> xr.Dataset:
+def cube_to_series(raw, options: LoadOptions, *, path, reader, medium) -> xr.Dataset:
+    """Build and validate a spectra-cube series (see :func:`polkit.data.load_series`).
+
+    ``medium`` is the wavelength medium already chosen from ``options`` and the file.
+    """
+    variable, signal_units, mask_nonfinite = (
+        options.variable, options.signal_units, options.mask_nonfinite)
     sig_name = find_signal(raw, variable=variable, path=path)
     _apply_signal_units(raw, sig_name, signal_units, path=path)
     kind_ = _choose_kind(None, {**raw.attrs, **raw[sig_name].attrs}, sig_name, path=path)
@@ -535,10 +522,10 @@ def cube_to_series(
         path=path,
         kind=kind_,
         medium=medium,
-        energy_units=energy_units,
-        angle_units=angle_units,
-        fourier=fourier,
-        jacobian=jacobian,
+        energy_units=options.energy_units,
+        angle_units=options.angle_units,
+        fourier=options.fourier,
+        jacobian=options.wavelength_jacobian,
         raw_step=camera_step(raw.attrs, dark=None, mask_saturated=False, path=path,
                               record=record),
     )

@@ -30,6 +30,7 @@ from polkit.data.assemble import (
     raw_content,
 )
 from polkit.data.build import make_series
+from polkit.data.options import LoadOptions
 from polkit.data.roles import COLUMN_ALIASES as _COLUMN_ALIASES
 from polkit.data.roles import ERROR_SUFFIXES as _ERROR_SUFFIXES
 from polkit.data.schema import append_history
@@ -259,21 +260,16 @@ def _table_to_series(raw, *, path, reader, medium, mask_nonfinite) -> xr.Dataset
 
 
 def raw_to_series(
-    raw: xr.Dataset,
-    *,
-    path,
-    reader: str,
-    wavelength_medium: str | None = None,
-    energy_units: str | None = None,
-    angle_units: str | None = None,
-    fourier: dict | None = None,
-    mask_nonfinite: bool = False,
-    wavelength_jacobian: bool = True,
-    variable: str | None = None,
-    signal_units: str | None = None,
+    raw: xr.Dataset, options: LoadOptions | None = None, *, path, reader: str, **changes
 ) -> xr.Dataset:
-    """Build and validate a canonical series from a raw dataset (see ``load_series``)."""
-    medium = _choose_medium(wavelength_medium, raw.attrs, path=path)
+    """Build and validate a canonical series from a raw dataset (see ``load_series``).
+
+    ``options`` is a :class:`polkit.data.LoadOptions` (or a dict of its fields), ``changes``
+    replace its fields; ``kind``, ``dark``, ``mask_saturated``, the reader's options and a
+    job's windows and camera are not used.
+    """
+    opts = LoadOptions.of(options, **changes)
+    medium = _choose_medium(opts.wavelength_medium, raw.attrs, path=path)
     content = raw_content(raw)
     if content == "map":
         raise DataError(
@@ -283,19 +279,7 @@ def raw_to_series(
             field="power",
         )
     if content == "cube":
-        return cube_to_series(
-            raw,
-            path=path,
-            reader=reader,
-            medium=medium,
-            energy_units=energy_units,
-            angle_units=angle_units,
-            fourier=fourier,
-            mask_nonfinite=mask_nonfinite,
-            jacobian=wavelength_jacobian,
-            variable=variable,
-            signal_units=signal_units,
-        )
+        return cube_to_series(raw, opts, path=path, reader=reader, medium=medium)
     return _table_to_series(
-        raw, path=path, reader=reader, medium=medium, mask_nonfinite=mask_nonfinite
+        raw, path=path, reader=reader, medium=medium, mask_nonfinite=opts.mask_nonfinite
     )
