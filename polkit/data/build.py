@@ -5,8 +5,9 @@ from __future__ import annotations
 import numpy as np
 import xarray as xr
 
+from polkit.data.checks import check_signal_shape, fail
 from polkit.data.schema import COORD_ATTRS, POINT_DIM, POWER_DIM, SERIES_VARIABLES
-from polkit.data.validate import check_signal_shape, fail, validate_map, validate_series
+from polkit.data.validate import validate_map, validate_series
 
 __all__ = ["make_map", "make_series"]
 
