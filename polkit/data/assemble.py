@@ -74,8 +74,8 @@ _SPECTRAL_FIX = (
 )
 
 
-def _warn(message: str, path, field) -> None:
-    warnings.warn(f"{path}: field '{field}': {message}", DataWarning, stacklevel=4)
+def _warn(message: str, path, field, *, stacklevel: int = 4) -> None:
+    warnings.warn(f"{path}: field '{field}': {message}", DataWarning, stacklevel=stacklevel)
 
 
 # ----------------------------------------------------------------------------- helpers
