@@ -39,6 +39,8 @@ from __future__ import annotations
 import logging
 import re
 import warnings
+from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 import xarray as xr
@@ -304,6 +306,19 @@ def _resolve_roles(raw, dims, *, allowed: list[set[str]], energy_units, angle_un
     return roles, units
 
 
+@dataclass
+class _Grid:
+    """A signal being converted axis by axis, with what the conversion found and did."""
+
+    signal: np.ndarray
+    sig_units: Any
+    coords: dict = field(default_factory=dict)
+    #: canonical axis name -> axis of the signal
+    target: dict = field(default_factory=dict)
+    extra_attrs: dict = field(default_factory=dict)
+    history: list = field(default_factory=list)
+
+
 def _convert_grid(
     raw, sig_name, *, allowed, path, kind, medium, energy_units, angle_units, fourier, jacobian,
     raw_step=None,
@@ -328,81 +343,99 @@ def _convert_grid(
     if raw_step is not None:
         spectral = [i for i, d in enumerate(dims) if roles[d] == "spectral"][0]
         signal = raw_step(signal, var, spectral)
-    sig_units = var.attrs.get("units")
-    history = []
-    extra_attrs = {}
-    coords = {}
-    target = {}
+    grid = _Grid(signal, var.attrs.get("units"))
     for axis, d in enumerate(dims):
         values = _coord_values(raw, d, path=path)
         role, u = roles[d], units[d]
         if role == "spectral":
-            q = U.energy_axis_quantity(u)
-            if q is None:
-                raise DataError(
-                    f"expected units of a spectral axis; found {u!r}. Fix: {_SPECTRAL_FIX}",
-                    path=path,
-                    field=d,
-                )
-            quantity, factor = q
-            energy = U.axis_to_ev(values, quantity, factor, medium=medium, path=path, field=d)
-            step = f"{d} [{u}] -> energy [eV]"
-            if quantity == "wavelength":
-                extra_attrs["wavelength_medium"] = medium
-                step += f" ({medium} wavelengths)"
-                if kind in DENSITY_KINDS and jacobian:
-                    jac = U.wavelength_jacobian(energy, factor, medium=medium)
-                    shape = [1] * signal.ndim
-                    shape[axis] = -1
-                    signal = signal * jac.reshape(shape)
-                    if isinstance(sig_units, str) and sig_units.strip():
-                        extra_attrs["raw_units"] = sig_units.strip()
-                        sig_units = _density_units(sig_units.strip(), u)
-                    extra_attrs["jacobian"] = (
-                        f"signal multiplied by |d lambda/d E| in {u}/eV "
-                        "(lambda^2/hc in vacuum) to keep its integral; the factor per pixel is "
-                        "the coordinate 'jacobian'; gain, read_noise and saturation stay in raw "
-                        "counts"
-                    )
-                    step += ", density scaled by |d lambda/d E|"
-                    extra_attrs["_jacobian_values"] = np.asarray(jac, dtype=float)
-                    extra_attrs["_jacobian_units"] = f"{u}/eV"
-            if quantity != "energy" or factor != 1.0:
-                history.append(step)
-            coords["energy"] = energy
-            target["energy"] = axis
+            _spectral_axis(grid, axis, d, values, u, kind=kind, medium=medium, jacobian=jacobian,
+                           path=path)
         elif role == "angle" and u in U.PIXEL_UNITS:
-            image = np.moveaxis(signal, axis, 0).reshape(signal.shape[axis], -1)
             merged_attrs = {**raw.attrs, **var.attrs}
-            angle, keep, calibration = calibrate_pixel_axis(
-                values, image, fourier=fourier, attrs=merged_attrs, path=path, image_axis=0
-            )
-            signal = np.compress(keep, signal, axis=axis)
-            extra_attrs.update(calibration)
-            history.append(
-                f"{d} [pixel] -> angle [degree] by sin(theta) = NA (p - p0)/r_NA with NA "
-                f"{calibration['na']:g}, p0 {calibration['k0_pixel']:.3f} px, r_NA "
-                f"{calibration['pupil_radius_px']:.3f} px ({calibration['fourier_calibration']})"
-            )
-            coords["angle"] = angle
-            target["angle"] = axis
+            _pixel_axis(grid, axis, d, values, fourier=fourier, attrs=merged_attrs, path=path)
         elif role == "angle":
-            coords["angle"] = U.angle_to_degree(values, u, path=path, field=d)
-            target["angle"] = axis
+            grid.coords["angle"] = U.angle_to_degree(values, u, path=path, field=d)
+            grid.target["angle"] = axis
             if u not in ("degree",):
-                history.append(f"{d} [{u}] -> angle [degree]")
+                grid.history.append(f"{d} [{u}] -> angle [degree]")
         elif role == "k":
-            coords["k"] = U.wavevector_to_inv_um(values, u, path=path, field=d)
-            target["k"] = axis
+            grid.coords["k"] = U.wavevector_to_inv_um(values, u, path=path, field=d)
+            grid.target["k"] = axis
             if u != "1/um":
-                history.append(f"{d} [{u}] -> k [1/um]")
+                grid.history.append(f"{d} [{u}] -> k [1/um]")
         elif role == "power":
-            coords["power"] = U.power_to_mw(values, u, path=path, field=d)
-            target["power"] = axis
+            grid.coords["power"] = U.power_to_mw(values, u, path=path, field=d)
+            grid.target["power"] = axis
             if u != "mW":
-                history.append(f"{d} [{u}] -> power [mW]")
-    order = [n for n in ("power", "angle", "k", "energy") if n in target]
-    signal = np.transpose(signal, [target[n] for n in order])
+                grid.history.append(f"{d} [{u}] -> power [mW]")
+    order = _canonical_order(grid)
+    return grid.signal, order, grid.coords, grid.sig_units, grid.extra_attrs, grid.history
+
+
+def _spectral_axis(grid: _Grid, axis: int, d: str, values, u: str, *, kind, medium, jacobian,
+                   path) -> None:
+    """Convert the spectral axis to energy [eV]; scale a density on a wavelength axis."""
+    q = U.energy_axis_quantity(u)
+    if q is None:
+        raise DataError(
+            f"expected units of a spectral axis; found {u!r}. Fix: {_SPECTRAL_FIX}",
+            path=path,
+            field=d,
+        )
+    quantity, factor = q
+    energy = U.axis_to_ev(values, quantity, factor, medium=medium, path=path, field=d)
+    step = f"{d} [{u}] -> energy [eV]"
+    extra_attrs = grid.extra_attrs
+    if quantity == "wavelength":
+        extra_attrs["wavelength_medium"] = medium
+        step += f" ({medium} wavelengths)"
+        if kind in DENSITY_KINDS and jacobian:
+            jac = U.wavelength_jacobian(energy, factor, medium=medium)
+            shape = [1] * grid.signal.ndim
+            shape[axis] = -1
+            grid.signal = grid.signal * jac.reshape(shape)
+            sig_units = grid.sig_units
+            if isinstance(sig_units, str) and sig_units.strip():
+                extra_attrs["raw_units"] = sig_units.strip()
+                grid.sig_units = _density_units(sig_units.strip(), u)
+            extra_attrs["jacobian"] = (
+                f"signal multiplied by |d lambda/d E| in {u}/eV "
+                "(lambda^2/hc in vacuum) to keep its integral; the factor per pixel is "
+                "the coordinate 'jacobian'; gain, read_noise and saturation stay in raw "
+                "counts"
+            )
+            step += ", density scaled by |d lambda/d E|"
+            extra_attrs["_jacobian_values"] = np.asarray(jac, dtype=float)
+            extra_attrs["_jacobian_units"] = f"{u}/eV"
+    if quantity != "energy" or factor != 1.0:
+        grid.history.append(step)
+    grid.coords["energy"] = energy
+    grid.target["energy"] = axis
+
+
+def _pixel_axis(grid: _Grid, axis: int, d: str, values, *, fourier, attrs, path) -> None:
+    """Calibrate a Fourier-plane pixel axis to emission angle [degree]."""
+    signal = grid.signal
+    image = np.moveaxis(signal, axis, 0).reshape(signal.shape[axis], -1)
+    angle, keep, calibration = calibrate_pixel_axis(
+        values, image, fourier=fourier, attrs=attrs, path=path, image_axis=0
+    )
+    grid.signal = np.compress(keep, signal, axis=axis)
+    grid.extra_attrs.update(calibration)
+    grid.history.append(
+        f"{d} [pixel] -> angle [degree] by sin(theta) = NA (p - p0)/r_NA with NA "
+        f"{calibration['na']:g}, p0 {calibration['k0_pixel']:.3f} px, r_NA "
+        f"{calibration['pupil_radius_px']:.3f} px ({calibration['fourier_calibration']})"
+    )
+    grid.coords["angle"] = angle
+    grid.target["angle"] = axis
+
+
+def _canonical_order(grid: _Grid) -> list[str]:
+    """Put the signal's axes in canonical order, each ascending; return the axis names."""
+    order = [n for n in ("power", "angle", "k", "energy") if n in grid.target]
+    signal = np.transpose(grid.signal, [grid.target[n] for n in order])
+    coords, extra_attrs = grid.coords, grid.extra_attrs
     for axis, name in enumerate(order):
         c = coords[name]
         if c.size > 1 and np.all(np.diff(c) < 0):
@@ -410,7 +443,8 @@ def _convert_grid(
             signal = np.flip(signal, axis=axis)
             if name == "energy" and "_jacobian_values" in extra_attrs:
                 extra_attrs["_jacobian_values"] = extra_attrs["_jacobian_values"][::-1]
-    return signal, order, coords, sig_units, extra_attrs, history
+    grid.signal = signal
+    return order
 
 
 def _apply_signal_units(raw, sig_name, signal_units, *, path) -> None:
