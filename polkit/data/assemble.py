@@ -319,15 +319,16 @@ class _Grid:
     history: list = field(default_factory=list)
 
 
-def _convert_grid(
-    raw, sig_name, *, allowed, path, kind, medium, energy_units, angle_units, fourier, jacobian,
-    raw_step=None,
-):
+def _convert_grid(raw, sig_name, options: LoadOptions, *, allowed, path, kind, medium,
+                  raw_step=None):
     """Convert a signal on (spectral, angle/k/pixel[, power]) axes; return pieces in order.
 
-    ``raw_step(signal, var, spectral_axis)`` (optional) works on the raw values in the
-    file's own axes before any conversion and returns the values to convert.
+    ``options`` gives the axis units, the Fourier calibration and whether to apply the
+    wavelength Jacobian.  ``raw_step(signal, var, spectral_axis)`` (optional) works on the
+    raw values in the file's own axes before any conversion and returns the values to convert.
     """
+    energy_units, angle_units = options.energy_units, options.angle_units
+    fourier, jacobian = options.fourier, options.wavelength_jacobian
     var = raw[sig_name]
     for d in var.dims:
         if (
@@ -474,6 +475,23 @@ def _mask(
     return values, n_bad
 
 
+def _loaded_attrs(attrs: dict, extra: dict, fixed: dict, history: list, record: dict, *,
+                  masked: bool, path, reader) -> tuple[dict, dict]:
+    """The attributes of a loaded map or cube, and its ``jacobian`` coordinate (if any).
+
+    ``masked`` says that loading masked values; otherwise the file's flag stays (default 0).
+    """
+    attrs.update(extra)
+    jac_coord = jacobian_coord(attrs)
+    attrs.update(fixed)
+    attrs["masked"] = 1 if masked else int(attrs.get("masked", 0))
+    history += record_lines(attrs, record)
+    attrs = append_history(
+        attrs, f"loaded {path} ({reader} reader): " + "; ".join(history or ["no conversion"])
+    )
+    return attrs, jac_coord
+
+
 # ----------------------------------------------------------------------------- maps
 def raw_to_map(
     raw: xr.Dataset, options: LoadOptions | None = None, *, path, reader: str, **changes
@@ -500,14 +518,11 @@ def raw_to_map(
     signal, order, coords, sig_units, extra, history = _convert_grid(
         raw,
         sig_name,
+        opts,
         allowed=[{"spectral", "angle"}, {"spectral", "k"}],
         path=path,
         kind=kind_,
         medium=medium,
-        energy_units=opts.energy_units,
-        angle_units=opts.angle_units,
-        fourier=opts.fourier,
-        jacobian=opts.wavelength_jacobian,
         raw_step=camera_step(raw.attrs, dark=opts.dark, mask_saturated=opts.mask_saturated,
                               path=path, record=record),
     )
@@ -515,16 +530,9 @@ def raw_to_map(
     n_sat = int(record.get("saturated", {}).get("pixels", 0))
     mask_nonfinite = opts.mask_nonfinite
     signal, n_bad = _mask(signal, mask_nonfinite, path=path, field=sig_name, n_masked=n_sat)
-    attrs.update(extra)
-    jac_coord = jacobian_coord(attrs)
-    attrs.update({"units": sig_units, "kind": kind_, "source": str(path)})
-    if (n_bad and mask_nonfinite) or n_sat:
-        attrs["masked"] = 1
-    attrs.setdefault("masked", 0)
-    history += record_lines(attrs, record)
-    attrs = append_history(
-        attrs, f"loaded {path} ({reader} reader): " + "; ".join(history or ["no conversion"])
-    )
+    attrs, jac_coord = _loaded_attrs(
+        attrs, extra, {"units": sig_units, "kind": kind_, "source": str(path)}, history, record,
+        masked=bool((n_bad and mask_nonfinite) or n_sat), path=path, reader=reader)
     adim = order[0]
     da = xr.DataArray(
         signal,
@@ -543,23 +551,18 @@ def cube_to_series(raw, options: LoadOptions, *, path, reader, medium) -> xr.Dat
 
     ``medium`` is the wavelength medium already chosen from ``options`` and the file.
     """
-    variable, signal_units, mask_nonfinite = (
-        options.variable, options.signal_units, options.mask_nonfinite)
-    sig_name = find_signal(raw, variable=variable, path=path)
-    _apply_signal_units(raw, sig_name, signal_units, path=path)
+    sig_name = find_signal(raw, variable=options.variable, path=path)
+    _apply_signal_units(raw, sig_name, options.signal_units, path=path)
     kind_ = _choose_kind(None, {**raw.attrs, **raw[sig_name].attrs}, sig_name, path=path)
     record: dict = {}
     signal, order, coords, sig_units, extra, history = _convert_grid(
         raw,
         sig_name,
+        options,
         allowed=[{"power", "spectral"}, {"power", "spectral", "angle"}, {"power", "spectral", "k"}],
         path=path,
         kind=kind_,
         medium=medium,
-        energy_units=options.energy_units,
-        angle_units=options.angle_units,
-        fourier=options.fourier,
-        jacobian=options.wavelength_jacobian,
         raw_step=camera_step(raw.attrs, dark=None, mask_saturated=False, path=path,
                               record=record),
     )
@@ -570,15 +573,10 @@ def cube_to_series(raw, options: LoadOptions, *, path, reader, medium) -> xr.Dat
             field=sig_name,
         )
     attrs = _carried(raw.attrs, raw[sig_name].attrs, path=path)
-    signal, n_bad = _mask(signal, mask_nonfinite, path=path, field=sig_name)
-    attrs.update(extra)
-    jac_coord = jacobian_coord(attrs)
-    attrs.update({"kind": kind_, "source": str(path)})
-    attrs["masked"] = 1 if (n_bad and mask_nonfinite) else int(attrs.get("masked", 0))
-    history += record_lines(attrs, record)
-    attrs = append_history(
-        attrs, f"loaded {path} ({reader} reader): " + "; ".join(history or ["no conversion"])
-    )
+    signal, n_bad = _mask(signal, options.mask_nonfinite, path=path, field=sig_name)
+    attrs, jac_coord = _loaded_attrs(
+        attrs, extra, {"kind": kind_, "source": str(path)}, history, record,
+        masked=bool(n_bad and options.mask_nonfinite), path=path, reader=reader)
     ds = xr.Dataset(
         {"intensity": (tuple(order), signal, {"units": sig_units.strip()})},
         coords={**{n: (n, coords[n], dict(COORD_ATTRS[n])) for n in order}, **jac_coord},

@@ -311,8 +311,11 @@ def check_masked_flag(attrs: dict, *, path) -> int:
     return masked
 
 
-def check_type(obj, cls: type, expected: str, *, maker: str, path, field: str) -> None:
-    """Refuse ``obj`` unless it is a ``cls`` (a map or a series built by ``maker``)."""
+def check_type(obj, cls: type, expected: str, *, maker: str, path, field: str):
+    """Refuse ``obj`` unless it is a ``cls`` (a map or a series built by ``maker``).
+
+    Returns a copy of its attributes and the path for messages (default: its ``source``).
+    """
     if not isinstance(obj, cls):
         fail(
             expected,
@@ -321,3 +324,5 @@ def check_type(obj, cls: type, expected: str, *, maker: str, path, field: str) -
             path=path,
             field=field,
         )
+    attrs = dict(obj.attrs)
+    return attrs, attrs.get("source") if path is None else path

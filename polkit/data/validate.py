@@ -78,11 +78,8 @@ def validate_map(da: xr.DataArray, *, path=None) -> xr.DataArray:
     DataError
         On any violation of the schema, naming the field.
     """
-    check_type(da, xr.DataArray, "an xarray.DataArray map", maker="make_map", path=path,
-               field="map")
-    attrs = dict(da.attrs)
-    if path is None:
-        path = attrs.get("source")
+    attrs, path = check_type(da, xr.DataArray, "an xarray.DataArray map", maker="make_map",
+                             path=path, field="map")
     adim, coords = _map_axes(da, path=path)
     energy = coords[ENERGY_DIM]
     attrs = _map_attrs(attrs, path=path)
@@ -253,13 +250,10 @@ def validate_series(ds: xr.Dataset, *, path=None) -> xr.Dataset:
     Raises
     ------
     DataError
-        On any violation of the schema, naming the field.
+        As :func:`validate_map` does.
     """
-    check_type(ds, xr.Dataset, "an xarray.Dataset series", maker="make_series", path=path,
-               field="series")
-    attrs = dict(ds.attrs)
-    if path is None:
-        path = attrs.get("source")
+    attrs, path = check_type(ds, xr.Dataset, "an xarray.Dataset series", maker="make_series",
+                             path=path, field="series")
     cube, dim = _series_layout(ds, path=path)
     _check_powers(ds, dim, path=path)
     attrs["masked"] = int(check_masked_flag(attrs, path=path))
