@@ -36,7 +36,7 @@ from polkit.data.fourier import (
     to_k,
     wavevector,
 )
-from polkit.data.inspect import inspect_file
+from polkit.data.inspect import describe_file
 from polkit.data.options import MAP_FIELDS, SERIES_FIELDS, LoadOptions, loader_options
 from polkit.data.preprocess import (
     SymmetryReport,
@@ -69,7 +69,7 @@ __all__ = [
     "validate_series",
     "make_map",
     "make_series",
-    "inspect_file",
+    "describe_file",
     "CameraOptions",
     "ExcludeWindow",
     "parse_exclude",
