@@ -36,8 +36,8 @@ from polkit.data.fourier import (
     to_k,
     wavevector,
 )
-from polkit.data.inspect import inspect_file
-from polkit.data.options import LoadOptions
+from polkit.data.inspect import describe_file
+from polkit.data.options import MAP_FIELDS, SERIES_FIELDS, LoadOptions, loader_options
 from polkit.data.preprocess import (
     SymmetryReport,
     bin_map,
@@ -69,7 +69,7 @@ __all__ = [
     "validate_series",
     "make_map",
     "make_series",
-    "inspect_file",
+    "describe_file",
     "CameraOptions",
     "ExcludeWindow",
     "parse_exclude",
@@ -101,71 +101,33 @@ __all__ = [
 ]
 
 
-def load_map(
-    path,
-    *,
-    reader: str | None = None,
-    kind: str | None = None,
-    wavelength_medium: str | None = None,
-    energy_units: str | None = None,
-    angle_units: str | None = None,
-    fourier: dict | None = None,
-    mask_nonfinite: bool = False,
-    signal_units: str | None = None,
-    variable: str | None = None,
-    wavelength_jacobian: bool = True,
-    dark=None,
-    mask_saturated: bool = False,
-    **reader_options,
-) -> xr.DataArray:
+def load_map(path, options: LoadOptions | None = None, **changes) -> xr.DataArray:
     """Load an angle-resolved map into the canonical form.
 
     Parameters
     ----------
     path
         netCDF/HDF5, ``.npz`` or a text matrix (see the reader modules).
-    reader
-        ``"netcdf"``, ``"npz"``, ``"matrix"`` or ``"csv"``; default: from the content.
-    kind
-        ``"emission"``, ``"reflectance"`` or ``"transmission"``; default: the file's
-        ``kind`` attribute, else the signal's name, else emission.
-    wavelength_medium
-        ``"vacuum"`` or ``"air"``: what a wavelength axis refers to.  Default: the
-        file's ``wavelength_medium`` attribute, else vacuum.  Recorded in attrs.
-    energy_units, angle_units
-        Units of the spectral and angle axes when the file gives none.
-    fourier
-        Fourier-plane calibration for an axis in pixels: ``{"na": 0.55, "k0_pixel":
-        255.0, "pupil_radius_px": 240.0}`` (the last two found from the image when
-        missing); default: file attributes of the same names.
-    mask_nonfinite
-        Mask NaN/Inf signal values as NaN (``attrs["masked"] = 1``) instead of
-        refusing them.
-    signal_units
-        Units of the signal when the file gives none.
-    variable
-        Name of the signal variable when the file holds several.
-    wavelength_jacobian
-        Scale emission densities on a wavelength axis by |d lambda / d E| (default);
-        ``False`` keeps the file's values.  The factor per pixel is kept as the
-        coordinate ``jacobian``; ``gain``, ``read_noise`` and ``saturation`` stay in raw
-        counts (see :func:`polkit.data.camera.detector_variance_terms`).
-    dark
-        Camera offset subtracted from the raw counts before any conversion: a number
-        (counts) or a dark-frame file on the same raw axes.  Default: the file's
-        ``camera_offset`` (or ``dark``) attribute, if any.
-    mask_saturated
-        Mask clipped pixels found on the raw counts (declared ``saturation``, converter
-        full scale, flat tops; :func:`polkit.data.camera.find_saturated_raw`).
-    **reader_options
-        Options of the chosen reader (matrix: ``rows``, ``columns``; csv:
-        ``delimiter``).
+    options
+        A :class:`LoadOptions` (or a dict of its fields); default: all defaults.  Its
+        fields ``reader``, ``kind``, ``wavelength_medium``, ``energy_units``,
+        ``angle_units``, ``signal_units``, ``variable``, ``fourier``, ``mask_nonfinite``,
+        ``wavelength_jacobian``, ``dark``, ``mask_saturated`` and ``reader_options`` are
+        used (see :class:`LoadOptions` for what each means); a job's windows and camera
+        are not the loader's business and are left alone.
+    **changes
+        Field values that replace those of ``options`` (``kind="reflectance"``,
+        ``dark=12.0`` ...); any other name is an option of the chosen reader (matrix:
+        ``rows``, ``columns``; csv: ``delimiter``).
 
     Returns
     -------
     xarray.DataArray
         A validated canonical map; the camera steps are counted in
-        ``attrs["preprocessing"]`` (JSON text).
+        ``attrs["preprocessing"]`` (JSON text).  Emission on a wavelength axis is scaled by
+        |d lambda / d E| unless ``wavelength_jacobian=False``; the factor per pixel is kept
+        as the coordinate ``jacobian``, while ``gain``, ``read_noise`` and ``saturation``
+        stay in raw counts (see :func:`polkit.data.camera.detector_variance_terms`).
 
     Raises
     ------
@@ -174,39 +136,12 @@ def load_map(
     ConfigError
         For unknown reader options or a bad Fourier calibration.
     """
-    raw, name = read_raw(path, reader, **reader_options)
-    return raw_to_map(
-        raw,
-        path=path,
-        reader=name,
-        kind=kind,
-        wavelength_medium=wavelength_medium,
-        energy_units=energy_units,
-        angle_units=angle_units,
-        fourier=fourier,
-        mask_nonfinite=mask_nonfinite,
-        wavelength_jacobian=wavelength_jacobian,
-        variable=variable,
-        signal_units=signal_units,
-        dark=dark,
-        mask_saturated=mask_saturated,
-    )
+    opts = loader_options(options, changes, MAP_FIELDS)
+    raw, name = read_raw(path, opts.reader, **opts.reader_options)
+    return raw_to_map(raw, opts, path=path, reader=name)
 
 
-def load_series(
-    path,
-    *,
-    reader: str | None = None,
-    wavelength_medium: str | None = None,
-    energy_units: str | None = None,
-    angle_units: str | None = None,
-    fourier: dict | None = None,
-    mask_nonfinite: bool = False,
-    signal_units: str | None = None,
-    variable: str | None = None,
-    wavelength_jacobian: bool = True,
-    **reader_options,
-) -> xr.Dataset:
+def load_series(path, options: LoadOptions | None = None, **changes) -> xr.Dataset:
     """Load a pump-power series (a table of per-power results, or a spectra cube).
 
     Parameters
@@ -215,10 +150,10 @@ def load_series(
         A CSV table (``power [mW]``, ``intensity [counts]``, optional
         ``peak_energy [eV]`` or ``wavelength [nm]``, ``linewidth [meV]``, ``*_error``,
         ``sweep``), or a netCDF/HDF5/``.npz`` file holding such columns or a cube.
-    reader, wavelength_medium, energy_units, angle_units, fourier, mask_nonfinite,
-    signal_units, variable, wavelength_jacobian, **reader_options
-        As for :func:`load_map` (cubes use the axis options; tables use the medium
-        for a peak-wavelength column).
+    options, **changes
+        As for :func:`load_map`, without ``kind``, ``dark`` and ``mask_saturated`` (as
+        keywords these are reader options, which the readers refuse); cubes use the
+        axis options, tables use the medium for a peak-wavelength column.
 
     Returns
     -------
@@ -231,17 +166,6 @@ def load_series(
     DataError
         For anything wrong with the file, naming the file and the field.
     """
-    raw, name = read_raw(path, reader, **reader_options)
-    return raw_to_series(
-        raw,
-        path=path,
-        reader=name,
-        wavelength_medium=wavelength_medium,
-        energy_units=energy_units,
-        angle_units=angle_units,
-        fourier=fourier,
-        mask_nonfinite=mask_nonfinite,
-        wavelength_jacobian=wavelength_jacobian,
-        variable=variable,
-        signal_units=signal_units,
-    )
+    opts = loader_options(options, changes, SERIES_FIELDS)
+    raw, name = read_raw(path, opts.reader, **opts.reader_options)
+    return raw_to_series(raw, opts, path=path, reader=name)

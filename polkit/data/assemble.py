@@ -39,6 +39,8 @@ from __future__ import annotations
 import logging
 import re
 import warnings
+from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 import xarray as xr
@@ -46,6 +48,7 @@ import xarray as xr
 from polkit import units as U
 from polkit.data.camera_raw import camera_step, jacobian_coord, record_lines
 from polkit.data.fourier import calibrate_pixel_axis
+from polkit.data.options import LoadOptions
 from polkit.data.roles import SIGNAL_NAMES, axis_role
 from polkit.data.schema import (
     CARRIED_ATTRS,
@@ -73,8 +76,8 @@ _SPECTRAL_FIX = (
 )
 
 
-def _warn(message: str, path, field) -> None:
-    warnings.warn(f"{path}: field '{field}': {message}", DataWarning, stacklevel=4)
+def _warn(message: str, path, field, *, stacklevel: int = 4) -> None:
+    warnings.warn(f"{path}: field '{field}': {message}", DataWarning, stacklevel=stacklevel)
 
 
 # ----------------------------------------------------------------------------- helpers
@@ -303,15 +306,29 @@ def _resolve_roles(raw, dims, *, allowed: list[set[str]], energy_units, angle_un
     return roles, units
 
 
-def _convert_grid(
-    raw, sig_name, *, allowed, path, kind, medium, energy_units, angle_units, fourier, jacobian,
-    raw_step=None,
-):
+@dataclass
+class _Grid:
+    """A signal being converted axis by axis, with what the conversion found and did."""
+
+    signal: np.ndarray
+    sig_units: Any
+    coords: dict = field(default_factory=dict)
+    #: canonical axis name -> axis of the signal
+    target: dict = field(default_factory=dict)
+    extra_attrs: dict = field(default_factory=dict)
+    history: list = field(default_factory=list)
+
+
+def _convert_grid(raw, sig_name, options: LoadOptions, *, allowed, path, kind, medium,
+                  raw_step=None):
     """Convert a signal on (spectral, angle/k/pixel[, power]) axes; return pieces in order.
 
-    ``raw_step(signal, var, spectral_axis)`` (optional) works on the raw values in the
-    file's own axes before any conversion and returns the values to convert.
+    ``options`` gives the axis units, the Fourier calibration and whether to apply the
+    wavelength Jacobian.  ``raw_step(signal, var, spectral_axis)`` (optional) works on the
+    raw values in the file's own axes before any conversion and returns the values to convert.
     """
+    energy_units, angle_units = options.energy_units, options.angle_units
+    fourier, jacobian = options.fourier, options.wavelength_jacobian
     var = raw[sig_name]
     for d in var.dims:
         if (
@@ -327,81 +344,99 @@ def _convert_grid(
     if raw_step is not None:
         spectral = [i for i, d in enumerate(dims) if roles[d] == "spectral"][0]
         signal = raw_step(signal, var, spectral)
-    sig_units = var.attrs.get("units")
-    history = []
-    extra_attrs = {}
-    coords = {}
-    target = {}
+    grid = _Grid(signal, var.attrs.get("units"))
     for axis, d in enumerate(dims):
         values = _coord_values(raw, d, path=path)
         role, u = roles[d], units[d]
         if role == "spectral":
-            q = U.energy_axis_quantity(u)
-            if q is None:
-                raise DataError(
-                    f"expected units of a spectral axis; found {u!r}. Fix: {_SPECTRAL_FIX}",
-                    path=path,
-                    field=d,
-                )
-            quantity, factor = q
-            energy = U.axis_to_ev(values, quantity, factor, medium=medium, path=path, field=d)
-            step = f"{d} [{u}] -> energy [eV]"
-            if quantity == "wavelength":
-                extra_attrs["wavelength_medium"] = medium
-                step += f" ({medium} wavelengths)"
-                if kind in DENSITY_KINDS and jacobian:
-                    jac = U.wavelength_jacobian(energy, factor, medium=medium)
-                    shape = [1] * signal.ndim
-                    shape[axis] = -1
-                    signal = signal * jac.reshape(shape)
-                    if isinstance(sig_units, str) and sig_units.strip():
-                        extra_attrs["raw_units"] = sig_units.strip()
-                        sig_units = _density_units(sig_units.strip(), u)
-                    extra_attrs["jacobian"] = (
-                        f"signal multiplied by |d lambda/d E| in {u}/eV "
-                        "(lambda^2/hc in vacuum) to keep its integral; the factor per pixel is "
-                        "the coordinate 'jacobian'; gain, read_noise and saturation stay in raw "
-                        "counts"
-                    )
-                    step += ", density scaled by |d lambda/d E|"
-                    extra_attrs["_jacobian_values"] = np.asarray(jac, dtype=float)
-                    extra_attrs["_jacobian_units"] = f"{u}/eV"
-            if quantity != "energy" or factor != 1.0:
-                history.append(step)
-            coords["energy"] = energy
-            target["energy"] = axis
+            _spectral_axis(grid, axis, d, values, u, kind=kind, medium=medium, jacobian=jacobian,
+                           path=path)
         elif role == "angle" and u in U.PIXEL_UNITS:
-            image = np.moveaxis(signal, axis, 0).reshape(signal.shape[axis], -1)
             merged_attrs = {**raw.attrs, **var.attrs}
-            angle, keep, calibration = calibrate_pixel_axis(
-                values, image, fourier=fourier, attrs=merged_attrs, path=path, image_axis=0
-            )
-            signal = np.compress(keep, signal, axis=axis)
-            extra_attrs.update(calibration)
-            history.append(
-                f"{d} [pixel] -> angle [degree] by sin(theta) = NA (p - p0)/r_NA with NA "
-                f"{calibration['na']:g}, p0 {calibration['k0_pixel']:.3f} px, r_NA "
-                f"{calibration['pupil_radius_px']:.3f} px ({calibration['fourier_calibration']})"
-            )
-            coords["angle"] = angle
-            target["angle"] = axis
+            _pixel_axis(grid, axis, d, values, fourier=fourier, attrs=merged_attrs, path=path)
         elif role == "angle":
-            coords["angle"] = U.angle_to_degree(values, u, path=path, field=d)
-            target["angle"] = axis
+            grid.coords["angle"] = U.angle_to_degree(values, u, path=path, field=d)
+            grid.target["angle"] = axis
             if u not in ("degree",):
-                history.append(f"{d} [{u}] -> angle [degree]")
+                grid.history.append(f"{d} [{u}] -> angle [degree]")
         elif role == "k":
-            coords["k"] = U.wavevector_to_inv_um(values, u, path=path, field=d)
-            target["k"] = axis
+            grid.coords["k"] = U.wavevector_to_inv_um(values, u, path=path, field=d)
+            grid.target["k"] = axis
             if u != "1/um":
-                history.append(f"{d} [{u}] -> k [1/um]")
+                grid.history.append(f"{d} [{u}] -> k [1/um]")
         elif role == "power":
-            coords["power"] = U.power_to_mw(values, u, path=path, field=d)
-            target["power"] = axis
+            grid.coords["power"] = U.power_to_mw(values, u, path=path, field=d)
+            grid.target["power"] = axis
             if u != "mW":
-                history.append(f"{d} [{u}] -> power [mW]")
-    order = [n for n in ("power", "angle", "k", "energy") if n in target]
-    signal = np.transpose(signal, [target[n] for n in order])
+                grid.history.append(f"{d} [{u}] -> power [mW]")
+    order = _canonical_order(grid)
+    return grid.signal, order, grid.coords, grid.sig_units, grid.extra_attrs, grid.history
+
+
+def _spectral_axis(grid: _Grid, axis: int, d: str, values, u: str, *, kind, medium, jacobian,
+                   path) -> None:
+    """Convert the spectral axis to energy [eV]; scale a density on a wavelength axis."""
+    q = U.energy_axis_quantity(u)
+    if q is None:
+        raise DataError(
+            f"expected units of a spectral axis; found {u!r}. Fix: {_SPECTRAL_FIX}",
+            path=path,
+            field=d,
+        )
+    quantity, factor = q
+    energy = U.axis_to_ev(values, quantity, factor, medium=medium, path=path, field=d)
+    step = f"{d} [{u}] -> energy [eV]"
+    extra_attrs = grid.extra_attrs
+    if quantity == "wavelength":
+        extra_attrs["wavelength_medium"] = medium
+        step += f" ({medium} wavelengths)"
+        if kind in DENSITY_KINDS and jacobian:
+            jac = U.wavelength_jacobian(energy, factor, medium=medium)
+            shape = [1] * grid.signal.ndim
+            shape[axis] = -1
+            grid.signal = grid.signal * jac.reshape(shape)
+            sig_units = grid.sig_units
+            if isinstance(sig_units, str) and sig_units.strip():
+                extra_attrs["raw_units"] = sig_units.strip()
+                grid.sig_units = _density_units(sig_units.strip(), u)
+            extra_attrs["jacobian"] = (
+                f"signal multiplied by |d lambda/d E| in {u}/eV "
+                "(lambda^2/hc in vacuum) to keep its integral; the factor per pixel is "
+                "the coordinate 'jacobian'; gain, read_noise and saturation stay in raw "
+                "counts"
+            )
+            step += ", density scaled by |d lambda/d E|"
+            extra_attrs["_jacobian_values"] = np.asarray(jac, dtype=float)
+            extra_attrs["_jacobian_units"] = f"{u}/eV"
+    if quantity != "energy" or factor != 1.0:
+        grid.history.append(step)
+    grid.coords["energy"] = energy
+    grid.target["energy"] = axis
+
+
+def _pixel_axis(grid: _Grid, axis: int, d: str, values, *, fourier, attrs, path) -> None:
+    """Calibrate a Fourier-plane pixel axis to emission angle [degree]."""
+    signal = grid.signal
+    image = np.moveaxis(signal, axis, 0).reshape(signal.shape[axis], -1)
+    angle, keep, calibration = calibrate_pixel_axis(
+        values, image, fourier=fourier, attrs=attrs, path=path, image_axis=0
+    )
+    grid.signal = np.compress(keep, signal, axis=axis)
+    grid.extra_attrs.update(calibration)
+    grid.history.append(
+        f"{d} [pixel] -> angle [degree] by sin(theta) = NA (p - p0)/r_NA with NA "
+        f"{calibration['na']:g}, p0 {calibration['k0_pixel']:.3f} px, r_NA "
+        f"{calibration['pupil_radius_px']:.3f} px ({calibration['fourier_calibration']})"
+    )
+    grid.coords["angle"] = angle
+    grid.target["angle"] = axis
+
+
+def _canonical_order(grid: _Grid) -> list[str]:
+    """Put the signal's axes in canonical order, each ascending; return the axis names."""
+    order = [n for n in ("power", "angle", "k", "energy") if n in grid.target]
+    signal = np.transpose(grid.signal, [grid.target[n] for n in order])
+    coords, extra_attrs = grid.coords, grid.extra_attrs
     for axis, name in enumerate(order):
         c = coords[name]
         if c.size > 1 and np.all(np.diff(c) < 0):
@@ -409,7 +444,8 @@ def _convert_grid(
             signal = np.flip(signal, axis=axis)
             if name == "energy" and "_jacobian_values" in extra_attrs:
                 extra_attrs["_jacobian_values"] = extra_attrs["_jacobian_values"][::-1]
-    return signal, order, coords, sig_units, extra_attrs, history
+    grid.signal = signal
+    return order
 
 
 def _apply_signal_units(raw, sig_name, signal_units, *, path) -> None:
@@ -439,25 +475,34 @@ def _mask(
     return values, n_bad
 
 
+def _loaded_attrs(attrs: dict, extra: dict, fixed: dict, history: list, record: dict, *,
+                  masked: bool, path, reader) -> tuple[dict, dict]:
+    """The attributes of a loaded map or cube, and its ``jacobian`` coordinate (if any).
+
+    ``masked`` says that loading masked values; otherwise the file's flag stays (default 0).
+    """
+    attrs.update(extra)
+    jac_coord = jacobian_coord(attrs)
+    attrs.update(fixed)
+    attrs["masked"] = 1 if masked else int(attrs.get("masked", 0))
+    history += record_lines(attrs, record)
+    attrs = append_history(
+        attrs, f"loaded {path} ({reader} reader): " + "; ".join(history or ["no conversion"])
+    )
+    return attrs, jac_coord
+
+
 # ----------------------------------------------------------------------------- maps
 def raw_to_map(
-    raw: xr.Dataset,
-    *,
-    path,
-    reader: str,
-    kind: str | None = None,
-    wavelength_medium: str | None = None,
-    energy_units: str | None = None,
-    angle_units: str | None = None,
-    fourier: dict | None = None,
-    mask_nonfinite: bool = False,
-    wavelength_jacobian: bool = True,
-    variable: str | None = None,
-    signal_units: str | None = None,
-    dark=None,
-    mask_saturated: bool = False,
+    raw: xr.Dataset, options: LoadOptions | None = None, *, path, reader: str, **changes
 ) -> xr.DataArray:
-    """Build and validate a canonical map from a raw dataset (see :func:`polkit.data.load_map`)."""
+    """Build and validate a canonical map from a raw dataset (see :func:`polkit.data.load_map`).
+
+    ``options`` is a :class:`polkit.data.LoadOptions` (or a dict of its fields), ``changes``
+    replace its fields; the reader's options and a job's windows and camera are not used.
+    """
+    opts = LoadOptions.of(options, **changes)
+    variable = opts.variable
     if raw_content(raw) == "table" and variable is None:
         raise DataError(
             "expected a 2-D signal (a map); found a table of columns "
@@ -466,37 +511,28 @@ def raw_to_map(
             field="signal",
         )
     sig_name = find_signal(raw, variable=variable, path=path)
-    _apply_signal_units(raw, sig_name, signal_units, path=path)
+    _apply_signal_units(raw, sig_name, opts.signal_units, path=path)
     record: dict = {}
-    medium = _choose_medium(wavelength_medium, raw.attrs, path=path)
-    kind_ = _choose_kind(kind, {**raw.attrs, **raw[sig_name].attrs}, sig_name, path=path)
+    medium = _choose_medium(opts.wavelength_medium, raw.attrs, path=path)
+    kind_ = _choose_kind(opts.kind, {**raw.attrs, **raw[sig_name].attrs}, sig_name, path=path)
     signal, order, coords, sig_units, extra, history = _convert_grid(
         raw,
         sig_name,
+        opts,
         allowed=[{"spectral", "angle"}, {"spectral", "k"}],
         path=path,
         kind=kind_,
         medium=medium,
-        energy_units=energy_units,
-        angle_units=angle_units,
-        fourier=fourier,
-        jacobian=wavelength_jacobian,
-        raw_step=camera_step(raw.attrs, dark=dark, mask_saturated=mask_saturated, path=path,
-                              record=record),
+        raw_step=camera_step(raw.attrs, dark=opts.dark, mask_saturated=opts.mask_saturated,
+                              path=path, record=record),
     )
     attrs = _carried(raw.attrs, raw[sig_name].attrs, path=path)
     n_sat = int(record.get("saturated", {}).get("pixels", 0))
+    mask_nonfinite = opts.mask_nonfinite
     signal, n_bad = _mask(signal, mask_nonfinite, path=path, field=sig_name, n_masked=n_sat)
-    attrs.update(extra)
-    jac_coord = jacobian_coord(attrs)
-    attrs.update({"units": sig_units, "kind": kind_, "source": str(path)})
-    if (n_bad and mask_nonfinite) or n_sat:
-        attrs["masked"] = 1
-    attrs.setdefault("masked", 0)
-    history += record_lines(attrs, record)
-    attrs = append_history(
-        attrs, f"loaded {path} ({reader} reader): " + "; ".join(history or ["no conversion"])
-    )
+    attrs, jac_coord = _loaded_attrs(
+        attrs, extra, {"units": sig_units, "kind": kind_, "source": str(path)}, history, record,
+        masked=bool((n_bad and mask_nonfinite) or n_sat), path=path, reader=reader)
     adim = order[0]
     da = xr.DataArray(
         signal,
@@ -510,35 +546,23 @@ def raw_to_map(
 
 
 # ----------------------------------------------------------------------------- cubes
-def cube_to_series(
-    raw,
-    *,
-    path,
-    reader,
-    medium,
-    energy_units,
-    angle_units,
-    fourier,
-    mask_nonfinite,
-    jacobian,
-    variable,
-    signal_units,
-) -> xr.Dataset:
-    sig_name = find_signal(raw, variable=variable, path=path)
-    _apply_signal_units(raw, sig_name, signal_units, path=path)
+def cube_to_series(raw, options: LoadOptions, *, path, reader, medium) -> xr.Dataset:
+    """Build and validate a spectra-cube series (see :func:`polkit.data.load_series`).
+
+    ``medium`` is the wavelength medium already chosen from ``options`` and the file.
+    """
+    sig_name = find_signal(raw, variable=options.variable, path=path)
+    _apply_signal_units(raw, sig_name, options.signal_units, path=path)
     kind_ = _choose_kind(None, {**raw.attrs, **raw[sig_name].attrs}, sig_name, path=path)
     record: dict = {}
     signal, order, coords, sig_units, extra, history = _convert_grid(
         raw,
         sig_name,
+        options,
         allowed=[{"power", "spectral"}, {"power", "spectral", "angle"}, {"power", "spectral", "k"}],
         path=path,
         kind=kind_,
         medium=medium,
-        energy_units=energy_units,
-        angle_units=angle_units,
-        fourier=fourier,
-        jacobian=jacobian,
         raw_step=camera_step(raw.attrs, dark=None, mask_saturated=False, path=path,
                               record=record),
     )
@@ -549,15 +573,10 @@ def cube_to_series(
             field=sig_name,
         )
     attrs = _carried(raw.attrs, raw[sig_name].attrs, path=path)
-    signal, n_bad = _mask(signal, mask_nonfinite, path=path, field=sig_name)
-    attrs.update(extra)
-    jac_coord = jacobian_coord(attrs)
-    attrs.update({"kind": kind_, "source": str(path)})
-    attrs["masked"] = 1 if (n_bad and mask_nonfinite) else int(attrs.get("masked", 0))
-    history += record_lines(attrs, record)
-    attrs = append_history(
-        attrs, f"loaded {path} ({reader} reader): " + "; ".join(history or ["no conversion"])
-    )
+    signal, n_bad = _mask(signal, options.mask_nonfinite, path=path, field=sig_name)
+    attrs, jac_coord = _loaded_attrs(
+        attrs, extra, {"kind": kind_, "source": str(path)}, history, record,
+        masked=bool(n_bad and options.mask_nonfinite), path=path, reader=reader)
     ds = xr.Dataset(
         {"intensity": (tuple(order), signal, {"units": sig_units.strip()})},
         coords={**{n: (n, coords[n], dict(COORD_ATTRS[n])) for n in order}, **jac_coord},

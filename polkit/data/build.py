@@ -5,8 +5,9 @@ from __future__ import annotations
 import numpy as np
 import xarray as xr
 
+from polkit.data.checks import check_signal_shape, fail
 from polkit.data.schema import COORD_ATTRS, POINT_DIM, POWER_DIM, SERIES_VARIABLES
-from polkit.data.validate import check_signal_shape, fail, validate_map, validate_series
+from polkit.data.validate import validate_map, validate_series
 
 __all__ = ["make_map", "make_series"]
 
@@ -147,15 +148,7 @@ def make_series(
     columns.update({k: v for k, v in optional.items() if v is not None})
     arrays = {}
     for name, values in columns.items():
-        arr = _vector(values, name)
-        if arr.size != p.size:
-            fail(
-                f"{p.size} values (one per power)",
-                f"{arr.size}",
-                "give one value per pump power",
-                field=name,
-            )
-        arrays[name] = arr
+        arrays[name] = _one_per_power(values, name, p.size, "give one value per pump power")
     labels = None
     if sweep is not None:
         labels = np.asarray([str(s) for s in _vector(sweep, "sweep")], dtype=str)
@@ -177,16 +170,22 @@ def make_series(
         u = SERIES_VARIABLES.get(name) or units
         data_vars[name] = (dim, arr[order], {"units": u})
     for name, (values, u) in (extra_variables or {}).items():
-        arr = _vector(values, name)
-        if arr.size != p.size:
-            fail(
-                f"{p.size} values (one per power)",
-                f"{arr.size}",
-                "give one value per power",
-                field=name,
-            )
+        arr = _one_per_power(values, name, p.size, "give one value per power")
         data_vars[name] = (dim, arr[order], {"units": u})
     all_attrs = {"source": "in-memory", "masked": 0}
     all_attrs.update(attrs)
     ds = xr.Dataset(data_vars, coords=coords, attrs=all_attrs)
     return validate_series(ds)
+
+
+def _one_per_power(values, name: str, n_powers: int, fix: str) -> np.ndarray:
+    """``values`` as a vector, refused unless it holds one value per power."""
+    arr = _vector(values, name)
+    if arr.size != n_powers:
+        fail(
+            f"{n_powers} values (one per power)",
+            f"{arr.size}",
+            fix,
+            field=name,
+        )
+    return arr

@@ -96,7 +96,28 @@ def read(path, *, delimiter: str | None = None) -> xr.Dataset:
             path=path,
             field="file",
         )
-    header_number, header_line = lines[0]
+    delim, names, units = _header(lines[0], delimiter, path=path)
+    rows = lines[1:]
+    if not rows:
+        raise DataError(
+            "expected data rows below the header; found none. Fix: check the export",
+            path=path,
+            field="file",
+        )
+    columns = _columns(rows, len(names), delim, path=path)
+    variables = {}
+    for name, unit, cells in zip(names, units, columns, strict=True):
+        values = _column_values(name, unit, cells, rows, path=path)
+        attrs = {"units": unit} if unit else {}
+        variables[name] = xr.Variable(("row",), values, attrs)
+    meta = parse_metadata(comments)
+    logger.debug("read %d rows x %d columns from %s", len(rows), len(names), path)
+    return xr.Dataset(variables, attrs=meta)
+
+
+def _header(header_line: tuple[int, str], delimiter, *, path):
+    """The delimiter, and the column names and units of the header line."""
+    header_number, header_line = header_line
     delim = delimiter or _delimiter(header_line)
     header = _cells(header_line, delim, path=path, number=header_number)
     while header and not header[-1].strip():
@@ -120,53 +141,48 @@ def read(path, *, delimiter: str | None = None) -> xr.Dataset:
             )
         names.append(name)
         units.append(unit)
-    rows = lines[1:]
-    if not rows:
-        raise DataError(
-            "expected data rows below the header; found none. Fix: check the export",
-            path=path,
-            field="file",
-        )
-    columns: list[list[str]] = [[] for _ in names]
+    return delim, names, units
+
+
+def _columns(rows, n_names: int, delim: str, *, path) -> list[list[str]]:
+    """The cells of the data rows, column by column (one cell per header column)."""
+    columns: list[list[str]] = [[] for _ in range(n_names)]
     for number, line in rows:
         cells = _cells(line, delim, path=path, number=number)
-        while len(cells) > len(names) and not cells[-1].strip():
+        while len(cells) > n_names and not cells[-1].strip():
             cells.pop()
-        if len(cells) != len(names):
+        if len(cells) != n_names:
             hint = (
                 " (decimal commas split numbers into extra cells: export with '.' as "
                 "decimal separator)"
-                if len(cells) > len(names) and delim == ","
+                if len(cells) > n_names and delim == ","
                 else ""
             )
             raise DataError(
-                f"expected {len(names)} cells at line {number} (one per header column); "
+                f"expected {n_names} cells at line {number} (one per header column); "
                 f"found {len(cells)}.{hint} Fix: make every row match the header",
                 path=path,
                 field="row",
             )
         for i, cell in enumerate(cells):
             columns[i].append(cell)
-    variables = {}
-    for name, unit, cells in zip(names, units, columns, strict=True):
-        if name in TEXT_COLUMNS:
-            values = np.array([c.strip() for c in cells], dtype=str)
-        else:
-            try:
-                values = np.array(
-                    [
-                        parse_number(c, path=path, line=line_number, column=name)
-                        for c, (line_number, _) in zip(cells, rows, strict=True)
-                    ],
-                    dtype=float,
-                )
-            except DataError:
-                if unit or is_series_column(name):
-                    raise
-                # a free-text column (notes, file names) that polkit does not use
-                values = np.array([c.strip() for c in cells], dtype=str)
-        attrs = {"units": unit} if unit else {}
-        variables[name] = xr.Variable(("row",), values, attrs)
-    meta = parse_metadata(comments)
-    logger.debug("read %d rows x %d columns from %s", len(rows), len(names), path)
-    return xr.Dataset(variables, attrs=meta)
+    return columns
+
+
+def _column_values(name: str, unit, cells: list[str], rows, *, path) -> np.ndarray:
+    """Numbers of a column, or its text (``sweep``, free-text columns polkit does not use)."""
+    if name in TEXT_COLUMNS:
+        return np.array([c.strip() for c in cells], dtype=str)
+    try:
+        return np.array(
+            [
+                parse_number(c, path=path, line=line_number, column=name)
+                for c, (line_number, _) in zip(cells, rows, strict=True)
+            ],
+            dtype=float,
+        )
+    except DataError:
+        if unit or is_series_column(name):
+            raise
+        # a free-text column (notes, file names) that polkit does not use
+        return np.array([c.strip() for c in cells], dtype=str)

@@ -1,18 +1,19 @@
-"""Describe a data file in a few readable lines, with an optional quick-look PNG."""
+"""Describe a data file in a few readable lines (the quick-look figure: polkit.plotting.inspect)."""
 
 from __future__ import annotations
 
 import logging
 import warnings
+from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 import xarray as xr
 
 from polkit.data.camera import describe_record, preprocessing_record
 from polkit.data.schema import MAP_NUMBER_ATTRS
-from polkit.files import save_figure
 
-__all__ = ["inspect_file", "describe"]
+__all__ = ["Inspection", "examine", "describe_file", "describe"]
 
 logger = logging.getLogger(__name__)
 
@@ -108,67 +109,42 @@ def describe(obj: xr.DataArray | xr.Dataset) -> list[str]:
     return lines
 
 
-def _figure(obj):
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
-    from matplotlib.figure import Figure
+@dataclass(frozen=True)
+class Inspection:
+    """A data file loaded for a look: the canonical object and what loading it said."""
 
-    fig = Figure(figsize=(6.0, 4.5))
-    FigureCanvasAgg(fig)
-    ax = fig.add_subplot()
-    if isinstance(obj, xr.DataArray):
-        dim = obj.dims[0]
-        mesh = ax.pcolormesh(
-            obj[dim].values, obj["energy"].values, obj.values.T, shading="auto", cmap="magma"
-        )
-        fig.colorbar(mesh, ax=ax, label=f"signal [{obj.attrs.get('units', '')}]")
-        ax.set_xlabel(f"{obj[dim].attrs.get('long_name', dim)} [{obj[dim].attrs['units']}]")
-        ax.set_ylabel("photon energy [eV]")
-        ax.set_title(f"{obj.attrs.get('kind', '')} map")
-    else:
-        inten = obj["intensity"]
-        units = inten.attrs.get("units", "")
-        if "energy" in inten.dims:
-            y = inten.sum(dim=[d for d in inten.dims if d != "power"], skipna=True).values
-            groups = [("integrated spectra", obj["power"].values, y)]
-        elif "sweep" in obj.variables:
-            sweep = np.asarray(obj["sweep"].values, dtype=str)
-            groups = [
-                (f"{lab} sweep", obj["power"].values[sweep == lab], inten.values[sweep == lab])
-                for lab in ("up", "down")
-                if np.any(sweep == lab)
-            ]
+    path: Any
+    #: name of the reader that read the file
+    reader: str
+    #: the canonical map or series
+    obj: xr.DataArray | xr.Dataset
+    #: the warnings loading it raised (``warnings.WarningMessage``)
+    caught: list = field(default_factory=list)
+
+    def lines(self) -> list[str]:
+        """The description: file, reader, :func:`describe` and the warnings."""
+        lines = [f"file: {self.path}", f"reader: {self.reader}"]
+        lines += describe(self.obj)
+        if self.caught:
+            lines.append("warnings:")
+            lines += [f"  {w.category.__name__}: {w.message}" for w in self.caught]
         else:
-            groups = [("intensity", obj["power"].values, inten.values)]
-        for label, p, y in groups:
-            keep = (p > 0) & (y > 0) & np.isfinite(y)
-            ax.loglog(p[keep], y[keep], "o-", ms=3, label=label)
-        ax.set_xlabel("pump power [mW]")
-        ax.set_ylabel(f"intensity [{units}]")
-        ax.legend()
-        ax.set_title("power series")
-    return fig
+            lines.append("warnings: none")
+        return lines
 
 
-def inspect_file(path, *, png=None, camera=None, **load_options) -> str:
-    """Describe a data file: kind, dims, ranges, units, attributes and warnings.
+def examine(path, *, camera=None, **load_options) -> Inspection:
+    """Load any data file (map or series, found from its content) and keep its warnings.
 
     Parameters
     ----------
     path
         Any file :func:`polkit.data.load_map` or :func:`polkit.data.load_series` reads.
-    png
-        When given, a quick-look figure is written there atomically: the map as
-        angle vs energy (pcolormesh), or the series as intensity vs power (log-log).
     camera
         A :class:`polkit.data.CameraOptions`: for a map, apply the camera steps (offset,
-        saturation, spikes, excluded windows) and print what they masked.
+        saturation, spikes, excluded windows), so that the description says what they masked.
     **load_options
         Passed to the loader (``energy_units=``, ``fourier=`` ...).
-
-    Returns
-    -------
-    str
-        A multi-line description.
 
     Raises
     ------
@@ -197,15 +173,18 @@ def inspect_file(path, *, png=None, camera=None, **load_options) -> str:
                 obj = prepare_camera_map(obj, camera)
         else:
             obj = load_series(path, reader=reader, **load_options, **reader_options)
-    lines = [f"file: {path}", f"reader: {reader}"]
-    lines += describe(obj)
-    if caught:
-        lines.append("warnings:")
-        lines += [f"  {w.category.__name__}: {w.message}" for w in caught]
-    else:
-        lines.append("warnings: none")
-    if png is not None:
-        fig = _figure(obj)
-        save_figure(png, fig)
-        lines.append(f"quick-look figure: {png}")
-    return "\n".join(lines)
+    return Inspection(path, reader, obj, list(caught))
+
+
+def describe_file(path, *, camera=None, **load_options) -> str:
+    """Describe a data file: kind, dims, ranges, units, attributes and warnings.
+
+    Arguments as for :func:`examine`; a quick-look figure is drawn by
+    :func:`polkit.plotting.inspect.inspect_file`.
+
+    Returns
+    -------
+    str
+        A multi-line description.
+    """
+    return "\n".join(examine(path, camera=camera, **load_options).lines())

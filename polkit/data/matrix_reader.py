@@ -101,6 +101,38 @@ def read(path, *, rows=None, columns=None) -> xr.Dataset:
     text = decode_text(Path(path).read_bytes(), path=path)
     comments, lines = split_comments(text)
     meta = parse_metadata(comments)
+    axis_cells, body = _matrix_cells(lines, path=path)
+    rname, runits = _axis_spec(
+        rows or meta.pop("rows", None), _DEFAULT_ROWS, path=path, field="rows"
+    )
+    cname, cunits = _axis_spec(
+        columns or meta.pop("columns", None), _DEFAULT_COLUMNS, path=path, field="columns"
+    )
+    meta.pop("rows", None)
+    meta.pop("columns", None)
+    if rname == cname:
+        raise DataError(
+            f"expected two different axes; found both named {rname!r}. Fix: correct the header",
+            path=path,
+            field="columns",
+        )
+    col_axis = np.array(
+        [parse_number(c, path=path, line=lines[0][0], column=cname) for c in axis_cells]
+    )
+    row_axis, signal = _parse_body(body, rname, cname, path=path)
+    sig_name, sig_units = _signal_name(meta.pop("signal", None), rname, cname, path=path)
+    sig_attrs = {"units": sig_units} if sig_units else {}
+    coords = {
+        rname: (rname, row_axis, {"units": runits} if runits else {}),
+        cname: (cname, col_axis, {"units": cunits} if cunits else {}),
+    }
+    logger.debug("read a %d x %d matrix from %s", *signal.shape, path)
+    ds = xr.Dataset({sig_name: ((rname, cname), signal, sig_attrs)}, coords=coords, attrs=meta)
+    return ds
+
+
+def _matrix_cells(lines, *, path):
+    """The column-axis cells (corner dropped) and the split data rows, checked for shape."""
     if len(lines) < 2:
         raise DataError(
             f"expected an axis row and at least one data row; found {len(lines)} data line(s). "
@@ -136,23 +168,12 @@ def read(path, *, rows=None, columns=None) -> xr.Dataset:
             path=path,
             field="columns",
         )
-    rname, runits = _axis_spec(
-        rows or meta.pop("rows", None), _DEFAULT_ROWS, path=path, field="rows"
-    )
-    cname, cunits = _axis_spec(
-        columns or meta.pop("columns", None), _DEFAULT_COLUMNS, path=path, field="columns"
-    )
-    meta.pop("rows", None)
-    meta.pop("columns", None)
-    if rname == cname:
-        raise DataError(
-            f"expected two different axes; found both named {rname!r}. Fix: correct the header",
-            path=path,
-            field="columns",
-        )
-    col_axis = np.array(
-        [parse_number(c, path=path, line=lines[0][0], column=cname) for c in axis_cells]
-    )
+    return axis_cells, body
+
+
+def _parse_body(body, rname: str, cname: str, *, path) -> tuple[np.ndarray, np.ndarray]:
+    """The row-axis values and the signal matrix of the data rows."""
+    width = len(body[0][1])
     row_axis = np.empty(len(body))
     signal = np.empty((len(body), width - 1))
     for i, (number, cells) in enumerate(body):
@@ -166,8 +187,12 @@ def read(path, *, rows=None, columns=None) -> xr.Dataset:
                 pass
         for j, cell in enumerate(cells[1:]):
             signal[i, j] = parse_number(cell, path=path, line=number, column=f"{cname} #{j + 1}")
+    return row_axis, signal
+
+
+def _signal_name(spec, rname: str, cname: str, *, path) -> tuple[str, str | None]:
+    """Name and units of the signal from the header key ``signal`` (default ``signal``)."""
     sig_name, sig_units = "signal", None
-    spec = meta.pop("signal", None)
     if spec:
         if spec.strip().startswith("["):
             spec = "signal " + spec
@@ -179,11 +204,4 @@ def read(path, *, rows=None, columns=None) -> xr.Dataset:
         sig_units = units
         if sig_name in (rname, cname):
             sig_name = "signal"
-    sig_attrs = {"units": sig_units} if sig_units else {}
-    coords = {
-        rname: (rname, row_axis, {"units": runits} if runits else {}),
-        cname: (cname, col_axis, {"units": cunits} if cunits else {}),
-    }
-    logger.debug("read a %d x %d matrix from %s", *signal.shape, path)
-    ds = xr.Dataset({sig_name: ((rname, cname), signal, sig_attrs)}, coords=coords, attrs=meta)
-    return ds
+    return sig_name, sig_units

@@ -75,6 +75,41 @@ def arrays_to_raw(
     xarray.Dataset
         Raw dataset for :mod:`polkit.data.assemble`.
     """
+    units, out_attrs, dims_of, data = _sort_arrays(arrays, units, attrs, path=path)
+
+    def attrs_for(name):
+        return {"units": units[name]} if units.get(name) else {}
+
+    multi = {n: a for n, a in data.items() if a.ndim >= 2}
+    one = {n: a for n, a in data.items() if a.ndim == 1}
+    if not multi:
+        return _table_dataset(one, attrs_for, out_attrs, path=path)
+    axes = {n: a for n, a in one.items() if axis_role(n, units.get(n)) is not None}
+    variables = {}
+    coords = {n: (n, a, attrs_for(n)) for n, a in axes.items()}
+    for name, arr in multi.items():
+        if name in dims_of:
+            dims = _named_dims(name, arr, dims_of[name], one, path=path)
+            for d in dims:
+                coords.setdefault(d, (d, one[d], attrs_for(d)))
+        else:
+            dims = _match_dims(name, arr.shape, axes, units, path=path)
+        variables[name] = xr.Variable(tuple(dims), arr, attrs_for(name))
+    for n, a in one.items():
+        if n not in coords:
+            coords[n] = (n, a, attrs_for(n))
+    try:
+        return xr.Dataset(variables, coords=coords, attrs=out_attrs)
+    except ValueError as exc:
+        raise DataError(
+            f"expected arrays whose lengths match their axes; found {exc}. Fix: check the shapes",
+            path=path,
+            field="file",
+        ) from None
+
+
+def _sort_arrays(arrays: dict, units, attrs, *, path):
+    """Units, file attributes, declared axis names and data arrays, from the named arrays."""
     units = dict(units or {})
     out_attrs = dict(attrs or {})
     dims_of: dict[str, list[str]] = {}
@@ -85,17 +120,7 @@ def arrays_to_raw(
         elif name == "units":
             units.setdefault("signal", _text(value, path=path, field=name))
         elif name.startswith("dims_"):
-            arr = np.asarray(value)
-            if arr.dtype.kind not in "SU" or arr.ndim != 1:
-                raise DataError(
-                    f"expected a 1-D string array of axis names; found dtype {arr.dtype}, shape "
-                    f"{arr.shape}. Fix: store e.g. np.array(['angle', 'wavelength'])",
-                    path=path,
-                    field=name,
-                )
-            dims_of[name[len("dims_") :]] = [
-                (v.decode("utf-8", "replace") if isinstance(v, bytes) else str(v)) for v in arr
-            ]
+            dims_of[name[len("dims_") :]] = _axis_names(value, path=path, field=name)
         else:
             arr = np.asarray(value)
             if arr.ndim == 0:
@@ -122,55 +147,47 @@ def arrays_to_raw(
             path=path,
             field="file",
         )
+    return units, out_attrs, dims_of, data
 
-    def attrs_for(name):
-        return {"units": units[name]} if units.get(name) else {}
 
-    multi = {n: a for n, a in data.items() if a.ndim >= 2}
-    one = {n: a for n, a in data.items() if a.ndim == 1}
-    if not multi:
-        lengths = {n: a.size for n, a in one.items()}
-        if len(set(lengths.values())) > 1:
-            raise DataError(
-                "expected table columns of equal length; found lengths "
-                + ", ".join(f"{n}={v}" for n, v in lengths.items())
-                + ". Fix: give one value per row in every column",
-                path=path,
-                field="file",
-            )
-        variables = {n: xr.Variable(("row",), a, attrs_for(n)) for n, a in one.items()}
-        return xr.Dataset(variables, attrs=out_attrs)
-
-    axes = {n: a for n, a in one.items() if axis_role(n, units.get(n)) is not None}
-    variables = {}
-    coords = {n: (n, a, attrs_for(n)) for n, a in axes.items()}
-    for name, arr in multi.items():
-        if name in dims_of:
-            dims = dims_of[name]
-            missing = [d for d in dims if d not in one]
-            if len(dims) != arr.ndim or missing:
-                raise DataError(
-                    f"expected {arr.ndim} axis names that are 1-D arrays in the file; found "
-                    f"{dims} (missing: {missing}). Fix: correct dims_{name}",
-                    path=path,
-                    field=f"dims_{name}",
-                )
-            for d in dims:
-                coords.setdefault(d, (d, one[d], attrs_for(d)))
-        else:
-            dims = _match_dims(name, arr.shape, axes, units, path=path)
-        variables[name] = xr.Variable(tuple(dims), arr, attrs_for(name))
-    for n, a in one.items():
-        if n not in coords:
-            coords[n] = (n, a, attrs_for(n))
-    try:
-        return xr.Dataset(variables, coords=coords, attrs=out_attrs)
-    except ValueError as exc:
+def _axis_names(value, *, path, field) -> list[str]:
+    arr = np.asarray(value)
+    if arr.dtype.kind not in "SU" or arr.ndim != 1:
         raise DataError(
-            f"expected arrays whose lengths match their axes; found {exc}. Fix: check the shapes",
+            f"expected a 1-D string array of axis names; found dtype {arr.dtype}, shape "
+            f"{arr.shape}. Fix: store e.g. np.array(['angle', 'wavelength'])",
+            path=path,
+            field=field,
+        )
+    return [(v.decode("utf-8", "replace") if isinstance(v, bytes) else str(v)) for v in arr]
+
+
+def _table_dataset(one: dict, attrs_for, out_attrs: dict, *, path) -> xr.Dataset:
+    """Without an N-D array the file is a table: 1-D columns of equal length on dim ``row``."""
+    lengths = {n: a.size for n, a in one.items()}
+    if len(set(lengths.values())) > 1:
+        raise DataError(
+            "expected table columns of equal length; found lengths "
+            + ", ".join(f"{n}={v}" for n, v in lengths.items())
+            + ". Fix: give one value per row in every column",
             path=path,
             field="file",
-        ) from None
+        )
+    variables = {n: xr.Variable(("row",), a, attrs_for(n)) for n, a in one.items()}
+    return xr.Dataset(variables, attrs=out_attrs)
+
+
+def _named_dims(name: str, arr: np.ndarray, dims: list[str], one: dict, *, path) -> list[str]:
+    """The axis names ``dims_<name>`` declares, checked against the 1-D arrays."""
+    missing = [d for d in dims if d not in one]
+    if len(dims) != arr.ndim or missing:
+        raise DataError(
+            f"expected {arr.ndim} axis names that are 1-D arrays in the file; found "
+            f"{dims} (missing: {missing}). Fix: correct dims_{name}",
+            path=path,
+            field=f"dims_{name}",
+        )
+    return dims
 
 
 def _match_dims(name, shape, axes, units, *, path) -> list[str]:

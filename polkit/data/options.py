@@ -94,3 +94,28 @@ class LoadOptions:
                if f.name not in ("angle_window", "energy_window", "camera", "reader_options")}
         out.update(self.reader_options)
         return out
+
+
+#: the fields :func:`polkit.data.load_map` reads (windows and camera are a job's business)
+MAP_FIELDS = (
+    "reader", "kind", "wavelength_medium", "energy_units", "angle_units", "signal_units",
+    "variable", "fourier", "mask_nonfinite", "wavelength_jacobian", "dark", "mask_saturated",
+    "reader_options",
+)
+#: the fields :func:`polkit.data.load_series` reads (a series has no kind or camera offset)
+SERIES_FIELDS = tuple(f for f in MAP_FIELDS if f not in ("kind", "dark", "mask_saturated"))
+
+
+def loader_options(options: LoadOptions | Mapping[str, Any] | None, changes: Mapping[str, Any],
+                   fields: tuple[str, ...]) -> LoadOptions:
+    """``options`` with ``changes``: names in ``fields`` set fields, others are reader options.
+
+    A reader refuses the options it does not take (:func:`polkit.data.registry.read_raw`),
+    so a misspelt name is still refused, in the reader's words.
+    """
+    own = {k: v for k, v in changes.items() if k in fields}
+    extra = {k: v for k, v in changes.items() if k not in fields}
+    opts = LoadOptions.of(options, **own)
+    if extra:
+        opts = dataclasses.replace(opts, reader_options={**opts.reader_options, **extra})
+    return opts

@@ -260,13 +260,16 @@ def _median4(stack: np.ndarray, has_nan: bool) -> tuple[np.ndarray, np.ndarray]:
     return 0.5 * (stack.sum(axis=0) - hi - lo), hi - lo
 
 
-def _block_median(r: np.ndarray, size: int) -> np.ndarray:
-    """Median over size x size blocks, spread back over the pixels of each block."""
+def block_median(r: np.ndarray, size: int, median=np.median) -> np.ndarray:
+    """Median over size x size blocks, spread back over the pixels of each block.
+
+    ``median`` is the median function (``np.nanmedian`` to pass over masked pixels).
+    """
     n0, n1 = r.shape
     m0, m1 = -(-n0 // size) * size, -(-n1 // size) * size
     padded = np.pad(r, ((0, m0 - n0), (0, m1 - n1)), mode="symmetric")
     blocks = padded.reshape(m0 // size, size, m1 // size, size).transpose(0, 2, 1, 3)
-    med = np.median(blocks.reshape(m0 // size, m1 // size, size * size), axis=-1)
+    med = median(blocks.reshape(m0 // size, m1 // size, size * size), axis=-1)
     return np.repeat(np.repeat(med, size, axis=0), size, axis=1)[:n0, :n1]
 
 
@@ -288,7 +291,7 @@ def _spike_pass(
     for r in np.abs(resid):
         fill = np.nanmedian(r) if np.isfinite(r).any() else 0.0
         r = np.where(np.isfinite(r), r, fill)
-        scales.append(_MAD_TO_SIGMA * _block_median(r, _BLOCK))
+        scales.append(_MAD_TO_SIGMA * block_median(r, _BLOCK))
     sigma = np.min(scales, axis=0)
     if terms is not None:
         a, b = terms

@@ -14,6 +14,7 @@ See :mod:`polkit.data.schema` for the choice between dims ``power`` and ``point`
 from __future__ import annotations
 
 import logging
+from dataclasses import dataclass
 
 import numpy as np
 import xarray as xr
@@ -30,6 +31,7 @@ from polkit.data.assemble import (
     raw_content,
 )
 from polkit.data.build import make_series
+from polkit.data.options import LoadOptions
 from polkit.data.roles import COLUMN_ALIASES as _COLUMN_ALIASES
 from polkit.data.roles import ERROR_SUFFIXES as _ERROR_SUFFIXES
 from polkit.data.schema import append_history
@@ -89,7 +91,23 @@ def _numeric(var, name, *, path) -> np.ndarray:
     return _float_signal(var.values, path=path, field=name)
 
 
-def _table_to_series(raw, *, path, reader, medium, mask_nonfinite) -> xr.Dataset:
+@dataclass
+class _Table:
+    """A raw table's columns, matched to the series quantities they hold."""
+
+    columns: dict[str, xr.DataArray]
+    #: (quantity, is an error column) -> column name
+    found: dict[tuple[str, bool], str]
+    #: columns that are no series quantity
+    extras: dict[str, xr.DataArray]
+
+    def col(self, canon: str, err: bool = False):
+        """(name, column) of quantity ``canon`` (its error column with ``err``), or (None, None)."""
+        name = self.found.get((canon, err))
+        return (name, self.columns[name]) if name else (None, None)
+
+
+def _match_table(raw, *, path) -> _Table:
     columns = _table_columns(raw, path=path)
     found: dict[tuple[str, bool], str] = {}
     extras = {}
@@ -114,21 +132,15 @@ def _table_to_series(raw, *, path, reader, medium, mask_nonfinite) -> xr.Dataset
                 path=path,
                 field=required,
             )
+    return _Table(columns, found, extras)
 
-    def col(canon, err=False):
-        name = found.get((canon, err))
-        return (name, columns[name]) if name else (None, None)
 
-    history = []
-    pname, pvar = col("power")
-    punits = _require_units(pvar, pname, path=path, example="mW")
-    power = U.power_to_mw(_numeric(pvar, pname, path=path), punits, path=path, field=pname)
-    if punits != "mW":
-        history.append(f"{pname} [{punits}] -> power [mW]")
-    iname, ivar = col("intensity")
+def _intensity_columns(table: _Table, arrays: dict, *, path) -> str:
+    """Put the intensity (and its error) in ``arrays``; return the intensity's units."""
+    iname, ivar = table.col("intensity")
     iunits = _require_units(ivar, iname, path=path, example="counts")
-    arrays = {"intensity": _numeric(ivar, iname, path=path)}
-    ename, evar = col("intensity", True)
+    arrays["intensity"] = _numeric(ivar, iname, path=path)
+    ename, evar = table.col("intensity", True)
     if evar is not None:
         eunits = _require_units(evar, ename, path=path, example=iunits)
         if eunits != iunits:
@@ -139,45 +151,59 @@ def _table_to_series(raw, *, path, reader, medium, mask_nonfinite) -> xr.Dataset
                 field=ename,
             )
         arrays["intensity_error"] = _numeric(evar, ename, path=path)
+    return iunits
 
+
+def _peak_columns(table: _Table, arrays: dict, history: list, *, medium, path):
+    """Put the peak energy (and its error) in ``arrays``, converted to eV.
+
+    Returns the wavelength factor of the peak column when it came as a wavelength, else None.
+    """
     peak_wavelength = None  # (quantity factor) when the peak came as a wavelength
-    name, var = col("peak_energy")
-    if var is not None:
-        u = _require_units(var, name, path=path, example="eV")
-        q = U.energy_axis_quantity(u)
-        if q is None:
+    name, var = table.col("peak_energy")
+    if var is None:
+        return peak_wavelength
+    u = _require_units(var, name, path=path, example="eV")
+    q = U.energy_axis_quantity(u)
+    if q is None:
+        raise DataError(
+            f"expected units of a photon energy or wavelength; found {u!r}. "
+            f"Fix: {_SPECTRAL_FIX}",
+            path=path,
+            field=name,
+        )
+    values = _numeric(var, name, path=path)
+    energy = U.axis_to_ev(values, *q, medium=medium, path=path, field=name)
+    arrays["peak_energy"] = energy
+    if q[0] == "wavelength":
+        peak_wavelength = q[1]
+        history.append(f"{name} [{u}, {medium}] -> peak_energy [eV]")
+    name_e, var_e = table.col("peak_energy", True)
+    if var_e is not None:
+        ue = _require_units(var_e, name_e, path=path, example=u)
+        qe = U.energy_axis_quantity(ue)
+        err = _numeric(var_e, name_e, path=path)
+        if qe is not None and qe[0] == "energy":
+            arrays["peak_energy_error"] = err * qe[1]
+        elif qe is not None and qe[0] == "wavelength" and peak_wavelength is not None:
+            jac = U.wavelength_jacobian(energy, qe[1], medium=medium)
+            arrays["peak_energy_error"] = err / jac
+        else:
             raise DataError(
-                f"expected units of a photon energy or wavelength; found {u!r}. "
-                f"Fix: {_SPECTRAL_FIX}",
+                f"expected the peak error in energy units (or in the wavelength units of the "
+                f"peak column); found {ue!r}",
                 path=path,
-                field=name,
+                field=name_e,
             )
-        values = _numeric(var, name, path=path)
-        energy = U.axis_to_ev(values, *q, medium=medium, path=path, field=name)
-        arrays["peak_energy"] = energy
-        if q[0] == "wavelength":
-            peak_wavelength = q[1]
-            history.append(f"{name} [{u}, {medium}] -> peak_energy [eV]")
-        name_e, var_e = col("peak_energy", True)
-        if var_e is not None:
-            ue = _require_units(var_e, name_e, path=path, example=u)
-            qe = U.energy_axis_quantity(ue)
-            err = _numeric(var_e, name_e, path=path)
-            if qe is not None and qe[0] == "energy":
-                arrays["peak_energy_error"] = err * qe[1]
-            elif qe is not None and qe[0] == "wavelength" and peak_wavelength is not None:
-                jac = U.wavelength_jacobian(energy, qe[1], medium=medium)
-                arrays["peak_energy_error"] = err / jac
-            else:
-                raise DataError(
-                    f"expected the peak error in energy units (or in the wavelength units of the "
-                    f"peak column); found {ue!r}",
-                    path=path,
-                    field=name_e,
-                )
+    return peak_wavelength
+
+
+def _width_columns(table: _Table, arrays: dict, history: list, *, peak_wavelength, medium,
+                   path) -> None:
+    """Put the linewidth (and its error) in ``arrays``, converted to meV."""
     for canon in ("linewidth",):
         for err in (False, True):
-            name, var = col(canon, err)
+            name, var = table.col(canon, err)
             if var is None:
                 continue
             u = _require_units(var, name, path=path, example="meV")
@@ -204,17 +230,24 @@ def _table_to_series(raw, *, path, reader, medium, mask_nonfinite) -> xr.Dataset
                     path=path,
                     field=name,
                 )
-    sweep = None
-    name, var = col("sweep")
-    if var is not None:
-        raw_labels = np.asarray(var.values)
-        if raw_labels.dtype.kind not in "SUO":
-            raise DataError(
-                f"expected 'up'/'down' labels; found values of dtype {raw_labels.dtype}",
-                path=path,
-                field=name,
-            )
-        sweep = np.array([str(s).strip().lower() for s in raw_labels.ravel()], dtype=str)
+
+
+def _sweep_labels(table: _Table, *, path):
+    name, var = table.col("sweep")
+    if var is None:
+        return None
+    raw_labels = np.asarray(var.values)
+    if raw_labels.dtype.kind not in "SUO":
+        raise DataError(
+            f"expected 'up'/'down' labels; found values of dtype {raw_labels.dtype}",
+            path=path,
+            field=name,
+        )
+    return np.array([str(s).strip().lower() for s in raw_labels.ravel()], dtype=str)
+
+
+def _extra_columns(extras: dict, *, path) -> dict:
+    """Other numeric columns with units, kept as they are; the rest dropped with a warning."""
     extra_vars = {}
     for name, var in extras.items():
         arr = np.asarray(var.values)
@@ -224,9 +257,28 @@ def _table_to_series(raw, *, path, reader, medium, mask_nonfinite) -> xr.Dataset
                 "column not used by polkit and without units (or not numeric): dropped",
                 path,
                 name,
+                stacklevel=5,
             )
             continue
         extra_vars[name] = (arr.astype(float), u.strip())
+    return extra_vars
+
+
+def _table_to_series(raw, *, path, reader, medium, mask_nonfinite) -> xr.Dataset:
+    table = _match_table(raw, path=path)
+    history = []
+    pname, pvar = table.col("power")
+    punits = _require_units(pvar, pname, path=path, example="mW")
+    power = U.power_to_mw(_numeric(pvar, pname, path=path), punits, path=path, field=pname)
+    if punits != "mW":
+        history.append(f"{pname} [{punits}] -> power [mW]")
+    arrays = {}
+    iunits = _intensity_columns(table, arrays, path=path)
+    peak_wavelength = _peak_columns(table, arrays, history, medium=medium, path=path)
+    _width_columns(table, arrays, history, peak_wavelength=peak_wavelength, medium=medium,
+                   path=path)
+    sweep = _sweep_labels(table, path=path)
+    extra_vars = _extra_columns(table.extras, path=path)
     attrs = _carried(raw.attrs, {}, path=path)
     n_masked = 0
     for key in list(arrays):
@@ -259,21 +311,16 @@ def _table_to_series(raw, *, path, reader, medium, mask_nonfinite) -> xr.Dataset
 
 
 def raw_to_series(
-    raw: xr.Dataset,
-    *,
-    path,
-    reader: str,
-    wavelength_medium: str | None = None,
-    energy_units: str | None = None,
-    angle_units: str | None = None,
-    fourier: dict | None = None,
-    mask_nonfinite: bool = False,
-    wavelength_jacobian: bool = True,
-    variable: str | None = None,
-    signal_units: str | None = None,
+    raw: xr.Dataset, options: LoadOptions | None = None, *, path, reader: str, **changes
 ) -> xr.Dataset:
-    """Build and validate a canonical series from a raw dataset (see ``load_series``)."""
-    medium = _choose_medium(wavelength_medium, raw.attrs, path=path)
+    """Build and validate a canonical series from a raw dataset (see ``load_series``).
+
+    ``options`` is a :class:`polkit.data.LoadOptions` (or a dict of its fields), ``changes``
+    replace its fields; ``kind``, ``dark``, ``mask_saturated``, the reader's options and a
+    job's windows and camera are not used.
+    """
+    opts = LoadOptions.of(options, **changes)
+    medium = _choose_medium(opts.wavelength_medium, raw.attrs, path=path)
     content = raw_content(raw)
     if content == "map":
         raise DataError(
@@ -283,19 +330,7 @@ def raw_to_series(
             field="power",
         )
     if content == "cube":
-        return cube_to_series(
-            raw,
-            path=path,
-            reader=reader,
-            medium=medium,
-            energy_units=energy_units,
-            angle_units=angle_units,
-            fourier=fourier,
-            mask_nonfinite=mask_nonfinite,
-            jacobian=wavelength_jacobian,
-            variable=variable,
-            signal_units=signal_units,
-        )
+        return cube_to_series(raw, opts, path=path, reader=reader, medium=medium)
     return _table_to_series(
-        raw, path=path, reader=reader, medium=medium, mask_nonfinite=mask_nonfinite
+        raw, path=path, reader=reader, medium=medium, mask_nonfinite=opts.mask_nonfinite
     )

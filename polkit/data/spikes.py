@@ -54,6 +54,7 @@ from polkit.data.camera import (
     raw_counts,
     record_step,
 )
+from polkit.data.preprocess import block_median
 from polkit.data.schema import append_history
 from polkit.data.validate import validate_map
 from polkit.errors import ConfigError, DataWarning
@@ -86,15 +87,6 @@ def _shift(x: np.ndarray, di: int, dj: int, fill: float) -> np.ndarray:
     return out
 
 
-def _block_median(r: np.ndarray, size: int) -> np.ndarray:
-    n0, n1 = r.shape
-    m0, m1 = -(-n0 // size) * size, -(-n1 // size) * size
-    padded = np.pad(r, ((0, m0 - n0), (0, m1 - n1)), mode="symmetric")
-    blocks = padded.reshape(m0 // size, size, m1 // size, size).transpose(0, 2, 1, 3)
-    med = np.nanmedian(blocks.reshape(m0 // size, m1 // size, size * size), axis=-1)
-    return np.repeat(np.repeat(med, size, axis=0), size, axis=1)[:n0, :n1]
-
-
 def _robust_sigma(x: np.ndarray) -> np.ndarray:
     """Local noise scale from second differences along energy (robust to spikes)."""
     with np.errstate(invalid="ignore"):
@@ -104,7 +96,7 @@ def _robust_sigma(x: np.ndarray) -> np.ndarray:
     overall = float(np.median(finite)) if finite.size else 0.0
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN blocks
-        local = _block_median(r, _BLOCK)
+        local = block_median(r, _BLOCK, np.nanmedian)
     return np.maximum(np.where(np.isfinite(local), local, overall), overall)
 
 

@@ -8,8 +8,9 @@ import scipy.constants as sc
 from data_helpers import polariton_map, write_matrix
 from matplotlib.image import imread
 
-from polkit.data import inspect_file
+from polkit.data import describe_file
 from polkit.errors import DataError
+from polkit.plotting.inspect import inspect_file
 
 HC = sc.h * sc.c / sc.e * 1e9  # Source: CODATA via scipy.constants
 
@@ -89,3 +90,19 @@ def test_inspect_spectra_cube_with_png(tmp_path):
     assert "content: power series (spectra cube)" in text
     assert "dims: power (4) x energy (30)" in text
     assert png.read_bytes()[:4] == b"\x89PNG"
+
+
+def test_the_data_layer_describes_a_file_without_drawing(tmp_path):
+    path = tmp_path / "sweep.csv"
+    path.write_text(
+        "power [mW],intensity [counts],sweep,operator\n"
+        "1,10,up,a\n2,40,up,a\n3,200,up,a\n2,150,down,a\n1,12,down,a\n"
+    )
+    text = describe_file(path)
+    assert text.startswith(f"file: {path}\nreader: csv\n")
+    assert "sweep: 2 down, 3 up" in text
+    assert "DataWarning" in text and "'operator'" in text
+    # the same description as the command's, less the figure line
+    png = tmp_path / "sweep.png"
+    assert inspect_file(path, png=png) == text + f"\nquick-look figure: {png}"
+    assert inspect_file(path) == text
