@@ -49,8 +49,8 @@ import xarray as xr
 from polkit._paths import shareable_attrs
 from polkit.errors import ConfigError, DataError
 from polkit.files import json_safe, write_json, write_netcdf
+from polkit.inference.output import SamplerOutput
 from polkit.inference.priors import ParameterSpace
-from polkit.inference.sampler import SamplerOutput
 
 __all__ = ["FitResult", "POSTERIOR_FILE", "SUMMARY_FILE"]
 
