@@ -200,19 +200,13 @@ def run_ensemble(
         curvature scale), a point ``(P,)`` (ball of 0.1 prior spreads), a starting
         ensemble ``(W, P)`` or one per ensemble ``(n_ensembles, W, P)``.
     settings
-        How long and how the sampler runs and when it stops
-        (:class:`~polkit.inference.SamplerSettings`, a dict of its fields, or ``None``);
-        ``None`` step limits and walker count mean 32 walkers, 20000 and 500 steps.
-        ``n_walkers`` is per ensemble (at least ``2 P``); ``strict`` runs
-        ``n_ensembles >= 4`` (default 4) independently seeded ensembles one after another
-        and also gates on nested R-hat (Margossian et al. 2022); ``moves`` default to
-        :func:`default_moves`; ``stop_event``, when set, ends sampling cleanly after the
-        current step with the result marked not converged (the checkpoint can be
-        resumed).  The gate's limits are in ``settings.gate``
-        (:class:`~polkit.inference.GateSettings`): with several ensembles each must reach
-        its share of ``ess_target``, ``ess_target / n_ensembles``, and the pooled draws
-        the whole target; ``ess_rhat=False`` leaves ESS and R-hat NaN and out of the gate
-        (for a short preliminary run whose draws are not reported).
+        :class:`~polkit.inference.SamplerSettings` (or a dict of its fields); ``None``
+        walkers and step limits mean 32 walkers, 20000 and 500 steps.  ``strict`` runs
+        ``n_ensembles >= 4`` ensembles one after another, also gated on nested R-hat
+        (Margossian et al. 2022).  The gate (:class:`~polkit.inference.GateSettings`):
+        with several ensembles each must reach ``ess_target / n_ensembles`` and the
+        pooled draws the whole target; ``ess_rhat=False`` leaves ESS and R-hat NaN and
+        out of the gate (a preliminary run whose draws are not reported).
     seed
         ``int``, ``None`` (fresh entropy, recorded) or a :class:`~numpy.random.SeedSequence`.
         One child sequence is spawned per ensemble; the same seed gives bit-identical
