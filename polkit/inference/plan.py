@@ -107,6 +107,20 @@ class RunPlan:
     def strict(self) -> bool:
         return self.settings.strict
 
+    def shortfall(self, chains: np.ndarray, length: int, names) -> str | None:
+        """Why the pooled draws of ``chains`` (E, S, W, P) cut to ``length`` steps are not
+        yet enough (pooled ESS, and nested R-hat in strict mode); ``None`` when they are."""
+        _, burn, thin = burn_thin(chains, length)
+        kept = chains[:, burn::thin]
+        short = pooled_ess_short(kept, names, self.rule.targets)
+        if short:
+            return f"pooled ESS below the target at {length} steps ({short})"
+        if self.strict:
+            rhat = float(np.max(diag.nested_rhat(to_nested(kept))))
+            if not rhat <= self.settings.gate.nested_rhat_max:
+                return f"nested R-hat {rhat:.4f} at {length} steps"
+        return None
+
     def next_length(self, length: int) -> int:
         """The common length after ``length`` when the pooled draws fall short."""
         check_every = self.settings.check_every

@@ -51,15 +51,7 @@ from polkit.inference.ensemble import Ensemble, Stopped
 from polkit.inference.identity import fit_identity
 from polkit.inference.optimize import MapResult, check_ensemble, initial_ball
 from polkit.inference.output import SamplerOutput
-from polkit.inference.plan import (
-    GateRule,
-    RunPlan,
-    burn_thin,
-    check_gate_settings,
-    gate_at,
-    pooled_ess_short,
-    to_nested,
-)
+from polkit.inference.plan import GateRule, RunPlan, check_gate_settings, gate_at
 from polkit.inference.posterior import LogPosterior
 from polkit.inference.priors import ParameterSpace
 from polkit.inference.settings import SamplerSettings
@@ -363,18 +355,9 @@ def _common_length(ensembles, gate: dict, space, plan: RunPlan, pbar) -> int:
         if (plan.n_ensembles > 1 and length < s.max_steps and rule.targets is not None
                 and all(g.passed for g in gate.values())):
             chains = np.stack([ens.chain(length)[0] for ens in ensembles])
-            _, burn, thin = burn_thin(chains, length)
-            kept = chains[:, burn::thin]
-            short = pooled_ess_short(kept, space.names, rule.targets)
-            if short:
-                log.info("pooled ESS below the target at %d steps (%s); extending",
-                         length, short)
+            why = plan.shortfall(chains, length, space.names)
+            if why is not None:
+                log.info("%s; extending", why)
                 length = plan.next_length(length)
                 continue
-            if s.strict:
-                rhat = float(np.max(diag.nested_rhat(to_nested(kept))))
-                if not rhat <= s.gate.nested_rhat_max:
-                    log.info("nested R-hat %.4f at %d steps; extending", rhat, length)
-                    length = plan.next_length(length)
-                    continue
         return length
