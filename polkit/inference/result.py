@@ -41,7 +41,7 @@ from collections.abc import Mapping
 from datetime import UTC, datetime
 from importlib import metadata
 from pathlib import Path
-from typing import Any
+from typing import Any, NoReturn
 
 import numpy as np
 import xarray as xr
@@ -570,7 +570,7 @@ class FitResult:
 
 
 def _check_tree(tree, path) -> None:
-    def refuse(message: str, field: str):
+    def refuse(message: str, field: str) -> NoReturn:
         raise DataError(message, path=path, field=field)
 
     if not isinstance(tree, xr.DataTree):
