@@ -4,7 +4,8 @@ The engine knows nothing of physics or input files.  A workflow gives it a
 :class:`ParameterSpace` (named parameters with units and priors) and a vectorised
 log-likelihood ``theta[W, P] -> [W]``; it returns a :class:`SamplerOutput`, which the
 workflow turns into a :class:`FitResult` together with derived quantities computed
-per posterior draw.  Sampling is left to emcee, diagnostics to ArviZ.
+per posterior draw.  Sampling is left to emcee, diagnostics to ArviZ.  Prior files are
+read by :mod:`polkit.config.priors` (:func:`~polkit.config.priors.apply_priors`).
 """
 
 from __future__ import annotations
@@ -19,7 +20,7 @@ from polkit.inference.diagnostics import (
 )
 from polkit.inference.optimize import MapResult, check_ensemble, find_map, initial_ball
 from polkit.inference.posterior import LogPosterior
-from polkit.inference.priors import PRIOR_KINDS, Parameter, ParameterSpace, Prior, apply_priors
+from polkit.inference.priors import PRIOR_KINDS, Parameter, ParameterSpace, Prior
 from polkit.inference.result import FitResult
 from polkit.inference.sampler import SamplerOutput, default_moves, run_ensemble
 from polkit.inference.settings import GateSettings, SamplerSettings
@@ -29,7 +30,6 @@ __all__ = [
     "Prior",
     "Parameter",
     "ParameterSpace",
-    "apply_priors",
     "LogPosterior",
     "MapResult",
     "find_map",

@@ -29,7 +29,6 @@ import json
 import logging
 import math
 import os
-import time
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -37,9 +36,11 @@ import numpy as np
 
 from polkit.errors import ConfigError, PolkitError
 from polkit.files import check_room, write_error
+from polkit.inference.checkpoint_backend import FLUSH_SECONDS, make_backend, step_chunks
 from polkit.inference.identity import IDENTITY_ATTR, compare_identity, fit_identity
 
-__all__ = ["root_seed", "prepare_checkpoint", "start_stored"]
+__all__ = ["Checkpoint", "ChunkRows", "FLUSH_SECONDS", "root_seed", "entropy_int",
+           "prepare_checkpoint", "start_stored"]
 
 log = logging.getLogger(__name__)
 
@@ -49,15 +50,28 @@ _CHECKPOINT_FORMAT = 1
 _CHECKPOINT_METADATA_BYTES = 64 * 1024
 #: and this fraction of the stretch's own bytes
 _CHECKPOINT_MARGIN = 0.1
-#: the longest time finished steps wait in memory before they are written and flushed
-FLUSH_SECONDS = 1.0
 #: errno values that mean "no room" (full disk, quota, file-size limit)
 _NO_ROOM = {errno.ENOSPC, errno.EFBIG, getattr(errno, "EDQUOT", errno.ENOSPC)}
+#: the group holding each ensemble's starting positions, stored before its first step
+_START_GROUP = "polkit_start"
+#: the attribute of an ensemble's group holding the step at which its own gate was settled
+_GATE_STEPS = "polkit_gate_steps"
 
+#: what to do when the checkpoint has no room left (the preflight checks stop before writing)
+ROOM_FIX = (
+    "make room (free disk space, or raise the file-size limit), then continue the run with "
+    "resume=True (--resume on the command line); the steps stored so far are kept"
+)
+#: what to do when a write failed half-way (the disk filled up during a step)
+_FAILED_WRITE_NOTE = (
+    "the disk filled up while a step was being written, so the last step may not have "
+    "been stored; once there is room, continue the run with resume=True (--resume on the "
+    "command line); if this run's checkpoint can no longer be read, remove it and start afresh"
+)
 
 
 # ----------------------------------------------------------------------------------------
-# seeds and checkpoints
+# seeds
 # ----------------------------------------------------------------------------------------
 def root_seed(seed) -> np.random.SeedSequence:
     """The root :class:`~numpy.random.SeedSequence` of a run from an int, a sequence or None.
@@ -80,7 +94,8 @@ def root_seed(seed) -> np.random.SeedSequence:
     )
 
 
-def _entropy_int(seq: np.random.SeedSequence) -> int:
+def entropy_int(seq: np.random.SeedSequence) -> int:
+    """The entropy of a seed sequence as one int (a sequence of words packed little-endian)."""
     ent = seq.entropy
     if isinstance(ent, (int, np.integer)):
         return int(ent)
@@ -102,41 +117,36 @@ def _checkpoint_meta(space, n_walkers, seed_seq) -> dict[str, str]:
     }
 
 
-def _open_checkpoint(path: Path, space, n_walkers, seed, resume,
-                     identity: dict[str, str] | None = None) -> np.random.SeedSequence:
-    """Prepare the checkpoint file; returns the root seed sequence to use.
-
-    A new checkpoint is written whole to a temporary file in the same folder and then
-    renamed into place, so a kill while it is created leaves either no checkpoint or a
-    complete one.  The caller holds the output folder's lock
-    (:mod:`polkit.folder_lock`), so no other run is using an existing file.
-    """
+# ----------------------------------------------------------------------------------------
+# the file: made whole, or checked on resume
+# ----------------------------------------------------------------------------------------
+def _create(path: Path, space, n_walkers, seed, identity) -> np.random.SeedSequence:
+    """Write a new checkpoint whole to a temporary file, then rename it into place."""
     import h5py
 
-    if path.exists() and not resume:
-        raise ConfigError(
-            "a checkpoint of an earlier run is here; pass resume=True (--resume) to continue "
-            "it, or write this run to another folder",
-            path=path,
-        )
-    if not path.exists():
-        seed_seq = root_seed(seed)
-        check_room(path, _CHECKPOINT_METADATA_BYTES, purpose="a new checkpoint")
-        with _checkpoint_writes(path):
-            path.parent.mkdir(parents=True, exist_ok=True)
-            tmp = path.with_name(f".{path.name}.{os.getpid()}.new")
-            try:
-                with h5py.File(tmp, "w") as fh:
-                    fh.attrs.update(_checkpoint_meta(space, n_walkers, seed_seq))
-                    if identity is not None:
-                        fh.attrs[IDENTITY_ATTR] = json.dumps(identity)
-                with open(tmp, "rb+") as fh:
-                    os.fsync(fh.fileno())
-                os.replace(tmp, path)
-            finally:
-                with contextlib.suppress(OSError):
-                    tmp.unlink()
-        return seed_seq
+    seed_seq = root_seed(seed)
+    check_room(path, _CHECKPOINT_METADATA_BYTES, purpose="a new checkpoint")
+    with _checkpoint_writes(path):
+        path.parent.mkdir(parents=True, exist_ok=True)
+        tmp = path.with_name(f".{path.name}.{os.getpid()}.new")
+        try:
+            with h5py.File(tmp, "w") as fh:
+                fh.attrs.update(_checkpoint_meta(space, n_walkers, seed_seq))
+                if identity is not None:
+                    fh.attrs[IDENTITY_ATTR] = json.dumps(identity)
+            with open(tmp, "rb+") as fh:
+                os.fsync(fh.fileno())
+            os.replace(tmp, path)
+        finally:
+            with contextlib.suppress(OSError):
+                tmp.unlink()
+    return seed_seq
+
+
+def _read_attrs(path: Path) -> dict:
+    """The root attributes of an existing checkpoint, refused when it is not polkit's."""
+    import h5py
+
     try:
         with h5py.File(path, "r") as fh:
             attrs = {k: fh.attrs[k] for k in fh.attrs}
@@ -159,6 +169,12 @@ def _open_checkpoint(path: Path, space, n_walkers, seed, resume,
             "attribute); choose another checkpoint path",
             path=path,
         )
+    return attrs
+
+
+def _verify(path: Path, space, n_walkers, seed, identity) -> np.random.SeedSequence:
+    """Check an existing checkpoint against this run; returns its stored root seed."""
+    attrs = _read_attrs(path)
 
     def text(key):
         value = attrs[key]
@@ -185,7 +201,7 @@ def _open_checkpoint(path: Path, space, n_walkers, seed, resume,
     stored = np.random.SeedSequence(entropy, spawn_key=spawn_key)
     if seed is not None:
         asked = root_seed(seed)
-        if _entropy_int(asked) != _entropy_int(stored) or tuple(asked.spawn_key) != spawn_key:
+        if entropy_int(asked) != entropy_int(stored) or tuple(asked.spawn_key) != spawn_key:
             raise ConfigError(
                 f"the checkpoint was started with seed entropy {entropy} (spawn key "
                 f"{list(spawn_key)}); resuming with a different seed would not reproduce it "
@@ -197,91 +213,6 @@ def _open_checkpoint(path: Path, space, n_walkers, seed, resume,
         compare_identity(path, text(IDENTITY_ATTR) if IDENTITY_ATTR in attrs else None,
                          identity)
     return stored
-
-
-#: the group holding each ensemble's starting positions, stored before its first step
-_START_GROUP = "polkit_start"
-
-
-def _stored_start(path: Path | None, name: str) -> np.ndarray | None:
-    """The starting ensemble stored for ensemble ``name`` (None when there is none)."""
-    if path is None or not path.exists():
-        return None
-    import h5py
-
-    with h5py.File(path, "r") as fh:
-        g = fh.get(_START_GROUP)
-        return None if g is None or name not in g else g[name][()]
-
-
-def _store_start(path: Path, name: str, p0: np.ndarray) -> None:
-    """Keep ensemble ``name``'s starting positions before its first step is taken."""
-    import h5py
-
-    check_room(path, _CHECKPOINT_METADATA_BYTES + p0.nbytes, purpose="the starting ensemble",
-               fix=_ROOM_FIX)
-    with _checkpoint_writes(path), h5py.File(path, "a") as fh:
-        g = fh.require_group(_START_GROUP)
-        if name in g:
-            del g[name]
-        g.create_dataset(name, data=np.asarray(p0, dtype=float))
-        fh.flush()
-
-
-def prepare_checkpoint(path: Path, space, n_walkers: int, seed, resume: bool,
-                       identity=None) -> np.random.SeedSequence:
-    """Create the checkpoint (or check an existing one on resume) before a run starts.
-
-    ``identity`` is the job's part of the fit identity (see
-    :func:`polkit.inference.identity.fit_identity`); the effective priors and versions are
-    added here.  Returns the run's root seed, which is stored in the checkpoint: a job
-    that does something random before the run (a pre-burn) takes it from here, so a run
-    killed before its first step resumes to the same start.
-    """
-    full = fit_identity(space, identity) if identity is not None else None
-    return _open_checkpoint(Path(path), space, n_walkers, seed, resume, full)
-
-
-def start_stored(path: Path | None) -> bool:
-    """Whether the checkpoint holds the run's starting ensembles (or steps already)."""
-    if path is None or not Path(path).exists():
-        return False
-    import h5py
-
-    with h5py.File(path, "r") as fh:
-        if _START_GROUP in fh and "ensemble0" in fh[_START_GROUP]:
-            return True
-        g = fh.get("ensemble0")
-        return g is not None and int(g.attrs.get("iteration", 0)) > 0
-
-
-def _group_attr(path: Path | None, group: str, key: str, value=None):
-    """Read (value None) or write a polkit attribute on an ensemble's HDF5 group."""
-    if path is None:
-        return None
-    import h5py
-
-    if value is None:
-        with h5py.File(path, "r") as fh:
-            return fh[group].attrs.get(key) if group in fh else None
-    check_room(path, _CHECKPOINT_METADATA_BYTES, purpose="the run's progress record",
-               fix=_ROOM_FIX)
-    with _checkpoint_writes(path), h5py.File(path, "a") as fh:
-        fh[group].attrs[key] = value
-    return value
-
-
-#: what to do when the checkpoint has no room left (the preflight checks stop before writing)
-_ROOM_FIX = (
-    "make room (free disk space, or raise the file-size limit), then continue the run with "
-    "resume=True (--resume on the command line); the steps stored so far are kept"
-)
-#: what to do when a write failed half-way (the disk filled up during a step)
-_FAILED_WRITE_NOTE = (
-    "the disk filled up while a step was being written, so the last step may not have "
-    "been stored; once there is room, continue the run with resume=True (--resume on the "
-    "command line); if this run's checkpoint can no longer be read, remove it and start afresh"
-)
 
 
 @contextlib.contextmanager
@@ -307,8 +238,131 @@ def _checkpoint_writes(path: Path):
         raise clear from exc
 
 
+class Checkpoint:
+    """The HDF5 checkpoint of one run: its file, starting ensembles, progress and room.
+
+    Build one with :meth:`open` (which makes the file, or checks it on resume); the
+    sampler's ensembles then take their backends (:meth:`backend`) from it.  Every write
+    goes through :meth:`writes`, which turns HDF5's I/O failures into one clear
+    :class:`OSError`.
+    """
+
+    def __init__(self, path: str | os.PathLike):
+        self.path = Path(path)
+
+    @classmethod
+    def open(cls, path: str | os.PathLike, space, n_walkers: int, seed, resume: bool,
+             identity: dict[str, str] | None = None
+             ) -> tuple[Checkpoint, np.random.SeedSequence]:
+        """Prepare the checkpoint file; returns it and the root seed sequence to use.
+
+        A new checkpoint is written whole to a temporary file in the same folder and then
+        renamed into place, so a kill while it is created leaves either no checkpoint or a
+        complete one.  The caller holds the output folder's lock
+        (:mod:`polkit.folder_lock`), so no other run is using an existing file.
+        ``identity`` is the full fit identity (:func:`~polkit.inference.identity.fit_identity`).
+        """
+        path = Path(path)
+        if path.exists() and not resume:
+            raise ConfigError(
+                "a checkpoint of an earlier run is here; pass resume=True (--resume) to "
+                "continue it, or write this run to another folder",
+                path=path,
+            )
+        if not path.exists():
+            return cls(path), _create(path, space, n_walkers, seed, identity)
+        return cls(path), _verify(path, space, n_walkers, seed, identity)
+
+    def writes(self):
+        """Context manager raising the I/O failures of HDF5 writes as one clear error."""
+        return _checkpoint_writes(self.path)
+
+    def backend(self, name: str):
+        """The emcee backend of ensemble ``name``.
+
+        See :mod:`polkit.inference.checkpoint_backend`.
+        """
+        return make_backend(self.path, name)
+
+    def check_room(self, n_bytes: int, purpose: str) -> None:
+        """Raise a clear :class:`OSError` unless ``n_bytes`` more fit in the checkpoint."""
+        check_room(self.path, n_bytes, purpose=purpose, fix=ROOM_FIX)
+
+    # -- the starting ensembles ----------------------------------------------------------
+    def stored_start(self, name: str) -> np.ndarray | None:
+        """The starting ensemble stored for ensemble ``name`` (None when there is none)."""
+        if not self.path.exists():
+            return None
+        import h5py
+
+        with h5py.File(self.path, "r") as fh:
+            g = fh.get(_START_GROUP)
+            return None if g is None or name not in g else g[name][()]
+
+    def store_start(self, name: str, p0: np.ndarray) -> None:
+        """Keep ensemble ``name``'s starting positions before its first step is taken."""
+        import h5py
+
+        self.check_room(_CHECKPOINT_METADATA_BYTES + p0.nbytes, "the starting ensemble")
+        with self.writes(), h5py.File(self.path, "a") as fh:
+            g = fh.require_group(_START_GROUP)
+            if name in g:
+                del g[name]
+            g.create_dataset(name, data=np.asarray(p0, dtype=float))
+            fh.flush()
+
+    # -- the run plan's progress ---------------------------------------------------------
+    def gate_steps(self, name: str):
+        """The step at which ensemble ``name``'s own gate was settled (None: not yet)."""
+        import h5py
+
+        with h5py.File(self.path, "r") as fh:
+            return fh[name].attrs.get(_GATE_STEPS) if name in fh else None
+
+    def record_gate_steps(self, name: str, steps: int) -> None:
+        """Record that ensemble ``name``'s own gate was settled at ``steps``."""
+        import h5py
+
+        self.check_room(_CHECKPOINT_METADATA_BYTES, "the run's progress record")
+        with self.writes(), h5py.File(self.path, "a") as fh:
+            fh[name].attrs[_GATE_STEPS] = steps
+
+    # -- room for the next steps ---------------------------------------------------------
+    def growth(self, group: str, n_walkers: int, ndim: int,
+               n_extras: int) -> tuple[int, list[ChunkRows]]:
+        """Stored steps of ``group`` and how its chain, log-prob and extras datasets grow.
+
+        Chunk shapes are read from the file; the extras dataset, created at the first
+        stored step, gets the shape :func:`~polkit.inference.checkpoint_backend.step_chunks`
+        will give it.
+        """
+        import h5py
+
+        tails = {"chain": (ndim,), "log_prob": ()}
+        if n_extras:
+            tails["blobs"] = (n_extras,)
+        growth = []
+        with h5py.File(self.path, "r") as fh:
+            g = fh.get(group)
+            start = int(g.attrs.get("iteration", 0)) if g is not None else 0
+            for name, tail in tails.items():
+                ds = g.get(name) if g is not None else None
+                if ds is not None and ds.chunks:
+                    growth.append(_chunk_rows(ds.chunks, ds.shape[1:], ds.dtype.itemsize))
+                else:
+                    itemsize = 8 * math.prod(tail)
+                    chunks = step_chunks(n_walkers, 8 * math.prod(tail))
+                    growth.append(_chunk_rows(chunks, (n_walkers,), itemsize))
+        return start, growth
+
+    @staticmethod
+    def with_margin(n_bytes: int) -> int:
+        """``n_bytes`` of chain data plus the margin kept for HDF5's own records."""
+        return int(n_bytes * (1.0 + _CHECKPOINT_MARGIN)) + _CHECKPOINT_METADATA_BYTES
+
+
 @dataclass(frozen=True)
-class _ChunkRows:
+class ChunkRows:
     """How one per-step dataset of the checkpoint grows: HDF5 allocates a chunk whole when
     it is first written, so the dataset grows by ``row_bytes`` every ``rows`` steps."""
 
@@ -321,327 +375,36 @@ class _ChunkRows:
         return first_rows * self.row_bytes
 
 
-def _chunk_rows(chunks, shape_tail, itemsize) -> _ChunkRows:
+def _chunk_rows(chunks, shape_tail, itemsize) -> ChunkRows:
     across = math.prod(-(-n // c) for n, c in zip(shape_tail, chunks[1:], strict=True))
-    return _ChunkRows(int(chunks[0]), int(across * math.prod(chunks) * itemsize))
+    return ChunkRows(int(chunks[0]), int(across * math.prod(chunks) * itemsize))
 
 
-def _with_margin(n_bytes: int) -> int:
-    return int(n_bytes * (1.0 + _CHECKPOINT_MARGIN)) + _CHECKPOINT_METADATA_BYTES
+# ----------------------------------------------------------------------------------------
+# for jobs that act before the run (a pre-burn drawn from the run's seed)
+# ----------------------------------------------------------------------------------------
+def prepare_checkpoint(path: Path, space, n_walkers: int, seed, resume: bool,
+                       identity=None) -> np.random.SeedSequence:
+    """Create the checkpoint (or check an existing one on resume) before a run starts.
 
-
-def _growth(path: Path, group: str, n_steps: int, n_walkers: int, ndim: int,
-            n_extras: int) -> tuple[int, list[_ChunkRows]]:
-    """Stored steps of ``group`` and how its chain, log-prob and extras datasets grow.
-
-    Chunk shapes are read from the file; the extras dataset, created at the first stored
-    step, gets the shape :func:`_step_chunks` will give it.
+    ``identity`` is the job's part of the fit identity (see
+    :func:`polkit.inference.identity.fit_identity`); the effective priors and versions are
+    added here.  Returns the run's root seed, which is stored in the checkpoint: a job
+    that does something random before the run (a pre-burn) takes it from here, so a run
+    killed before its first step resumes to the same start.
     """
-    import h5py
-
-    tails = {"chain": (ndim,), "log_prob": ()}
-    if n_extras:
-        tails["blobs"] = (n_extras,)
-    growth = []
-    with h5py.File(path, "r") as fh:
-        g = fh.get(group)
-        start = int(g.attrs.get("iteration", 0)) if g is not None else 0
-        for name, tail in tails.items():
-            ds = g.get(name) if g is not None else None
-            if ds is not None and ds.chunks:
-                growth.append(_chunk_rows(ds.chunks, ds.shape[1:], ds.dtype.itemsize))
-            else:
-                itemsize = 8 * math.prod(tail)
-                chunks = _step_chunks(n_walkers, 8 * math.prod(tail))
-                growth.append(_chunk_rows(chunks, (n_walkers,), itemsize))
-    return start, growth
+    full = fit_identity(space, identity) if identity is not None else None
+    return Checkpoint.open(Path(path), space, n_walkers, seed, resume, full)[1]
 
 
-#: target size of one chunk of a per-step dataset of the checkpoint
-_CHUNK_BYTES = 64 * 1024
-
-
-def _step_chunks(n_walkers: int, walker_bytes: int) -> tuple[int, int]:
-    """Chunk shape ``(steps, walkers)`` of a per-step dataset: every walker in one chunk.
-
-    HDF5 writes a dirty chunk whole when the file is flushed; with the chunk spanning all
-    walkers (and parameters) one stored step dirties one chunk, not a dozen (h5py's own
-    guess splits the walker and parameter axes), which makes the flush after each step
-    about three times cheaper.  About 64 kB per chunk.
-    """
-    rows = max(1, min(1024, _CHUNK_BYTES // max(1, n_walkers * walker_bytes)))
-    return rows, int(n_walkers)
-
-
-
-
-class _OpenFile:
-    """Context manager handing out an already open h5py file without closing it."""
-
-    def __init__(self, handle):
-        self.handle = handle
-
-    def __enter__(self):
-        return self.handle
-
-    def __exit__(self, *exc):
+def start_stored(path: Path | None) -> bool:
+    """Whether the checkpoint holds the run's starting ensembles (or steps already)."""
+    if path is None or not Path(path).exists():
         return False
-
-
-_UNSET = object()
-
-
-def _checkpoint_backend(path: Path, name: str):
-    """An emcee HDFBackend that keeps the file open while sampling and flushes every step.
-
-    emcee's backend reopens the file several times per step; holding it open during
-    a stretch of sampling and flushing after each stored step keeps every finished
-    step on disk at a fraction of the cost.
-    """
-    import emcee
     import h5py
 
-    class _Backend(emcee.backends.HDFBackend):
-        _handle = None
-        #: called before anything of a step is written
-        before_step = None
-
-        @contextlib.contextmanager
-        def session(self):
-            self._handle = h5py.File(self.filename, "a")
-            self._datasets = self._cache = None
-            self._pending = []
-            self._flushed_at = time.monotonic()
-            try:
-                yield
-                self.flush_pending()
-            except BaseException:
-                # the finished steps still waiting in memory go to disk first (a stop on
-                # request, an interrupt, a full disk found before a step): they were
-                # checked for room when they were taken
-                try:
-                    self.flush_pending()
-                except (OSError, RuntimeError) as exc:
-                    log.debug("could not write the last steps to %s: %s", self.filename, exc)
-                handle, self._handle = self._handle, None
-                # after a failed write HDF5 may be unable to flush on close; the error in
-                # flight says what went wrong, so a second one from close is dropped
-                try:
-                    handle.close()
-                except (OSError, RuntimeError) as exc:
-                    log.debug("closing %s after a failed step: %s", self.filename, exc)
-                raise
-            handle, self._handle = self._handle, None
-            handle.close()
-
-        def open(self, mode="r"):
-            if self._handle is not None:
-                return _OpenFile(self._handle)
-            return super().open(mode)
-
-        _datasets = None
-        _cache = None
-
-        def reset(self, nwalkers, ndim):
-            # emcee's layout (HDFBackend.reset), with chunks that hold every walker of a
-            # run of steps (see _step_chunks)
-            with self.open("a") as f:
-                if self.name in f:
-                    del f[self.name]
-                g = f.create_group(self.name)
-                g.attrs["version"] = emcee.__version__
-                g.attrs["nwalkers"] = nwalkers
-                g.attrs["ndim"] = ndim
-                g.attrs["has_blobs"] = False
-                g.attrs["iteration"] = 0
-                g.create_dataset("accepted", data=np.zeros(nwalkers))
-                rows, _ = _step_chunks(nwalkers, 8 * ndim)
-                g.create_dataset("chain", (0, nwalkers, ndim), maxshape=(None, nwalkers, ndim),
-                                 dtype=self.dtype, chunks=(rows, nwalkers, ndim))
-                rows, _ = _step_chunks(nwalkers, 8)
-                g.create_dataset("log_prob", (0, nwalkers), maxshape=(None, nwalkers),
-                                 dtype=self.dtype, chunks=(rows, nwalkers))
-
-        def grow(self, ngrow, blobs):
-            self._datasets = None  # grow may create the blobs dataset
-            if blobs is not None:
-                self._check_blobs(blobs)
-                with self.open("a") as f:
-                    g = f[self.name]
-                    if not g.attrs["has_blobs"]:  # created as emcee does, chunked as above
-                        nwalkers = int(g.attrs["nwalkers"])
-                        dt = np.dtype((blobs.dtype, blobs.shape[1:]))
-                        g.create_dataset("blobs", (int(g.attrs["iteration"]), nwalkers),
-                                         maxshape=(None, nwalkers), dtype=dt,
-                                         chunks=_step_chunks(nwalkers, dt.itemsize))
-                        g.attrs["has_blobs"] = True
-            super().grow(ngrow, blobs)
-            if self._handle is not None:
-                # the new shape goes to disk before any step waits in memory: a stretch that
-                # stops before its first flush leaves nothing dirty for the file's close
-                self._handle.flush()
-
-        def save_step(self, state, accepted):
-            if self.before_step is not None:
-                self.before_step()
-            if self._handle is None:
-                super().save_step(state, accepted)
-                return
-            # emcee's own save_step reopens the group and its datasets and rereads their
-            # attributes several times per step; with the file held open the same writes
-            # (chain, log_prob, blobs, accepted, random state, iteration, in emcee's layout)
-            # are made through handles looked up once per stretch
-            if self._datasets is None:
-                g = self._handle[self.name]
-                self._datasets = {k: _RowWriter(g[k]) for k in ("chain", "log_prob", "blobs")
-                                  if k in g}
-                self._cache = {"group": g, "iteration": int(g.attrs["iteration"]),
-                               "accepted": g["accepted"][:],
-                               "accepted_ds": _WholeWriter(g["accepted"]),
-                               "random_state": {}, "attrs": _AttrWriter(g)}
-            d, c = self._datasets, self._cache
-            if state.coords.shape != d["chain"].row_shape:
-                raise ValueError(f"invalid coordinate dimensions; expected "
-                                 f"{d['chain'].row_shape}")
-            if (state.blobs is None) != ("blobs" not in d):
-                raise ValueError("blobs appeared or vanished between steps")
-            # kept in memory (copies: emcee reuses nothing, but callers may) until the batch
-            # is written; the random state kept is the one after this step
-            self._pending.append((np.array(state.coords, dtype=float),
-                                  np.array(state.log_prob, dtype=float),
-                                  None if state.blobs is None else np.array(state.blobs)))
-            c["accepted"] = c["accepted"] + accepted
-            c["pending_state"] = state.random_state
-            if self.flush_now or time.monotonic() - self._flushed_at >= FLUSH_SECONDS:
-                self.flush_now = False
-                self.flush_pending()
-
-        _pending = ()
-        _flushed_at = 0.0
-        #: set before a step that must be written and flushed at once (a new chunk)
-        flush_now = False
-
-        def flushed_steps(self, default: int) -> int:
-            """Steps written to the file so far in this stretch (``default`` before any)."""
-            return self._cache["iteration"] if self._cache is not None else default
-
-        def drop_pending(self):
-            """Forget the steps waiting in memory (they do not fit on disk)."""
-            if self._pending:
-                log.info("%d finished step(s) of %s could not be stored; a resumed run "
-                         "repeats them", len(self._pending), self.name)
-            self._pending = []
-
-        def flush_pending(self):
-            """Write the steps kept in memory in one batch, with the state after the last."""
-            if not self._pending or self._handle is None:
-                return
-            d, c = self._datasets, self._cache
-            it = c["iteration"]
-            rows = self._pending
-            d["chain"].write_rows(it, np.stack([r[0] for r in rows]))
-            d["log_prob"].write_rows(it, np.stack([r[1] for r in rows]))
-            if rows[0][2] is not None:
-                d["blobs"].write_rows(it, np.stack([r[2] for r in rows]))
-            c["accepted_ds"].write(c["accepted"])
-            # the random state as emcee stores it; parts unchanged since the last write of
-            # this stretch (the generator's name, the cached Gaussian) are not rewritten
-            written, attrs = c["random_state"], c["attrs"]
-            for i, v in enumerate(c["pending_state"]):
-                key = f"random_state_{i}"
-                if isinstance(v, np.ndarray) or written.get(key, _UNSET) != v:
-                    attrs.set(key, v)
-                    written[key] = v
-            attrs.set("iteration", it + len(rows))
-            c["iteration"] = it + len(rows)
-            self._pending = []
-            self._handle.flush()
-            self._flushed_at = time.monotonic()
-
-    return _Backend(os.fspath(path), name=name)
-
-
-class _RowWriter:
-    """Writes one step (row) of a growing dataset through HDF5's low-level calls.
-
-    The same bytes as ``dataset[i] = value``, without h5py's per-call selection
-    machinery (about a third of the time).  Values of another dtype or shape fall back
-    to h5py's own assignment.
-    """
-
-    def __init__(self, dataset):
-        from h5py import h5s
-
-        self.dataset = dataset
-        self.dtype = dataset.dtype  # h5py looks both up in the file at every access
-        self.row_shape = tuple(dataset.shape[1:])
-        self._file_space = dataset.id.get_space()
-        self._memory_space = h5s.create_simple(self.row_shape or (1,))
-        self._count = (1, *self.row_shape)
-
-    def write_rows(self, row: int, values: np.ndarray) -> None:
-        """Write ``len(values)`` consecutive steps from ``row`` on in one call."""
-        from h5py import h5s
-
-        arr = np.asarray(values)
-        if arr.dtype != self.dtype or arr.shape[1:] != self.row_shape:
-            self.dataset[row : row + len(arr)] = values
-            return
-        space = self.dataset.id.get_space()
-        space.select_hyperslab((row,) + (0,) * len(self.row_shape), arr.shape)
-        self.dataset.id.write(h5s.create_simple(arr.shape), space, np.ascontiguousarray(arr))
-
-    def write(self, row: int, value) -> None:
-        arr = np.asarray(value)
-        if arr.dtype != self.dtype or arr.shape != self.row_shape:
-            self.dataset[row] = value
-            return
-        self._file_space.select_hyperslab((row,) + (0,) * len(self.row_shape), self._count)
-        self.dataset.id.write(self._memory_space, self._file_space,
-                              np.ascontiguousarray(arr))
-
-
-class _WholeWriter:
-    """``dataset[:] = value`` through the low-level call when dtype and shape match."""
-
-    def __init__(self, dataset):
-        self.dataset = dataset
-        self.dtype, self.shape = dataset.dtype, dataset.shape
-
-    def write(self, value) -> None:
-        from h5py import h5s
-
-        arr = np.asarray(value)
-        if arr.dtype != self.dtype or arr.shape != self.shape:
-            self.dataset[:] = value
-            return
-        self.dataset.id.write(h5s.ALL, h5s.ALL, np.ascontiguousarray(arr))
-
-
-class _AttrWriter:
-    """Rewrites attributes of one HDF5 object in place when their type and shape stay.
-
-    ``attrs[key] = value`` makes a new attribute and replaces the old one; writing into
-    the existing one stores the same value at a fraction of the cost.  A new key, or a
-    value of another type or shape, goes through h5py's assignment.
-    """
-
-    def __init__(self, obj):
-        self.obj = obj
-        self._open: dict[str, tuple] = {}  # key -> (attribute, dtype, shape)
-
-    def set(self, key: str, value) -> None:
-        from h5py import h5a
-
-        found = self._open.get(key)
-        if found is None and key in self.obj.attrs:
-            attr = h5a.open(self.obj.id, key.encode())
-            found = self._open[key] = (attr, attr.dtype, attr.shape)
-        arr = np.asarray(value)
-        if (found is None or arr.dtype.kind not in "iuf" or found[1] != arr.dtype
-                or found[2] != arr.shape):
-            self._open.pop(key, None)
-            self.obj.attrs[key] = value
-            return
-        found[0].write(np.ascontiguousarray(arr))
-
+    with h5py.File(path, "r") as fh:
+        if _START_GROUP in fh and "ensemble0" in fh[_START_GROUP]:
+            return True
+        g = fh.get("ensemble0")
+        return g is not None and int(g.attrs.get("iteration", 0)) > 0

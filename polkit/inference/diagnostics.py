@@ -367,6 +367,24 @@ def convergence_gate(
     window = chain[start:]
     tau = autocorr_time(window)
     reasons = []
+    tau_max = _length_reasons(tau, n, autocorr_factor, names, reasons)
+    change = math.nan
+    if tau_rtol is not None:
+        change = _tau_change_reasons(tau, previous_tau, tau_rtol, reasons)
+    acceptance = walker_acceptance(window)
+    stuck = _walker_reasons(acceptance, log_prob[start:], chain.shape[2], acceptance_range,
+                            reasons)
+    burn, thin = burn_and_thin(tau_max, n)
+    ess = group = None
+    if not reasons and ess_target is not None:
+        ess, group = _draws_reasons(chain[burn::thin], names, ess_target, rhat_max,
+                                    walker_groups, reasons)
+    return GateCheck(n, tau, change, acceptance, stuck, not reasons, reasons, burn, thin,
+                     ess, group)
+
+
+def _length_reasons(tau, n, autocorr_factor, names, reasons) -> float:
+    """Gate test 1 (the chain long enough); returns the largest ``tau``."""
     jmax = int(np.argmax(np.where(np.isfinite(tau), tau, np.inf)))
     tau_max = float(tau[jmax])
     if not np.isfinite(tau_max):
@@ -378,20 +396,28 @@ def convergence_gate(
             f"time ({autocorr_factor * tau_max:.0f} steps; tau = {tau_max:.1f} for "
             f"{names[jmax]!r})"
         )
+    return tau_max
+
+
+def _tau_change_reasons(tau, previous_tau, tau_rtol, reasons) -> float:
+    """Gate test 5 (``tau`` settled); returns the largest relative change (NaN: none)."""
     change = math.nan
-    if tau_rtol is not None:
-        if previous_tau is None:
-            reasons.append("no previous autocorrelation estimate to compare with")
-        else:
-            with np.errstate(invalid="ignore", divide="ignore"):
-                rel = np.abs(tau - previous_tau) / tau
-            change = float(np.max(np.where(np.isfinite(rel), rel, np.inf)))
-            if not change < tau_rtol:
-                reasons.append(
-                    f"autocorrelation time still changing ({100 * change:.1f} % since the "
-                    f"previous check; limit {100 * tau_rtol:g} %)"
-                )
-    acceptance = walker_acceptance(window)
+    if previous_tau is None:
+        reasons.append("no previous autocorrelation estimate to compare with")
+    else:
+        with np.errstate(invalid="ignore", divide="ignore"):
+            rel = np.abs(tau - previous_tau) / tau
+        change = float(np.max(np.where(np.isfinite(rel), rel, np.inf)))
+        if not change < tau_rtol:
+            reasons.append(
+                f"autocorrelation time still changing ({100 * change:.1f} % since the "
+                f"previous check; limit {100 * tau_rtol:g} %)"
+            )
+    return change
+
+
+def _walker_reasons(acceptance, log_prob, ndim, acceptance_range, reasons) -> np.ndarray:
+    """Gate test 2 (acceptance in range, no stuck walker); returns the stuck walkers."""
     lo, hi = acceptance_range
     outside = np.flatnonzero((acceptance < lo) | (acceptance > hi))
     if outside.size:
@@ -400,33 +426,33 @@ def convergence_gate(
             f"(range {np.nanmin(acceptance):.3f}-{np.nanmax(acceptance):.3f}; walkers "
             f"{outside[:10].tolist()})"
         )
-    stuck = stuck_walkers(acceptance, log_prob[start:], chain.shape[2])
+    stuck = stuck_walkers(acceptance, log_prob, ndim)
     if stuck.size:
         reasons.append(
             f"stuck walkers {stuck[:10].tolist()} (acceptance < 0.05 or log-probability far "
             "below the rest)"
         )
-    burn, thin = burn_and_thin(tau_max, n)
-    ess = group = None
-    if not reasons and ess_target is not None:
-        kept = chain[burn::thin]
-        ess = arviz_diagnostics(_draws_dataset(kept, names))
-        targets = ess_targets(names, ess_target)
-        for kind in ("ess_bulk", "ess_tail"):
-            short = [f"{p} {ess[kind][p]:.0f}" for p in names
-                     if not ess[kind][p] >= targets[p]]
-            if short:
-                reasons.append(
-                    f"{kind.replace('ess_', '')} ESS below the target "
-                    f"({', '.join(short)}; target {_target_text(targets)})"
-                )
-        group = grouped_rhat(kept, names, walker_groups)
-        high = [f"{p} {v:.4f}" for p, v in group.items() if not v <= rhat_max]
-        if high:
-            reasons.append(f"R-hat over groups of walkers above {rhat_max:g} "
-                           f"({', '.join(high)})")
-    return GateCheck(n, tau, change, acceptance, stuck, not reasons, reasons, burn, thin,
-                     ess, group)
+    return stuck
+
+
+def _draws_reasons(kept, names, ess_target, rhat_max, walker_groups, reasons):
+    """Gate tests 3 and 4 on the reported draws; returns ArviZ's numbers and grouped R-hat."""
+    ess = arviz_diagnostics(_draws_dataset(kept, names))
+    targets = ess_targets(names, ess_target)
+    for kind in ("ess_bulk", "ess_tail"):
+        short = [f"{p} {ess[kind][p]:.0f}" for p in names
+                 if not ess[kind][p] >= targets[p]]
+        if short:
+            reasons.append(
+                f"{kind.replace('ess_', '')} ESS below the target "
+                f"({', '.join(short)}; target {_target_text(targets)})"
+            )
+    group = grouped_rhat(kept, names, walker_groups)
+    high = [f"{p} {v:.4f}" for p, v in group.items() if not v <= rhat_max]
+    if high:
+        reasons.append(f"R-hat over groups of walkers above {rhat_max:g} "
+                       f"({', '.join(high)})")
+    return ess, group
 
 
 def _target_text(targets: Mapping[str, float]) -> str:

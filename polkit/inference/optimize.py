@@ -173,8 +173,6 @@ def find_map(
     MapResult
     """
     rng = np.random.default_rng(0) if rng is None else rng
-    bounds = space.bounds
-    s = space.scales
     caps = np.array([p.prior.width for p in space])
     start, f_start, note = _starting_point(log_post, space, x0, rng)
 
@@ -182,39 +180,56 @@ def find_map(
         return _scalar_log_post(log_post, x)
 
     if residuals is not None:
-        r0 = np.asarray(residuals(start), dtype=float)
-        if not np.all(np.isfinite(r0)):
-            raise FitError(
-                f"the residuals are not finite at the start ({describe_point(space, start)})"
-            )
+        found = _least_squares_map(f, residuals, space, start, caps, note)
+        if isinstance(found, MapResult):
+            return found
+        note = found
+    return _minimize_map(f, space, start, f_start, caps, note)
 
-        def fun(x):
-            r = np.asarray(residuals(x), dtype=float)
-            return np.where(np.isfinite(r), r, 1e100)
 
-        res = optimize.least_squares(
-            fun, start, bounds=(bounds[:, 0], bounds[:, 1]), x_scale=s, method="trf"
+def _least_squares_map(f, residuals, space, start, caps, note) -> MapResult | str:
+    """The mode by :func:`scipy.optimize.least_squares` within the prior bounds, or the
+    note to go on with when its optimum has zero posterior."""
+    bounds = space.bounds
+    s = space.scales
+    r0 = np.asarray(residuals(start), dtype=float)
+    if not np.all(np.isfinite(r0)):
+        raise FitError(
+            f"the residuals are not finite at the start ({describe_point(space, start)})"
         )
-        x = res.x
-        value = f(x)
-        if np.isfinite(value):
-            js = res.jac * s  # Jacobian in units of the typical scales
-            h = js.T @ js
-            ridge = 1e-10 * max(np.trace(h) / h.shape[0], 1e-300)
-            cov = np.linalg.pinv(h + ridge * np.eye(h.shape[0]), hermitian=True)
-            scale = s * np.sqrt(np.clip(np.diag(cov), 0.0, None))
-            bad = ~np.isfinite(scale) | (scale <= 0) | (scale > caps)
-            scale = np.where(bad, caps, scale)
-            if bad.any():
-                note += (
-                    "curvature undefined or weaker than the prior for "
-                    f"{[space.names[j] for j in np.flatnonzero(bad)]} (prior spread used); "
-                )
-            log.debug("least_squares MAP: %s", describe_point(space, x))
-            return MapResult(x, value, scale, bool(res.success), note + str(res.message))
-        note += "least-squares optimum has zero posterior; minimising -log_post instead; "
 
-    # -- minimize on -log_post in units of the typical scales ------------------------------
+    def fun(x):
+        r = np.asarray(residuals(x), dtype=float)
+        return np.where(np.isfinite(r), r, 1e100)
+
+    res = optimize.least_squares(
+        fun, start, bounds=(bounds[:, 0], bounds[:, 1]), x_scale=s, method="trf"
+    )
+    x = res.x
+    value = f(x)
+    if np.isfinite(value):
+        js = res.jac * s  # Jacobian in units of the typical scales
+        h = js.T @ js
+        ridge = 1e-10 * max(np.trace(h) / h.shape[0], 1e-300)
+        cov = np.linalg.pinv(h + ridge * np.eye(h.shape[0]), hermitian=True)
+        scale = s * np.sqrt(np.clip(np.diag(cov), 0.0, None))
+        bad = ~np.isfinite(scale) | (scale <= 0) | (scale > caps)
+        scale = np.where(bad, caps, scale)
+        if bad.any():
+            note += (
+                "curvature undefined or weaker than the prior for "
+                f"{[space.names[j] for j in np.flatnonzero(bad)]} (prior spread used); "
+            )
+        log.debug("least_squares MAP: %s", describe_point(space, x))
+        return MapResult(x, value, scale, bool(res.success), note + str(res.message))
+    return note + "least-squares optimum has zero posterior; minimising -log_post instead; "
+
+
+def _minimize_map(f, space, start, f_start, caps, note) -> MapResult:
+    """The mode by :func:`scipy.optimize.minimize` on ``-log_post`` in units of the typical
+    scales (L-BFGS-B, then Powell if that fails), with a finite-difference scale."""
+    bounds = space.bounds
+    s = space.scales
     penalty = -f_start + 1e10
 
     def objective(z):

@@ -9,8 +9,8 @@ table) that always carries the parameter's units::
     {"prior": "truncnormal", "mu": 3.4, "sigma": 0.2, "low": 3.0, "high": 4.0, "units": "1"}
 
 The log densities are normalised densities in the parameter's own units, so the
-log posterior is comparable between runs with the same priors.  Text is parsed by
-:mod:`tomllib` only; nothing is ever evaluated.
+log posterior is comparable between runs with the same priors.  Prior files (TOML) are
+read by :mod:`polkit.config.priors`.
 """
 
 from __future__ import annotations
@@ -18,18 +18,16 @@ from __future__ import annotations
 import json
 import math
 import os
-import tomllib
 from collections.abc import Iterable, Iterator, Mapping
 from dataclasses import dataclass, field
-from pathlib import Path
-from typing import Any
+from typing import Any, NoReturn
 
 import numpy as np
 from scipy import special
 
 from polkit.errors import ConfigError
 
-__all__ = ["PRIOR_KINDS", "Prior", "Parameter", "ParameterSpace", "apply_priors", "read_prior_file"]
+__all__ = ["PRIOR_KINDS", "Prior", "Parameter", "ParameterSpace"]
 
 #: The prior kinds and the numeric keys each one needs, in order.
 PRIOR_KINDS: dict[str, tuple[str, ...]] = {
@@ -180,6 +178,10 @@ class Prior:
             mismatched units, impossible values.
         """
         prefix = f"{key}." if key else ""
+
+        def refuse(message: str, sub: str) -> NoReturn:
+            raise ConfigError(message, path=path, key=prefix + sub)
+
         if not isinstance(entry, Mapping):
             raise ConfigError(
                 f"expected a table such as {{prior = \"uniform\", low = 0, high = 1, "
@@ -189,53 +191,29 @@ class Prior:
             )
         kind = entry.get("prior")
         if kind is None:
-            raise ConfigError(
-                f"missing 'prior'; expected one of {sorted(PRIOR_KINDS)}",
-                path=path,
-                key=prefix + "prior",
-            )
+            refuse(f"missing 'prior'; expected one of {sorted(PRIOR_KINDS)}", "prior")
         if not isinstance(kind, str) or kind not in PRIOR_KINDS:
-            raise ConfigError(
-                f"unknown prior kind {kind!r}; expected one of {sorted(PRIOR_KINDS)}",
-                path=path,
-                key=prefix + "prior",
-            )
+            refuse(f"unknown prior kind {kind!r}; expected one of {sorted(PRIOR_KINDS)}",
+                   "prior")
         allowed = {"prior", "units", *PRIOR_KINDS[kind]}
         for name in entry:
             if name not in allowed:
-                raise ConfigError(
-                    f"unknown key {name!r} in a {kind} prior; allowed keys are "
-                    f"{sorted(allowed)}",
-                    path=path,
-                    key=prefix + str(name),
-                )
+                refuse(f"unknown key {name!r} in a {kind} prior; allowed keys are "
+                       f"{sorted(allowed)}", str(name))
         if "units" not in entry:
             hint = f" (expected units = {units!r})" if units is not None else ""
-            raise ConfigError(
-                f"missing 'units'{hint}; every prior states its units",
-                path=path,
-                key=prefix + "units",
-            )
+            refuse(f"missing 'units'{hint}; every prior states its units", "units")
         given = entry["units"]
         if not isinstance(given, str):
-            raise ConfigError(
-                f"units must be text, got {given!r}", path=path, key=prefix + "units"
-            )
+            refuse(f"units must be text, got {given!r}", "units")
         if units is not None and given != units:
-            raise ConfigError(
-                f"units {given!r} do not match the parameter's units {units!r}; write the "
-                f"prior in {units!r} (exact spelling)",
-                path=path,
-                key=prefix + "units",
-            )
+            refuse(f"units {given!r} do not match the parameter's units {units!r}; write the "
+                   f"prior in {units!r} (exact spelling)", "units")
         values = {}
         for name in PRIOR_KINDS[kind]:
             if name not in entry:
-                raise ConfigError(
-                    f"a {kind} prior needs {list(PRIOR_KINDS[kind])}; '{name}' is missing",
-                    path=path,
-                    key=prefix + name,
-                )
+                refuse(f"a {kind} prior needs {list(PRIOR_KINDS[kind])}; '{name}' is missing",
+                       name)
             values[name] = _number(entry[name], key=prefix + name, path=path)
         try:
             return cls(kind, **values)
@@ -527,84 +505,3 @@ class ParameterSpace:
             Parameter(p.name, p.units, priors.get(p.name, p.prior), p.description, p.scale)
             for p in self._params
         )
-
-
-def read_prior_file(path: str | os.PathLike) -> dict[str, Any]:
-    """The tables of a TOML prior file, ``{name: {prior, numbers, units}}`` (not checked).
-
-    Raises
-    ------
-    ConfigError
-        Naming the file: missing, unreadable or not valid TOML.
-    """
-    path = Path(path)
-    try:
-        with open(path, "rb") as fh:
-            return tomllib.load(fh)
-    except FileNotFoundError:
-        raise ConfigError("prior file not found; check the path", path=path) from None
-    except OSError as exc:
-        raise ConfigError(f"cannot read the prior file: {exc}", path=path) from None
-    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
-        raise ConfigError(
-            f"not valid TOML ({exc}); expected tables like [name] with prior, numbers "
-            f"and units",
-            path=path,
-        ) from None
-
-
-def apply_priors(
-    space: ParameterSpace,
-    source: Mapping[str, Any] | str | os.PathLike,
-    *,
-    path: str | os.PathLike | None = None,
-) -> ParameterSpace:
-    """Replace priors of ``space`` with those read from a dict or a TOML file.
-
-    A TOML file holds one table per parameter::
-
-        [rabi_splitting]
-        prior = "uniform"
-        low = 5
-        high = 20
-        units = "meV"
-
-    Parameters
-    ----------
-    space
-        The parameter space whose priors are replaced (it is not modified).
-    source
-        A dict ``{name: {...}}`` or the path of a TOML file.
-    path
-        The file the dict came from, for error messages (taken from ``source`` when
-        it is a path).
-
-    Returns
-    -------
-    ParameterSpace
-        A new space; parameters absent from ``source`` keep their priors.
-
-    Raises
-    ------
-    ConfigError
-        Naming the file and key for unknown parameters (listing the known ones),
-        unknown keys, missing or mismatched units, impossible values or unknown
-        kinds; an unreadable or malformed TOML file.
-    """
-    if isinstance(source, (str, os.PathLike)):
-        source, path = read_prior_file(source), Path(source)
-    if not isinstance(source, Mapping):
-        raise ConfigError(
-            f"expected a dict of {{parameter name: prior table}}, got {type(source).__name__}",
-            path=path,
-        )
-    replaced = {}
-    for name, entry in source.items():
-        if name not in space:
-            raise ConfigError(
-                f"unknown parameter {name!r}; known parameters are {space.names}",
-                path=path,
-                key=name,
-            )
-        replaced[name] = Prior.from_dict(entry, units=space[name].units, path=path, key=name)
-    return space.with_priors(replaced)

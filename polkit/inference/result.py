@@ -41,7 +41,7 @@ from collections.abc import Mapping
 from datetime import UTC, datetime
 from importlib import metadata
 from pathlib import Path
-from typing import Any
+from typing import Any, NoReturn
 
 import numpy as np
 import xarray as xr
@@ -49,8 +49,8 @@ import xarray as xr
 from polkit._paths import shareable_attrs
 from polkit.errors import ConfigError, DataError
 from polkit.files import json_safe, write_json, write_netcdf
+from polkit.inference.output import SamplerOutput
 from polkit.inference.priors import ParameterSpace
-from polkit.inference.sampler import SamplerOutput
 
 __all__ = ["FitResult", "POSTERIOR_FILE", "SUMMARY_FILE"]
 
@@ -97,6 +97,102 @@ def _polkit_version() -> str:
     from polkit import __version__
 
     return __version__
+
+def _derived_entry(name, entry, posterior, shape):
+    """One derived quantity checked: ``(values, attrs)``, values ``None`` for a 0-d
+    probability (then ``attrs`` carries it as ``(p, attrs)``)."""
+    key = f"derived.{name}"
+    if not (isinstance(entry, tuple) and len(entry) == 3):
+        raise ConfigError("expected (values, units, long_name) for a derived quantity",
+                          key=key)
+    values, units, long_name = entry
+    if not isinstance(name, str) or not name.isidentifier():
+        raise ConfigError(f"derived names must be identifiers, got {name!r}", key=key)
+    if name in posterior:
+        raise ConfigError(f"derived name {name!r} clashes with a sampled quantity", key=key)
+    if not isinstance(units, str) or not units:
+        raise ConfigError(
+            f"derived quantity needs units (text, '1' if dimensionless); got "
+            f"{units!r}",
+            key=key,
+        )
+    values = np.asarray(values)
+    attrs = {"units": units, "long_name": str(long_name)}
+    if values.ndim == 0:
+        p = float(values)
+        if units != "1" or not 0.0 <= p <= 1.0:
+            raise ConfigError(
+                f"a 0-d derived value is a probability: units '1' and a value in "
+                f"[0, 1]; got {p!r} {units!r} (put other scalars in extra_attrs)",
+                key=key,
+            )
+        return None, (p, attrs)
+    if values.shape == (shape[0] * shape[1],):
+        values = values.reshape(shape)
+    if values.shape != shape:
+        raise ConfigError(
+            f"derived values have shape {values.shape}; expected the draws' shape "
+            f"{shape} (chain, draw) or ({shape[0] * shape[1]},)",
+            key=key,
+        )
+    if values.dtype == bool:
+        if units != "1":
+            raise ConfigError(f"a flag has units '1', got {units!r}", key=key)
+        values = values.astype(np.int8)
+        attrs["polkit_role"] = "flag"
+    else:
+        values = values.astype(float)
+    return values, attrs
+
+
+def _add_derived(posterior: xr.Dataset, derived) -> dict:
+    """Add the derived quantities to ``posterior``; returns the 0-d probabilities."""
+    shape = (posterior.sizes["chain"], posterior.sizes["draw"])
+    probabilities = {}
+    for name, entry in (derived or {}).items():
+        values, attrs = _derived_entry(name, entry, posterior, shape)
+        if values is None:
+            p, attrs = attrs
+            probabilities[name] = ((), p, attrs)
+            continue
+        posterior[name] = (("chain", "draw"), values, attrs)
+    return probabilities
+
+
+def _provenance(output: SamplerOutput, space: ParameterSpace, provenance) -> dict[str, Any]:
+    """The caller's provenance with polkit's version, the seed, the priors and libraries."""
+    user = dict(provenance or {})
+    prov: dict[str, Any] = {
+        "polkit_version": _polkit_version(),
+        "input_sha256": None,
+        "created": datetime.now(UTC).isoformat(timespec="seconds"),
+    }
+    prov.update(user)
+    prov["seed"] = int(output.seed_entropy)
+    prov["seed_spawn_key"] = list(output.seed_spawn_key)
+    prov["priors"] = space.to_dict()
+    prov.setdefault("libraries", _library_versions())
+    return prov
+
+
+def _root_attrs(output: SamplerOutput, prov: dict, *, model, kind, extra_attrs) -> dict:
+    """The root attributes of a result, free of a machine's paths."""
+    attrs = {
+        "model": str(model),
+        "kind": str(kind),
+        "converged": int(bool(output.converged)),
+        "diagnostics": _json_text(output.diagnostics),
+        "provenance": _json_text(prov),
+        "polkit_result_format": _FORMAT,
+        "created_by": f"polkit {prov['polkit_version']}",
+    }
+    for key, value in (extra_attrs or {}).items():
+        if key in attrs:
+            raise ConfigError(f"extra attribute {key!r} would overwrite polkit's", key=key)
+        attrs[str(key)] = _attr_value(key, value)
+    # shared files name inputs by file name and SHA-256, not by a machine's paths
+    return shareable_attrs(attrs)
+
 
 
 class FitResult:
@@ -168,83 +264,9 @@ class FitResult:
                 key="space",
             )
         posterior = output.posterior_draws()
-        shape = (posterior.sizes["chain"], posterior.sizes["draw"])
-        probabilities = {}
-        for name, entry in (derived or {}).items():
-            key = f"derived.{name}"
-            if not (isinstance(entry, tuple) and len(entry) == 3):
-                raise ConfigError(
-                    "expected (values, units, long_name) for a derived quantity", key=key
-                )
-            values, units, long_name = entry
-            if not isinstance(name, str) or not name.isidentifier():
-                raise ConfigError(f"derived names must be identifiers, got {name!r}", key=key)
-            if name in posterior:
-                raise ConfigError(
-                    f"derived name {name!r} clashes with a sampled quantity", key=key
-                )
-            if not isinstance(units, str) or not units:
-                raise ConfigError(
-                    f"derived quantity needs units (text, '1' if dimensionless); got "
-                    f"{units!r}",
-                    key=key,
-                )
-            values = np.asarray(values)
-            attrs = {"units": units, "long_name": str(long_name)}
-            if values.ndim == 0:
-                p = float(values)
-                if units != "1" or not 0.0 <= p <= 1.0:
-                    raise ConfigError(
-                        f"a 0-d derived value is a probability: units '1' and a value in "
-                        f"[0, 1]; got {p!r} {units!r} (put other scalars in extra_attrs)",
-                        key=key,
-                    )
-                probabilities[name] = ((), p, attrs)
-                continue
-            if values.shape == (shape[0] * shape[1],):
-                values = values.reshape(shape)
-            if values.shape != shape:
-                raise ConfigError(
-                    f"derived values have shape {values.shape}; expected the draws' shape "
-                    f"{shape} (chain, draw) or ({shape[0] * shape[1]},)",
-                    key=key,
-                )
-            if values.dtype == bool:
-                if units != "1":
-                    raise ConfigError(f"a flag has units '1', got {units!r}", key=key)
-                values = values.astype(np.int8)
-                attrs["polkit_role"] = "flag"
-            else:
-                values = values.astype(float)
-            posterior[name] = (("chain", "draw"), values, attrs)
-
-        user = dict(provenance or {})
-        prov: dict[str, Any] = {
-            "polkit_version": _polkit_version(),
-            "input_sha256": None,
-            "created": datetime.now(UTC).isoformat(timespec="seconds"),
-        }
-        prov.update(user)
-        prov["seed"] = int(output.seed_entropy)
-        prov["seed_spawn_key"] = list(output.seed_spawn_key)
-        prov["priors"] = space.to_dict()
-        prov.setdefault("libraries", _library_versions())
-
-        attrs = {
-            "model": str(model),
-            "kind": str(kind),
-            "converged": int(bool(output.converged)),
-            "diagnostics": _json_text(output.diagnostics),
-            "provenance": _json_text(prov),
-            "polkit_result_format": _FORMAT,
-            "created_by": f"polkit {prov['polkit_version']}",
-        }
-        for key, value in (extra_attrs or {}).items():
-            if key in attrs:
-                raise ConfigError(f"extra attribute {key!r} would overwrite polkit's", key=key)
-            attrs[str(key)] = _attr_value(key, value)
-        # shared files name inputs by file name and SHA-256, not by a machine's paths
-        attrs = shareable_attrs(attrs)
+        probabilities = _add_derived(posterior, derived)
+        prov = _provenance(output, space, provenance)
+        attrs = _root_attrs(output, prov, model=model, kind=kind, extra_attrs=extra_attrs)
         if observed is not None:
             observed = observed.copy(deep=False)
             observed.attrs = shareable_attrs(dict(observed.attrs))
@@ -548,29 +570,22 @@ class FitResult:
 
 
 def _check_tree(tree, path) -> None:
+    def refuse(message: str, field: str) -> NoReturn:
+        raise DataError(message, path=path, field=field)
+
     if not isinstance(tree, xr.DataTree):
         raise DataError(f"expected an xarray.DataTree, got {type(tree).__name__}", path=path)
     for key in ("model", "kind", "converged", "diagnostics", "provenance"):
         if key not in tree.attrs:
-            raise DataError(
-                f"root attribute {key!r} is missing: not a polkit result",
-                path=path,
-                field=key,
-            )
+            refuse(f"root attribute {key!r} is missing: not a polkit result", key)
     if "posterior" not in tree.children:
-        raise DataError("no 'posterior' group: not a polkit result", path=path,
-                        field="posterior")
+        refuse("no 'posterior' group: not a polkit result", "posterior")
     post = tree["posterior"]
     for name, var in post.data_vars.items():
         if set(var.dims) != {"chain", "draw"}:
-            raise DataError(
-                f"posterior variable has dims {var.dims}; expected ('chain', 'draw')",
-                path=path,
-                field=name,
-            )
+            refuse(f"posterior variable has dims {var.dims}; expected ('chain', 'draw')", name)
         if "units" not in var.attrs:
-            raise DataError("posterior variable has no 'units' attribute", path=path,
-                            field=name)
+            refuse("posterior variable has no 'units' attribute", name)
 
 
 def _fmt(value: float, err: float) -> str:

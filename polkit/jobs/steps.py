@@ -30,7 +30,14 @@ import numpy as np
 
 from polkit.errors import ConvergenceWarning, PolkitError
 from polkit.folder_lock import folder_lock
-from polkit.inference import MapResult, SamplerOutput, SamplerSettings, laplace, run_ensemble
+from polkit.inference import (
+    GateSettings,
+    MapResult,
+    SamplerOutput,
+    SamplerSettings,
+    laplace,
+    run_ensemble,
+)
 from polkit.inference.checkpoint import prepare_checkpoint, start_stored
 
 __all__ = [
@@ -284,14 +291,10 @@ def preburn(log_likelihood: Callable, space, start, n_walkers: int, seed,
             log_likelihood,
             space,
             start,
-            n_walkers=n_walkers,
+            SamplerSettings(n_walkers=n_walkers, max_steps=n, min_steps=n, check_every=n,
+                            progress=progress, progress_label="pre-burn",
+                            gate=GateSettings(ess_rhat=False)),  # its draws only seed the run
             seed=pre_seed,
-            max_steps=n,
-            min_steps=n,
-            check_every=n,
-            progress=progress,
-            progress_label="pre-burn",
-            ess_rhat=False,  # its draws only seed the run
         )
     pos = out.chains[0, -1].copy()
     lp = out.log_prob[0, -1]
@@ -378,11 +381,14 @@ def sample_problem(
                 seed = np.random.SeedSequence()
             start = preburn(like, space, start, walkers, seed, sampler.max_steps,
                             progress=progress)
-        output = run_ensemble(like, space, start, n_walkers=walkers, seed=seed,
-                              checkpoint=checkpoint, resume=resume, progress=progress,
-                              strict=sampler.strict, stop_event=sampler.stop_event,
-                              identity=job, max_steps=sampler.max_steps,
-                              min_steps=sampler.min_steps, check_every=sampler.check_every)
+        # only these of the job's settings reach the run (its moves, ensemble count and
+        # gate are run_ensemble's defaults)
+        run = SamplerSettings(n_walkers=walkers, max_steps=sampler.max_steps,
+                              min_steps=sampler.min_steps, check_every=sampler.check_every,
+                              strict=sampler.strict, progress=progress,
+                              stop_event=sampler.stop_event)
+        output = run_ensemble(like, space, start, run, seed=seed, checkpoint=checkpoint,
+                              resume=resume, identity=job)
     if quick is not None:
         post = output.posterior_draws()
         output.diagnostics["laplace_vs_mcmc"] = laplace.compare_with_mcmc(

@@ -37,14 +37,14 @@ def stored_steps(path: Path, group: str = "ensemble0") -> np.ndarray:
 @pytest.fixture(scope="module")
 def reference():
     with pytest.warns(ConvergenceWarning):
-        return run_ensemble(loglike, SPACE, START, seed=31, **SETTINGS)
+        return run_ensemble(loglike, SPACE, START, seed=31, settings=SETTINGS)
 
 
 def test_checkpointed_run_equals_in_memory_run(tmp_path, reference):
     # common practice, no published source: the storage backend does not change the chain
     with pytest.warns(ConvergenceWarning):
         out = run_ensemble(loglike, SPACE, START, seed=31, checkpoint=tmp_path / "c.h5",
-                           **SETTINGS)
+                           settings=SETTINGS)
     np.testing.assert_array_equal(out.chains, reference.chains)
     np.testing.assert_array_equal(stored_steps(tmp_path / "c.h5"), reference.chains[0])
 
@@ -58,7 +58,7 @@ def test_checkpoint_reads_back_through_emcees_own_backend(tmp_path, reference):
 
     path = tmp_path / "c.h5"
     with pytest.warns(ConvergenceWarning):
-        run_ensemble(loglike, SPACE, START, seed=31, checkpoint=path, **SETTINGS)
+        run_ensemble(loglike, SPACE, START, seed=31, checkpoint=path, settings=SETTINGS)
     backend = emcee.backends.HDFBackend(os.fspath(path), name="ensemble0", read_only=True)
     chain = backend.get_chain()
     assert backend.iteration == SETTINGS["max_steps"]
@@ -73,7 +73,7 @@ def test_checkpoint_reads_back_through_emcees_own_backend(tmp_path, reference):
     assert state.random_state[0] == "MT19937" and len(state.random_state[1]) == 624
     with pytest.warns(ConvergenceWarning):
         longer = run_ensemble(loglike, SPACE, START, seed=31,
-                              **{**SETTINGS, "max_steps": SETTINGS["max_steps"] + 1})
+                              settings={**SETTINGS, "max_steps": SETTINGS["max_steps"] + 1})
     from polkit.inference.posterior import LogPosterior
     from polkit.inference.sampler import default_moves
 
@@ -96,11 +96,11 @@ def test_keyboard_interrupt_then_resume_gives_the_unbroken_chain(tmp_path, refer
         return loglike(theta)
 
     with pytest.raises(KeyboardInterrupt):
-        run_ensemble(interrupted, SPACE, START, seed=31, checkpoint=path, **SETTINGS)
+        run_ensemble(interrupted, SPACE, START, seed=31, checkpoint=path, settings=SETTINGS)
     before = stored_steps(path)
     assert 0 < len(before) < SETTINGS["max_steps"]
     with pytest.warns(ConvergenceWarning):
-        out = run_ensemble(loglike, SPACE, START, checkpoint=path, resume=True, **SETTINGS)
+        out = run_ensemble(loglike, SPACE, START, SETTINGS, checkpoint=path, resume=True)
     np.testing.assert_array_equal(out.chains[0, : len(before)], before)
     np.testing.assert_array_equal(out.chains, reference.chains)
     np.testing.assert_array_equal(out.log_prob, reference.log_prob)
@@ -124,7 +124,7 @@ CHILD = textwrap.dedent(
         return loglike(theta)
 
     run_ensemble(killed, SPACE, START, seed=31, checkpoint=sys.argv[1], resume=True,
-                 **SETTINGS)
+                 settings=SETTINGS)
     """
 )
 
@@ -144,7 +144,7 @@ def test_sigkill_then_resume_gives_the_unbroken_chain(tmp_path, reference):
     assert 0 < len(before) < SETTINGS["max_steps"]
     np.testing.assert_array_equal(before, reference.chains[0, : len(before)])
     with pytest.warns(ConvergenceWarning):
-        out = run_ensemble(loglike, SPACE, START, checkpoint=path, resume=True, **SETTINGS)
+        out = run_ensemble(loglike, SPACE, START, SETTINGS, checkpoint=path, resume=True)
     np.testing.assert_array_equal(out.chains, reference.chains)
 
 
@@ -153,7 +153,7 @@ def test_resume_of_a_strict_run_interrupted_in_a_later_ensemble(tmp_path):
     # continues, later ones start from their own seeds
     kw = {**SETTINGS, "strict": True, "max_steps": 80, "min_steps": 80}
     with pytest.warns(ConvergenceWarning):
-        ref = run_ensemble(loglike, SPACE, START, seed=5, **kw)
+        ref = run_ensemble(loglike, SPACE, START, seed=5, settings=kw)
     calls = {"n": 0}
 
     def interrupted(theta):
@@ -164,12 +164,12 @@ def test_resume_of_a_strict_run_interrupted_in_a_later_ensemble(tmp_path):
 
     path = tmp_path / "strict.h5"
     with pytest.raises(KeyboardInterrupt):
-        run_ensemble(interrupted, SPACE, START, seed=5, checkpoint=path, **kw)
+        run_ensemble(interrupted, SPACE, START, seed=5, checkpoint=path, settings=kw)
     assert len(stored_steps(path, "ensemble0")) == 80
     assert 0 < len(stored_steps(path, "ensemble1")) + len(stored_steps(path, "ensemble2")) < 160
     assert len(stored_steps(path, "ensemble3")) == 0
     with pytest.warns(ConvergenceWarning):
-        out = run_ensemble(loglike, SPACE, START, checkpoint=path, resume=True, **kw)
+        out = run_ensemble(loglike, SPACE, START, checkpoint=path, resume=True, settings=kw)
     np.testing.assert_array_equal(out.chains, ref.chains)
 
 
@@ -177,26 +177,26 @@ def test_checkpoint_of_another_run_is_refused(tmp_path):
     # common practice, no published source
     path = tmp_path / "c.h5"
     with pytest.warns(ConvergenceWarning):
-        run_ensemble(loglike, SPACE, START, seed=1, checkpoint=path, **{**SETTINGS,
+        run_ensemble(loglike, SPACE, START, seed=1, checkpoint=path, settings={**SETTINGS,
                      "max_steps": 10})
     with pytest.raises(ConfigError, match="checkpoint of an earlier run is here") as info:
-        run_ensemble(loglike, SPACE, START, seed=1, checkpoint=path, **SETTINGS)
+        run_ensemble(loglike, SPACE, START, seed=1, checkpoint=path, settings=SETTINGS)
     assert str(path) in str(info.value)
     other = ParameterSpace([Parameter("a", "meV", Prior.uniform(-10, 10)),
                             Parameter("c", "eV", Prior.uniform(-10, 10))])
     with pytest.raises(ConfigError, match=r"belongs to parameters \['a', 'b'\]") as info:
-        run_ensemble(loglike, other, START, checkpoint=path, resume=True, **SETTINGS)
+        run_ensemble(loglike, other, START, checkpoint=path, resume=True, settings=SETTINGS)
     assert str(path) in str(info.value)
     with pytest.raises(ConfigError, match="holds 8 walkers"):
         run_ensemble(loglike, SPACE, START, checkpoint=path, resume=True,
-                     **{**SETTINGS, "n_walkers": 10})
+                     settings={**SETTINGS, "n_walkers": 10})
     with pytest.raises(ConfigError, match="different seed"):
-        run_ensemble(loglike, SPACE, START, seed=2, checkpoint=path, resume=True, **SETTINGS)
+        run_ensemble(loglike, SPACE, START, SETTINGS, seed=2, checkpoint=path, resume=True)
     stranger = tmp_path / "stranger.h5"
     with h5py.File(stranger, "w") as fh:
         fh["x"] = 1
     with pytest.raises(ConfigError, match="not a polkit checkpoint"):
-        run_ensemble(loglike, SPACE, START, checkpoint=stranger, resume=True, **SETTINGS)
+        run_ensemble(loglike, SPACE, START, SETTINGS, checkpoint=stranger, resume=True)
 
 
 def test_resume_with_a_larger_step_limit_extends_an_unconverged_run(tmp_path):
@@ -217,14 +217,15 @@ def test_resume_with_a_larger_step_limit_extends_an_unconverged_run(tmp_path):
     def like(t):
         return -0.5 * _np.sum((t - 1.0) ** 2 / 0.3**2, axis=1)
 
-    kw = dict(n_walkers=8, seed=3, min_steps=100, check_every=100, progress=False)
+    kw = dict(n_walkers=8, min_steps=100, check_every=100, progress=False)
     with _w.catch_warnings():
         _w.simplefilter("ignore", _CW)
-        _run(like, space, _np.array([1.0, 1.0]), max_steps=200, checkpoint=tmp_path / "a.h5", **kw)
-        ext = _run(like, space, _np.array([1.0, 1.0]), max_steps=400,
-                   checkpoint=tmp_path / "a.h5", resume=True, **kw)
-        straight = _run(like, space, _np.array([1.0, 1.0]), max_steps=400,
-                        checkpoint=tmp_path / "b.h5", **kw)
+        _run(like, space, _np.array([1.0, 1.0]), {**kw, "max_steps": 200}, seed=3,
+             checkpoint=tmp_path / "a.h5")
+        ext = _run(like, space, _np.array([1.0, 1.0]), {**kw, "max_steps": 400}, seed=3,
+                   checkpoint=tmp_path / "a.h5", resume=True)
+        straight = _run(like, space, _np.array([1.0, 1.0]), {**kw, "max_steps": 400}, seed=3,
+                        checkpoint=tmp_path / "b.h5")
     assert ext.chains.shape == straight.chains.shape
     assert ext.chains.shape[1] > 200
     _np.testing.assert_array_equal(ext.chains, straight.chains)

@@ -11,8 +11,9 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy import integrate, stats
 
+from polkit.config.priors import apply_priors
 from polkit.errors import ConfigError
-from polkit.inference import Parameter, ParameterSpace, Prior, apply_priors
+from polkit.inference import Parameter, ParameterSpace, Prior
 
 # (polkit prior, independent scipy.stats distribution)
 CASES = [

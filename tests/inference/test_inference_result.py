@@ -16,6 +16,7 @@ from polkit.inference import (
     ParameterSpace,
     Prior,
     SamplerOutput,
+    SamplerSettings,
     run_ensemble,
 )
 
@@ -220,8 +221,8 @@ def test_result_from_a_real_run(tmp_path):
         return -0.5 * ((theta[:, 0] - 12.0) / 0.5) ** 2 - 0.5 * ((theta[:, 1] - 1.55) / 0.002) ** 2
 
     with pytest.warns(ConvergenceWarning):
-        out = run_ensemble(loglike, SPACE, np.array([12.0, 1.55]), seed=3, n_walkers=8,
-                           max_steps=60, progress=False)
+        out = run_ensemble(loglike, SPACE, np.array([12.0, 1.55]),
+                           SamplerSettings(n_walkers=8, max_steps=60, progress=False), seed=3)
     res = FitResult.from_samples(out, SPACE, model="m", kind="k", provenance={})
     assert res.converged is False
     assert res.summary()["diagnostics"]["converged"] is False

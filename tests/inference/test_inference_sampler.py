@@ -10,6 +10,7 @@ import pytest
 
 from polkit.errors import ConfigError, ConvergenceWarning, FitError
 from polkit.inference import (
+    GateSettings,
     LogPosterior,
     Parameter,
     ParameterSpace,
@@ -53,7 +54,7 @@ def map_start():
 
 @pytest.fixture(scope="module")
 def converged_run(map_start):
-    return run_ensemble(loglike, SPACE, map_start, seed=2024, **FAST)
+    return run_ensemble(loglike, SPACE, map_start, FAST, seed=2024)
 
 
 def test_reproduces_the_conjugate_linear_gaussian_posterior(converged_run):
@@ -104,7 +105,7 @@ def test_same_seed_is_bit_identical(map_start):
     runs = []
     for seed in (2024, 2024, 7):
         with pytest.warns(ConvergenceWarning):
-            runs.append(run_ensemble(loglike, SPACE, map_start, seed=seed, **kw))
+            runs.append(run_ensemble(loglike, SPACE, map_start, kw, seed=seed))
     np.testing.assert_array_equal(runs[0].chains, runs[1].chains)
     np.testing.assert_array_equal(runs[0].log_prob, runs[1].log_prob)
     assert runs[0].diagnostics == runs[1].diagnostics
@@ -114,7 +115,7 @@ def test_same_seed_is_bit_identical(map_start):
 
 def test_different_seeds_are_statistically_consistent(converged_run, map_start):
     # common practice, no published source: independent seeds agree within Monte Carlo error
-    other = run_ensemble(loglike, SPACE, map_start, seed=7, **FAST)
+    other = run_ensemble(loglike, SPACE, map_start, FAST, seed=7)
     assert other.converged
     d1, d2 = converged_run.posterior_draws(), other.posterior_draws()
     for name in SPACE.names:
@@ -130,10 +131,10 @@ def test_seed_sequence_is_accepted_and_recorded(map_start):
     seq = np.random.SeedSequence(99).spawn(3)[2]
     kw = {**FAST, "max_steps": 60}
     with pytest.warns(ConvergenceWarning):
-        a = run_ensemble(loglike, SPACE, map_start, seed=seq, **kw)
+        a = run_ensemble(loglike, SPACE, map_start, kw, seed=seq)
     with pytest.warns(ConvergenceWarning):
-        b = run_ensemble(loglike, SPACE, map_start,
-                         seed=np.random.SeedSequence(99, spawn_key=(2,)), **kw)
+        b = run_ensemble(loglike, SPACE, map_start, kw,
+                         seed=np.random.SeedSequence(99, spawn_key=(2,)))
     np.testing.assert_array_equal(a.chains, b.chains)
     assert a.seed_entropy == 99 and a.seed_spawn_key == (2,)
 
@@ -141,7 +142,7 @@ def test_seed_sequence_is_accepted_and_recorded(map_start):
 def test_not_converged_warns_and_says_why(map_start):
     # common practice, no published source
     with pytest.warns(ConvergenceWarning, match="max_steps = 120") as rec:
-        out = run_ensemble(loglike, SPACE, map_start, seed=1, max_steps=120, **FAST)
+        out = run_ensemble(loglike, SPACE, map_start, {**FAST, "max_steps": 120}, seed=1)
     # the gate asks for bulk and tail ESS >= 1000 of the reported draws: 120 steps of 16
     # walkers cannot give that, and the warning says so with the numbers
     assert "bulk ESS below the target" in str(rec[0].message)
@@ -159,7 +160,7 @@ def test_nan_log_likelihood_names_the_parameter_values(map_start):
         return np.where(theta[:, 0] > 0.55, np.nan, out)
 
     with pytest.raises(FitError, match=r"returned NaN at a = 0\.5[5-9]\d* meV, b = "):
-        run_ensemble(broken, SPACE, map_start, seed=3, **FAST)
+        run_ensemble(broken, SPACE, map_start, FAST, seed=3)
 
 
 def test_degenerate_or_dead_starting_ensembles_raise(map_start):
@@ -167,30 +168,33 @@ def test_degenerate_or_dead_starting_ensembles_raise(map_start):
     rng = np.random.default_rng(0)
     a = rng.normal(0.5, 0.1, 16)
     with pytest.raises(FitError, match="degenerate"):
-        run_ensemble(loglike, SPACE, np.column_stack([a, 2 * a]), seed=0, **FAST)
+        run_ensemble(loglike, SPACE, np.column_stack([a, 2 * a]), FAST, seed=0)
 
     def dead(theta):
         return np.where(theta[:, 1] > 1.1, -np.inf, loglike(theta))
 
     start = np.column_stack([rng.normal(0.5, 0.05, 16), rng.normal(1.1, 0.05, 16)])
     with pytest.raises(FitError, match="start at zero posterior"):
-        run_ensemble(dead, SPACE, start, seed=0, **FAST)
+        run_ensemble(dead, SPACE, start, FAST, seed=0)
 
 
 def test_bad_settings_raise_config_error(map_start):
     # common practice, no published source
     with pytest.raises(ConfigError, match="n_walkers"):
-        run_ensemble(loglike, SPACE, map_start, n_walkers=3, progress=False)
+        run_ensemble(loglike, SPACE, map_start, {"n_walkers": 3, "progress": False})
     with pytest.raises(ConfigError, match="n_ensembles >= 4"):
-        run_ensemble(loglike, SPACE, map_start, strict=True, n_ensembles=2, progress=False)
+        run_ensemble(loglike, SPACE, map_start,
+                     {"strict": True, "n_ensembles": 2, "progress": False})
     with pytest.raises(ConfigError, match="seed"):
-        run_ensemble(loglike, SPACE, map_start, seed=-1, progress=False)
+        run_ensemble(loglike, SPACE, map_start, {"progress": False}, seed=-1)
     with pytest.raises(ConfigError, match="checkpoint"):
-        run_ensemble(loglike, SPACE, map_start, resume=True, progress=False)
+        run_ensemble(loglike, SPACE, map_start, {"progress": False}, resume=True)
     with pytest.raises(ConfigError, match="ess_target must be > 0"):
-        run_ensemble(loglike, SPACE, map_start, ess_target=0, progress=False)
+        run_ensemble(loglike, SPACE, map_start,
+                     {"progress": False, "gate": GateSettings(ess_target=0)})
     with pytest.raises(ConfigError, match="walker_groups must be an int >= 2"):
-        run_ensemble(loglike, SPACE, map_start, walker_groups=1, progress=False)
+        run_ensemble(loglike, SPACE, map_start,
+                     {"progress": False, "gate": GateSettings(walker_groups=1)})
 
 
 def test_stop_event_ends_cleanly_and_marks_not_converged(map_start):
@@ -205,7 +209,7 @@ def test_stop_event_ends_cleanly_and_marks_not_converged(map_start):
         return loglike(theta)
 
     with pytest.warns(ConvergenceWarning, match="stopped on request"):
-        out = run_ensemble(counting, SPACE, map_start, seed=5, stop_event=stop, **FAST)
+        out = run_ensemble(counting, SPACE, map_start, {**FAST, "stop_event": stop}, seed=5)
     assert out.converged is False and out.diagnostics["stopped"] is True
     assert 10 < out.chains.shape[1] < 60  # 2 to 4 log-likelihood calls per step
     assert calls["n"] <= 60 + 4  # ended within the step in which the event was set
@@ -218,8 +222,8 @@ def test_extras_are_stored_per_draw(map_start):
         return ll, (-2.0 * ll)[:, None]
 
     with pytest.warns(ConvergenceWarning):
-        out = run_ensemble(with_chi2, SPACE, map_start, seed=6, max_steps=100,
-                           log_prob_extras={"chi2": "1"}, **FAST)
+        out = run_ensemble(with_chi2, SPACE, map_start, {**FAST, "max_steps": 100}, seed=6,
+                           log_prob_extras={"chi2": "1"})
     draws = out.posterior_draws()
     assert draws["chi2"].attrs["units"] == "1"
     theta = np.stack([draws["a"].values.ravel(), draws["b"].values.ravel()], axis=1)
@@ -230,8 +234,8 @@ def test_extras_are_stored_per_draw(map_start):
 def test_strict_mode_gates_on_nested_rhat(map_start):
     # Source: Margossian et al., arXiv:2110.13017 (2022): nested R-hat <= 1.01 over four
     # independently seeded ensembles of the same posterior
-    out = run_ensemble(loglike, SPACE, map_start, seed=11, strict=True, tau_rtol=0.05,
-                       **FAST)
+    out = run_ensemble(loglike, SPACE, map_start,
+                       {**FAST, "strict": True, "gate": GateSettings(tau_rtol=0.05)}, seed=11)
     assert out.converged, out.reasons
     assert out.chains.shape[0] == 4
     assert out.diagnostics["nested_rhat"] <= 1.01
@@ -256,8 +260,9 @@ def test_strict_mode_reports_a_stuck_ensemble(map_start):
     starts = np.stack([np.column_stack([rng.normal(m, 0.05, 16), rng.normal(0, 0.5, 16)])
                        for m in (2.0, 2.0, 2.0, -2.0)])
     with pytest.warns(ConvergenceWarning, match="nested R-hat"):
-        out = run_ensemble(two_modes, sp, starts, seed=12, strict=True, max_steps=300,
-                           tau_rtol=0.05, **FAST)
+        out = run_ensemble(two_modes, sp, starts,
+                           {**FAST, "strict": True, "max_steps": 300,
+                            "gate": GateSettings(tau_rtol=0.05)}, seed=12)
     assert out.diagnostics["nested_rhat"] > 1.01
     assert out.converged is False
 
@@ -265,8 +270,8 @@ def test_strict_mode_reports_a_stuck_ensemble(map_start):
 def test_progress_bar_runs(map_start, capsys):
     # common practice, no published source: the tqdm.auto bar is drawn when asked for
     with pytest.warns(ConvergenceWarning):
-        run_ensemble(loglike, SPACE, map_start, seed=1, max_steps=60,
-                     **{**FAST, "progress": True})
+        run_ensemble(loglike, SPACE, map_start, {**FAST, "max_steps": 60, "progress": True},
+                     seed=1)
     assert "MCMC" in capsys.readouterr().err
 
 
@@ -274,7 +279,7 @@ def test_global_random_state_is_untouched(map_start):
     # common practice, no published source: the engine never draws from numpy's global state
     before = np.random.get_state()  # noqa: NPY002 (reading it is the point of the test)
     with pytest.warns(ConvergenceWarning):
-        run_ensemble(loglike, SPACE, map_start, seed=9, max_steps=40, **FAST)
+        run_ensemble(loglike, SPACE, map_start, {**FAST, "max_steps": 40}, seed=9)
     after = np.random.get_state()  # noqa: NPY002
     assert before[0] == after[0] and before[2:] == after[2:]
     np.testing.assert_array_equal(before[1], after[1])
@@ -302,7 +307,7 @@ def test_noise_parameters_get_the_lower_ess_target(map_start):
     def like(theta):
         return loglike(theta[:, :2]) - 0.5 * ((theta[:, 2] - 1.0) / 0.1) ** 2
 
-    out = run_ensemble(like, space, np.r_[map_start.x, 1.0], seed=5, **FAST)
+    out = run_ensemble(like, space, np.r_[map_start.x, 1.0], FAST, seed=5)
     assert out.diagnostics["ess_target"] == {"a": 1000.0, "b": 1000.0, "noise_scale": 400.0}
 
 
@@ -329,9 +334,10 @@ def test_default_moves_reproduce_the_spread_of_a_correlated_gaussian():
     for seed in (1, 2, 3):
         with warnings.catch_warnings():  # fixed length on purpose
             warnings.simplefilter("ignore", ConvergenceWarning)
-            out = run_ensemble(gauss, space, np.zeros(p), seed=seed, n_walkers=32,
-                               max_steps=8000, min_steps=8000, check_every=8000,
-                               progress=False, ess_rhat=False)
+            out = run_ensemble(gauss, space, np.zeros(p),
+                               {"n_walkers": 32, "max_steps": 8000, "min_steps": 8000,
+                                "check_every": 8000, "progress": False,
+                                "gate": GateSettings(ess_rhat=False)}, seed=seed)
         x = out.chains[0, 1000:].reshape(-1, p)
         q16, q84 = np.quantile(x, [0.16, 0.84], axis=0)
         ratios.append(0.5 * (q84 - q16) / (stats.norm.ppf(0.84) * sd))

@@ -244,9 +244,9 @@ def test_a_kill_at_every_window_resumes_to_the_uninterrupted_chain(maps, straigh
     if window == "creation":  # the checkpoint is renamed into place whole, or not at all
         _kill_once(monkeypatch, checkpoint_module.os, "replace")
     elif window == "before_first_step":
-        from polkit.inference import sampler
+        from polkit.inference import ensemble
 
-        _kill_once(monkeypatch, sampler._Ensemble, "advance")
+        _kill_once(monkeypatch, ensemble.Ensemble, "advance")
     elif window == "preburn":  # and without a seed: the stored root seed is used again
         seed = None
         _kill_once(monkeypatch, _steps, "run_ensemble")

@@ -40,8 +40,7 @@ from polkit.inference import Parameter, ParameterSpace, Prior, run_ensemble
 SPACE = ParameterSpace([Parameter(f"p{i}", "meV", Prior.normal(0.0, 1.0)) for i in range(6)])
 # 32 walkers x 6 parameters: the chain is stored in chunks of 42 steps (64 kB), so the checkpoint
 # grows in several jumps within the run
-SETTINGS = dict(n_walkers=32, seed=11, max_steps=260, min_steps=260, check_every=40,
-                progress=False, log_prob_extras={"half_chi2": "1"})
+SETTINGS = dict(n_walkers=32, max_steps=260, min_steps=260, check_every=40, progress=False)
 
 
 def loglike(theta):
@@ -50,8 +49,8 @@ def loglike(theta):
 
 
 def run(checkpoint=None, resume=False, like=loglike):
-    return run_ensemble(like, SPACE, np.zeros(6), checkpoint=checkpoint, resume=resume,
-                        **SETTINGS)
+    return run_ensemble(like, SPACE, np.zeros(6), SETTINGS, seed=11, checkpoint=checkpoint,
+                        resume=resume, log_prob_extras={"half_chi2": "1"})
 '''
 toy: dict = {}
 exec(compile(TOY, "toy_problem", "exec"), toy)  # noqa: S102 - our own source text above
@@ -236,7 +235,7 @@ def test_a_failed_hdf5_write_becomes_one_clear_error(tmp_path, raised):
     # the checkpoint, the problem and the way on
     checkpoint = tmp_path / "chains.h5"
     with pytest.raises(OSError) as info:
-        with checkpoint_module._checkpoint_writes(checkpoint):
+        with checkpoint_module.Checkpoint(checkpoint).writes():
             raise raised
     message = str(info.value)
     assert info.value.errno == errno.ENOSPC
@@ -251,7 +250,7 @@ def test_a_failed_hdf5_write_becomes_one_clear_error(tmp_path, raised):
 def test_errors_that_are_not_io_pass_through_unchanged(tmp_path, raised):
     # common practice, no published source: only I/O failures are rewritten
     with pytest.raises(type(raised)) as info:
-        with checkpoint_module._checkpoint_writes(tmp_path / "chains.h5"):
+        with checkpoint_module.Checkpoint(tmp_path / "chains.h5").writes():
             raise raised
     assert info.value is raised
 
@@ -287,4 +286,4 @@ def test_read_only_folder_for_the_checkpoint_names_the_folder(tmp_path, monkeypa
 def test_chunk_rows_count_whole_chunks(rows, row_bytes, start, stop, expected):
     # Source: HDF5 User's Guide, chunked storage -- a chunk is allocated whole when first
     # written (incremental allocation, the default for chunked datasets without filters)
-    assert checkpoint_module._ChunkRows(rows, row_bytes).new_bytes(start, stop) == expected
+    assert checkpoint_module.ChunkRows(rows, row_bytes).new_bytes(start, stop) == expected
