@@ -81,7 +81,7 @@ def run_demo(
 
 def _data_stage(folder: Path, out: Path) -> None:
     """Stage 1: every demo file loaded, validated and drawn."""
-    from polkit.data import inspect_file
+    from polkit.plotting.inspect import inspect_file
 
     _say("\n== 1. data stage: load, validate, quick-look ==")
     for name in [*MAP_FILES, *SERIES_FILES]:

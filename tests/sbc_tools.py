@@ -41,6 +41,7 @@ import numpy as np
 import xarray as xr
 from scipy import stats
 
+import polkit.inference as polkit_inference
 from polkit.data import make_series
 from polkit.errors import ConvergenceWarning
 from polkit.inference import (
@@ -248,11 +249,13 @@ def sample(loglike: Callable, space: ParameterSpace, x0: np.ndarray, seed,
     start = find_map(LogPosterior(loglike, space), space, x0)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ConvergenceWarning)
-        out = run_ensemble(loglike, space, start, n_walkers=settings.n_walkers, seed=seed,
-                           progress=False, min_steps=settings.min_steps,
-                           max_steps=settings.max_steps, check_every=settings.check_every,
-                           autocorr_factor=settings.autocorr_factor,
-                           tau_rtol=settings.tau_rtol, ess_target=settings.ess_target)
+        gate = polkit_inference.GateSettings(autocorr_factor=settings.autocorr_factor,
+                                             tau_rtol=settings.tau_rtol,
+                                             ess_target=settings.ess_target)
+        run = polkit_inference.SamplerSettings(
+            n_walkers=settings.n_walkers, progress=False, min_steps=settings.min_steps,
+            max_steps=settings.max_steps, check_every=settings.check_every, gate=gate)
+        out = run_ensemble(loglike, space, start, run, seed=seed)
     return out, bool(out.converged)
 
 

@@ -30,7 +30,14 @@ from polkit import files
 from polkit.cli import main
 from polkit.data import make_map
 from polkit.errors import ConvergenceWarning
-from polkit.inference import FitResult, Parameter, ParameterSpace, Prior, run_ensemble
+from polkit.inference import (
+    FitResult,
+    Parameter,
+    ParameterSpace,
+    Prior,
+    SamplerSettings,
+    run_ensemble,
+)
 from polkit.jobs.dispersion.run import fit_dispersion
 from polkit.models.simulate import simulate_map
 
@@ -304,8 +311,9 @@ def _toy_result(seed: int) -> FitResult:
 
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ConvergenceWarning)
-        out = run_ensemble(loglike, space, np.zeros(2), n_walkers=8, seed=seed, max_steps=80,
-                           min_steps=80, check_every=40, progress=False)
+        run = SamplerSettings(n_walkers=8, max_steps=80, min_steps=80, check_every=40,
+                              progress=False)
+        out = run_ensemble(loglike, space, np.zeros(2), run, seed=seed)
     return FitResult.from_samples(out, space, model="toy", kind="test",
                                   provenance={"input_sha256": f"{seed:064d}"})
 

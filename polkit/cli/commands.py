@@ -149,7 +149,7 @@ def _cmd_budget(args) -> int:
 
 
 def _cmd_inspect(args) -> int:
-    from polkit.data import inspect_file
+    from polkit.plotting.inspect import inspect_file
 
     png = args.png or (args.out / (args.file.name + ".png"))
     opts = {} if args.wavelength_medium is None else {"wavelength_medium": args.wavelength_medium}

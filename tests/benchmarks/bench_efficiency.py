@@ -126,13 +126,13 @@ def _map_estimate(like, space, x0):
 
 def _sample(like, space, start, n_walkers, n_steps, seed):
     from polkit.errors import ConvergenceWarning
-    from polkit.inference import run_ensemble
+    from polkit.inference import SamplerSettings, run_ensemble
 
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ConvergenceWarning)
-        return run_ensemble(like, space, start, n_walkers=n_walkers, seed=seed,
-                            max_steps=n_steps, min_steps=n_steps, check_every=n_steps,
-                            progress=False)
+        run = SamplerSettings(n_walkers=n_walkers, max_steps=n_steps, min_steps=n_steps,
+                              check_every=n_steps, progress=False)
+        return run_ensemble(like, space, start, run, seed=seed)
 
 
 def _with_detuning(x: np.ndarray, names: list[str]) -> dict:

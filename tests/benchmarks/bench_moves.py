@@ -24,7 +24,14 @@ from pathlib import Path
 import numpy as np
 
 from polkit.errors import ConvergenceWarning
-from polkit.inference import Parameter, ParameterSpace, Prior, run_ensemble
+from polkit.inference import (
+    GateSettings,
+    Parameter,
+    ParameterSpace,
+    Prior,
+    SamplerSettings,
+    run_ensemble,
+)
 from polkit.inference.diagnostics import arviz_diagnostics
 
 ROOT = Path(__file__).resolve().parents[2]
@@ -72,9 +79,10 @@ def _measure(like, space, start, moves, steps, seed, walkers=32):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ConvergenceWarning)
         t = time.perf_counter()
-        out = run_ensemble(like, space, start, n_walkers=walkers, seed=seed, max_steps=steps,
-                           min_steps=steps, check_every=steps, progress=False,
-                           moves=_moves(moves), ess_rhat=False)
+        run = SamplerSettings(n_walkers=walkers, max_steps=steps, min_steps=steps,
+                              check_every=steps, progress=False, moves=_moves(moves),
+                              gate=GateSettings(ess_rhat=False))
+        out = run_ensemble(like, space, start, run, seed=seed)
         wall = time.perf_counter() - t
     kept = out.chains[0, steps // 4:]
     import xarray as xr

@@ -233,7 +233,7 @@ def run(
     import arviz  # noqa: F401  (imported before timing: polkit's report uses it)
 
     from polkit.errors import ConvergenceWarning
-    from polkit.inference import run_ensemble
+    from polkit.inference import SamplerSettings, run_ensemble
 
     n_steps = steps if steps is not None else (800 if quick else 3000)
     rng = np.random.default_rng(SEED + 1)
@@ -294,9 +294,9 @@ def run(
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ConvergenceWarning)
         c0, t0 = time.process_time(), time.perf_counter()
-        result = run_ensemble(problem.log_likelihood, space, start, n_walkers=n_walkers,
-                              seed=seed, max_steps=n_steps, min_steps=n_steps,
+        run = SamplerSettings(n_walkers=n_walkers, max_steps=n_steps, min_steps=n_steps,
                               check_every=n_steps, progress=False)
+        result = run_ensemble(problem.log_likelihood, space, start, run, seed=seed)
         wall, cpu = time.perf_counter() - t0, time.process_time() - c0
     pk = _ess_and_summary(result.chains[0], names, discard)
     pk.update(wall_s=wall, cpu_s=cpu, ess_per_s=pk["min_ess_bulk"] / wall,

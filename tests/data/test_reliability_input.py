@@ -31,9 +31,10 @@ from hypothesis import strategies as st
 from polkit.cli import main
 from polkit.config.calibration import load_calibration
 from polkit.config.device import load_device
+from polkit.config.priors import apply_priors
 from polkit.data import load_map, load_series, make_map, validate_map, validate_series
 from polkit.errors import ConfigError, DataError, DataWarning
-from polkit.inference import Parameter, ParameterSpace, Prior, apply_priors
+from polkit.inference import Parameter, ParameterSpace, Prior
 
 PACKAGE = Path(__file__).resolve().parents[2] / "polkit"
 GUARD_S = 20  # a loader still busy after this long on a few-kB file is hung

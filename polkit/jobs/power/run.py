@@ -320,8 +320,8 @@ def _write(result: PowerFit, setup: PowerSetup, out_dir: Path, figures: bool) ->
 
 def _extraction_figure(cube: xr.Dataset, obs: xr.Dataset, target: Path) -> Path:
     from polkit import files
-    from polkit.plotting.linefit import plot_extraction
     from polkit.plotting.base import pyplot
+    from polkit.plotting.linefit import plot_extraction
 
     plt = pyplot()
     fig = plot_extraction(cube, obs)

@@ -27,9 +27,10 @@ import numpy as np
 import xarray as xr
 
 from polkit.config.calibration import read_calibration
+from polkit.config.priors import apply_priors
 from polkit.errors import ConfigError, DataError
 from polkit.files import file_sha256
-from polkit.inference import FitResult, LogPosterior, MapResult, Prior, apply_priors, find_map
+from polkit.inference import FitResult, LogPosterior, MapResult, Prior, find_map
 from polkit.jobs.power.calibrated import ciuti_estimate
 from polkit.jobs.power.channels import MIN_POINTS, sweep_segments
 from polkit.jobs.power.options import ExtractionWindow, PowerCalibration
