@@ -45,12 +45,11 @@ import os
 import warnings
 from collections.abc import Mapping, Sequence
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import xarray as xr
 
-from polkit.data import LoadOptions
 from polkit.errors import ConfigError, ConvergenceWarning, DataWarning
 from polkit.inference import SamplerSettings
 from polkit.inference.priors import read_prior_file
@@ -87,6 +86,9 @@ from polkit.jobs.steps import (
     posterior_theta,
     sample_problem,
 )
+
+if TYPE_CHECKING:
+    from polkit.data import LoadOptions
 
 __all__ = ["compare_models"]
 
@@ -306,6 +308,8 @@ def compare_models(
     DataWarning
         When some spectra have Pareto k above 0.7 (PSIS-LOO unreliable there).
     """
+    from polkit.data import LoadOptions
+
     models = _checked_models(models, resume, seed)
     sampler = job_sampler(DEFAULT_STEPS, sampler)
     load = LoadOptions.of(load)

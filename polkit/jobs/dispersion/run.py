@@ -34,12 +34,11 @@ import os
 from collections.abc import Mapping
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import xarray as xr
 
-from polkit.data import LoadOptions
 from polkit.errors import DataError
 from polkit.inference import FitResult, SamplerOutput, SamplerSettings
 from polkit.jobs.dispersion.caveats import PEAK_TABLE_COVERAGE, add_caveats
@@ -69,6 +68,9 @@ from polkit.jobs.steps import (
     sample_problem,
     warn_large_map,
 )
+
+if TYPE_CHECKING:
+    from polkit.data import LoadOptions
 
 __all__ = [
     "fit_dispersion",
@@ -114,7 +116,7 @@ def job_load(load: LoadOptions | Mapping[str, Any] | None = None) -> LoadOptions
     A job prepares a map with :class:`polkit.data.CameraOptions` (offset, saturation and
     spike masks on) unless ``load.camera`` says otherwise.
     """
-    from polkit.data import CameraOptions
+    from polkit.data import CameraOptions, LoadOptions
 
     load = LoadOptions.of(load)
     return load if load.camera is not None else dataclasses.replace(load, camera=CameraOptions())

@@ -22,12 +22,11 @@ import os
 from collections.abc import Mapping
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import xarray as xr
 
-from polkit.data import LoadOptions
 from polkit.errors import DataError
 from polkit.files import file_sha256
 from polkit.inference import LogPosterior, MapResult, ParameterSpace, apply_priors, find_map
@@ -35,6 +34,9 @@ from polkit.jobs.dispersion.noise import calibrate_noise, noise_inverse_variance
 from polkit.jobs.dispersion.parameters import default_space, guess_from_peaks
 from polkit.jobs.dispersion.problem import MODELS, DispersionProblem, in_plane_axis
 from polkit.jobs.steps import clip_into
+
+if TYPE_CHECKING:
+    from polkit.data import LoadOptions
 
 __all__ = [
     "MapInput",
@@ -136,6 +138,8 @@ def loader_changes(load: LoadOptions) -> dict[str, Any]:
     the file loader receives beside the medium, and what a fit records of the loading in
     its identity (``load_options``).
     """
+    from polkit.data import LoadOptions
+
     default = LoadOptions()
     out = {f.name: getattr(load, f.name) for f in dataclasses.fields(load)
            if f.name not in _JOB_FIELDS
@@ -215,6 +219,8 @@ def open_map(
     DataError
         Unknown model or kind, or a bad map (naming the file and the field).
     """
+    from polkit.data import LoadOptions
+
     if model not in MODELS:
         raise DataError(f"expected model 'weak', 'two' or 'three', found {model!r}.",
                         field="model")
