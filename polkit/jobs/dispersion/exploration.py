@@ -15,7 +15,9 @@ import numpy as np
 from scipy import optimize, stats
 from scipy.stats import qmc
 
+from polkit.constants import HBARC_EV_UM
 from polkit.inference import MapResult, find_map
+from polkit.units import LINEWIDTH_UNITS
 
 __all__ = [
     "HELD",
@@ -101,8 +103,6 @@ def hill_climb(post, space, theta0: np.ndarray, u0: np.ndarray, held: np.ndarray
 
 #: exciton energies x Rabi splittings of the branch-consistent grid
 BRANCH_GRID = (48, 32)
-#: hbar c in eV um  # Source: CODATA via scipy.constants
-_HBARC_EV_UM = 0.1973269804593025
 
 
 def branch_grid(problem, held: np.ndarray, shape: tuple[int, int] = BRANCH_GRID):
@@ -137,7 +137,7 @@ def branch_grid(problem, held: np.ndarray, shape: tuple[int, int] = BRANCH_GRID)
     lev = np.asarray(table["energy"].values[rows, col], dtype=float)  # eV
     x_in = np.asarray(problem.in_plane, dtype=float)[rows]
     fwhm = np.asarray(table["fwhm"].values[rows, col], dtype=float) if "fwhm" in table else []
-    to_mev = {"meV": 1.0, "eV": 1e3}.get(str(table["fwhm"].attrs.get("units", "meV")), 1.0) \
+    to_mev = LINEWIDTH_UNITS.get(str(table["fwhm"].attrs.get("units", "meV")), 1.0) \
         if "fwhm" in table else 1.0
     width = float(np.nanmedian(fwhm)) * to_mev if np.size(fwhm) else float("nan")  # meV
     ex_prior, g_prior = space["exciton_energy"].prior, space["rabi_splitting"].prior
@@ -159,7 +159,7 @@ def branch_grid(problem, held: np.ndarray, shape: tuple[int, int] = BRANCH_GRID)
         if problem.axis == "angle":
             e_c0, n_eff = 1.0 / np.sqrt(coef[0]), np.sqrt(coef[0] / -coef[1])
         else:
-            e_c0, n_eff = np.sqrt(coef[0]), _HBARC_EV_UM / np.sqrt(coef[1])
+            e_c0, n_eff = np.sqrt(coef[0]), HBARC_EV_UM / np.sqrt(coef[1])
     ok = same_side & np.isfinite(e_c0) & np.isfinite(n_eff)
     if not ok.any():
         return None
