@@ -10,7 +10,7 @@ What each control does (and the decision it supports):
 * the map, on a log or linear colour scale, with an angle (or k) and an energy window:
   the window is the part of the map that the refinement and the sampler fit;
 * sliders for the sampled physics parameters (noise excluded), starting from the
-  automatic guess of :func:`~polkit.jobs.dispersion.problem.guess_from_peaks`; each
+  automatic guess of :func:`~polkit.jobs.dispersion.parameters.guess_from_peaks`; each
   move redraws the polariton branches, the bare cavity and the bare exciton(s) over the
   map and updates a readout of detuning, Hopfield fractions, lower-polariton energy and
   linewidth at k = 0 and the strong-coupling criterion;
@@ -34,11 +34,13 @@ import html
 import logging
 import os
 import time
+from collections.abc import Mapping
 from typing import Any
 
 import numpy as np
 import xarray as xr
 
+from polkit.data import LoadOptions
 from polkit.errors import DataError
 from polkit.inference import SamplerSettings
 from polkit.jobs.dispersion import run as wf
@@ -115,32 +117,30 @@ class DispersionPanel(FitPanel):
     _log_post_digits = 1
     _status_warnings = True
 
-    def __init__(self, da: xr.DataArray, *, sha: str, source_name: str, model: str,
-                 kind_model: str, priors, seed, max_steps: int, min_steps: int | None,
-                 n_walkers: int | None, out, profile: str, log_scale: bool,
-                 angle_window, energy_window):
-        import ipywidgets as w
-
-        self.source = st.MapInput(da, sha, source_name, model, kind_model)
-        self.data = da
-        self.axis = self.source.axis
-        self.sha = sha
-        self.source_name = source_name
-        self.model = model
-        self.n_excitons = self.source.n_excitons
-        self.kind = kind_model
+    def __init__(self, source: st.MapInput, *, priors, seed, max_steps: int,
+                 min_steps: int | None, n_walkers: int | None, out, profile: str,
+                 log_scale: bool, window: tuple = (None, None)):
+        self.source = source
+        self.data = da = source.data
+        self.axis = source.axis
+        self.sha = source.sha256
+        self.source_name = source.source_name
+        self.model = source.model
+        self.n_excitons = source.n_excitons
+        self.kind = source.kind
         self.profile = profile
         self.priors = priors
         self._init_state(seed=seed, min_steps=min_steps, n_walkers=n_walkers)
 
         x_all = da[self.axis].values.astype(float)
         e_all = da["energy"].values.astype(float)
+        angle_window, energy_window = window
         win_x = tuple(angle_window) if angle_window is not None else (x_all.min(), x_all.max())
         win_e = tuple(energy_window) if energy_window is not None else (e_all.min(), e_all.max())
         first = self.source.cropped(win_x, win_e)
         # the peak table warns (DataWarning) when only one branch is visible
         self.table, self.guess, space = st.peak_start(
-            first.data, n_excitons=self.n_excitons, kind=kind_model, priors=priors,
+            first.data, n_excitons=self.n_excitons, kind=self.kind, priors=priors,
             profile=profile, coupling=self.source.coupling)
         self._tables = {(tuple(map(float, win_x)), tuple(map(float, win_e))): self.table}
         self.space = space
@@ -149,9 +149,23 @@ class DispersionPanel(FitPanel):
         self._problem_window: tuple | None = None
         self._problem_source: st.MapInput | None = None
 
-        # -- controls -----------------------------------------------------------------------
+        self._build_controls(x_all, e_all, win_x, win_e, log_scale)
+        self._init_actions(
+            max_steps=max_steps,
+            out_folder=str(out) if out is not None else "polkit-out/dispersion",
+            ready="ready: move the sliders until the branches follow the map, then press Most "
+                  "probable point",
+            tooltips=True)
+        self._build_figure()
+        self.widget = self._layout()
+
+    def _build_controls(self, x_all: np.ndarray, e_all: np.ndarray, win_x: tuple,
+                        win_e: tuple, log_scale: bool) -> None:
+        """The parameter sliders, the colour scale and the window sliders."""
+        import ipywidgets as w
+
         self.sliders: dict[str, Any] = {}
-        for p, v in zip(space, self._theta, strict=True):
+        for p, v in zip(self.space, self._theta, strict=True):
             if p.name == "noise_scale":
                 continue
             s = parameter_slider(p, v)
@@ -176,14 +190,8 @@ class DispersionPanel(FitPanel):
         self.axis_window.observe(self._on_window, names="value")
         self.energy_window.observe(self._on_window, names="value")
 
-        self._init_actions(
-            max_steps=max_steps,
-            out_folder=str(out) if out is not None else "polkit-out/dispersion",
-            ready="ready: move the sliders until the branches follow the map, then press Most "
-                  "probable point",
-            tooltips=True)
-
-        # -- figure -------------------------------------------------------------------------
+    def _build_figure(self) -> None:
+        """The map with the branch, bare-cavity and bare-exciton overlay."""
         self.live = LiveFigure(figsize=(6.2, 4.6))
         self.map_image = self.live.image
         ax = self.live.axes[0, 0]
@@ -198,11 +206,16 @@ class DispersionPanel(FitPanel):
                                        label="bare exciton" if i == 0 else None)[0]
                                for i in range(self.n_excitons)]
         self.live.overlay([*self._branch_lines, self._cavity_line, *self._exciton_lines])
+        unit = "degree" if self.axis == "angle" else "1/um"
         ax.set_xlabel(f"{self.axis} [{unit}]")
         ax.set_ylabel("energy [eV]")
         ax.legend(loc="upper center", fontsize=7, framealpha=0.6, ncol=3)
         self._draw_map(update=False)
         self._update_overlay()
+
+    def _layout(self):
+        """The whole panel: title, map and controls, buttons, status, saving, results."""
+        import ipywidgets as w
 
         controls = w.VBox([self.scale, self.axis_window, self.energy_window,
                            *self.sliders.values(), self.readout])
@@ -210,10 +223,10 @@ class DispersionPanel(FitPanel):
                           self.max_steps, self.progress])
         saving = w.HBox([self.save_button, self.out_folder])
         results = w.HBox([self.summary, w.VBox([self.residual_image, self.corner_image])])
-        title = w.HTML(f"<b>dispersion panel</b> &mdash; {html.escape(source_name)} "
-                       f"({html.escape(self.kind)}, {model}-oscillator model)")
-        self.widget = w.VBox([title, w.HBox([self.map_image, controls]), buttons, self.status,
-                              saving, results])
+        title = w.HTML(f"<b>dispersion panel</b> &mdash; {html.escape(self.source_name)} "
+                       f"({html.escape(self.kind)}, {self.model}-oscillator model)")
+        return w.VBox([title, w.HBox([self.map_image, controls]), buttons, self.status,
+                       saving, results])
 
     # -- values -----------------------------------------------------------------------------
     @property
@@ -407,17 +420,13 @@ def dispersion_panel(
     source: str | os.PathLike | xr.DataArray,
     *,
     model: str = "two",
-    kind: str | None = None,
     priors: str | os.PathLike | dict | None = None,
     seed: int | None = None,
     max_steps: int | None = None,
     min_steps: int | None = None,
     n_walkers: int | None = None,
     out: str | os.PathLike | None = None,
-    angle_window: tuple[float, float] | None = None,
-    energy_window: tuple[float, float] | None = None,
-    wavelength_medium: str | None = None,
-    load_options: dict | None = None,
+    load: LoadOptions | Mapping[str, Any] | None = None,
     profile: str = "lorentzian",
     log_scale: bool | None = None,
 ) -> DispersionPanel:
@@ -425,13 +434,8 @@ def dispersion_panel(
 
     Parameters
     ----------
-    source
-        A map file (any format :func:`polkit.load_map` reads) or a canonical map.
-    model
-        ``"two"`` (photon + one exciton), ``"three"`` (photon + two excitons) or ``"weak"``
-        (the uncoupled cavity mode and exciton line).
-    kind
-        ``"emission"``, ``"reflectance"`` or ``"transmission"``; default from the map.
+    source, model
+        The map and the model, as for :func:`~polkit.jobs.dispersion.run.fit_dispersion`.
     priors
         TOML file or dict of priors over the defaults (the sliders span the priors).
     seed
@@ -440,10 +444,13 @@ def dispersion_panel(
         Sampler settings (defaults as :func:`~polkit.jobs.dispersion.run.fit_dispersion`).
     out
         Default folder of the *Save* button.
-    angle_window, energy_window
-        Initial fitted window (degree or 1/um; eV); the whole map by default.
-    wavelength_medium, load_options
-        Passed to the loader (see :func:`polkit.load_map`).
+    load
+        A :class:`polkit.data.LoadOptions` (or a dict of its fields): ``kind``
+        (``"emission"``, ``"reflectance"`` or ``"transmission"``; default from the map),
+        ``wavelength_medium`` and the loader's options (see :func:`polkit.load_map`),
+        ``camera`` (none of the camera steps by default), and ``angle_window`` and
+        ``energy_window``: the initial fitted window (degree or 1/um; eV), the whole map
+        by default.
     profile
         Peak shape of the peak table behind the starting guess.
     log_scale
@@ -459,12 +466,11 @@ def dispersion_panel(
     DataError
         Bad map file or contents, unknown model or kind (naming the file and the field).
     """
-    src = st.open_map(source, model=model, kind=kind, wavelength_medium=wavelength_medium,
-                      load_options=load_options)
+    load = LoadOptions.of(load)
+    src = st.open_map(source, model=model, load=load)
     steps = int(max_steps) if max_steps is not None else wf.DEFAULT_STEPS["max_steps"]
     return DispersionPanel(
-        src.data, sha=src.sha256, source_name=src.source_name, model=model, kind_model=src.kind,
-        priors=priors, seed=seed, max_steps=steps, min_steps=min_steps, n_walkers=n_walkers,
-        out=out, profile=profile,
+        src, priors=priors, seed=seed, max_steps=steps, min_steps=min_steps,
+        n_walkers=n_walkers, out=out, profile=profile,
         log_scale=(src.kind == "emission") if log_scale is None else log_scale,
-        angle_window=angle_window, energy_window=energy_window)
+        window=(load.angle_window, load.energy_window))

@@ -6,12 +6,8 @@ import numpy as np
 import pytest
 
 from polkit.errors import ConfigError
-from polkit.jobs.dispersion.compare import (
-    ModelComparison,
-    ModelScore,
-    _mark_unidentified,
-    compare_dispersion_models,
-)
+from polkit.jobs.dispersion.compare import _mark_unidentified, compare_models
+from polkit.jobs.dispersion.comparison import ModelComparison, ModelScore
 
 
 class _Draws:
@@ -78,4 +74,4 @@ def test_a_clearly_better_three_oscillator_fit_is_never_called_not_needed():
 def test_resuming_a_comparison_needs_the_seed():
     # common practice, no published source
     with pytest.raises(ConfigError, match="pass --seed N with --resume"):
-        compare_dispersion_models("unused.nc", resume=True, out="x")
+        compare_models("unused.nc", resume=True, out="x")

@@ -3,6 +3,7 @@ transfer-matrix library, resume, seeds and bad input."""
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import threading
 import warnings
@@ -12,11 +13,13 @@ import pytest
 
 from polkit import ConfigError, ConvergenceWarning, DataError, DataWarning
 from polkit.data import make_map
-from polkit.inference import FitResult
+from polkit.inference import FitResult, SamplerSettings
 from polkit.jobs.dispersion.run import fit_dispersion
 from polkit.models.spectral import simulate_map
 
 MEV = 1e-3
+#: no progress bar, the job's default step limits
+QUIET = SamplerSettings(progress=False)
 
 
 def _simulated(
@@ -98,7 +101,8 @@ def test_whole_map_recovers_known_parameters(truth, kind, seed, tmp_path):
     # Self-consistency check: data from polkit's own forward model (seeded noise);
     # a calibrated posterior holds the truths inside their intervals (family-wise 95 %).
     da = _simulated(truth, kind=kind, seed=seed)
-    r = fit_dispersion(da, seed=seed, out=tmp_path / "fit", progress=False, max_steps=12000)
+    r = fit_dispersion(da, seed=seed, out=tmp_path / "fit",
+                       sampler=SamplerSettings(progress=False, max_steps=12000))
     assert r.converged, r.diagnostics["reasons"]
     delta = (truth["e_c0"] - truth["e_x"]) / MEV
     # Hopfield fractions at k = 0 follow from the truth (Hopfield, Phys. Rev. 112, 1555, 1958)
@@ -159,7 +163,7 @@ def test_transfer_matrix_reflectance_gives_the_dip_splitting(tmp_path):
         units="1",
         kind="reflectance",
     )
-    r = fit_dispersion(da, seed=5, progress=False, max_steps=12000)
+    r = fit_dispersion(da, seed=5, sampler=SamplerSettings(progress=False, max_steps=12000))
     assert r.converged, r.diagnostics["reasons"]
     s = r.summary()["parameters"]
     e_x, e_c0, n_eff = (s[n]["median"] for n in ("exciton_energy", "cavity_energy", "n_eff"))
@@ -173,7 +177,8 @@ def test_peak_table_path_is_fast_and_close(tmp_path):
     # Self-consistency check (polkit's own forward model); the peak-table path is an approximation
     # (line maxima of fitted Lorentzians), so it is checked at 5 sigma, not 2.
     da = _simulated(GAAS, seed=21)
-    r = fit_dispersion(da, peaks_only=True, seed=3, progress=False, max_steps=12000)
+    r = fit_dispersion(da, peaks_only=True, seed=3,
+                       sampler=SamplerSettings(progress=False, max_steps=12000))
     assert r.tree.attrs["fit_path"] == "peak_table"
     assert r.converged, r.diagnostics["reasons"]
     # closeness in absolute terms, so that a wide posterior cannot pass the sigma test: the
@@ -208,20 +213,22 @@ def test_same_seed_same_summary_and_resume(tmp_path):
     # common practice, no published source: a recorded seed reproduces the run bit for bit,
     # and a run interrupted and continued from its checkpoint equals an uninterrupted one.
     da = _simulated(GAAS, seed=31, n_angle=15, n_energy=100)
-    kw = dict(peaks_only=True, seed=7, progress=False, max_steps=600)
+    settings = SamplerSettings(progress=False, max_steps=600)
+    kw = dict(peaks_only=True, seed=7)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ConvergenceWarning)  # 600 steps: short on purpose
-        a = fit_dispersion(da, out=tmp_path / "a", **kw)
-        b = fit_dispersion(da, out=tmp_path / "b", **kw)
+        a = fit_dispersion(da, out=tmp_path / "a", sampler=settings, **kw)
+        b = fit_dispersion(da, out=tmp_path / "b", sampler=settings, **kw)
         assert a.summary()["parameters"] == b.summary()["parameters"]
         # interrupt a run part-way (the notebook's stop button does the same), then resume;
         # the stop fires after a fixed number of steps, whatever the machine's speed
         stop = _StopAfter(250)
-        part = fit_dispersion(da, out=tmp_path / "c", stop_event=stop, **kw)
+        part = fit_dispersion(da, out=tmp_path / "c",
+                              sampler=dataclasses.replace(settings, stop_event=stop), **kw)
         assert part.converged is False
         assert part.diagnostics["stopped"] is True  # the stop really fired
         assert part.diagnostics["steps"] == 250 < a.diagnostics["steps"]
-        cont = fit_dispersion(da, out=tmp_path / "c", resume=True, **kw)
+        cont = fit_dispersion(da, out=tmp_path / "c", resume=True, sampler=settings, **kw)
     assert cont.diagnostics["steps"] == a.diagnostics["steps"]
     np.testing.assert_array_equal(cont.draws("rabi_splitting"), a.draws("rabi_splitting"))
 
@@ -231,13 +238,13 @@ def test_bad_priors_are_refused_with_the_key(tmp_path):
     bad = tmp_path / "priors.toml"
     bad.write_text('[rabi_splitting]\nprior = "uniform"\nlow = 5\nhigh = 20\nunits = "eV"\n')
     with pytest.raises(ConfigError, match="rabi_splitting"):
-        fit_dispersion(da, priors=bad, peaks_only=True, progress=False)
+        fit_dispersion(da, priors=bad, peaks_only=True, sampler=QUIET)
     with pytest.raises(ConfigError, match="rabi_spliting"):
         fit_dispersion(
             da,
             priors={"rabi_spliting": {"prior": "uniform", "low": 1, "high": 2, "units": "meV"}},
             peaks_only=True,
-            progress=False,
+            sampler=QUIET,
         )
 
 
@@ -251,7 +258,7 @@ def test_map_without_branch_is_refused():
         kind="emission",
     )
     with pytest.raises(DataError, match="no branch"):
-        fit_dispersion(da, progress=False)
+        fit_dispersion(da, sampler=QUIET)
 
 
 def test_one_visible_branch_warns_that_g_and_detuning_are_degenerate():
@@ -259,7 +266,7 @@ def test_one_visible_branch_warns_that_g_and_detuning_are_degenerate():
     da = _simulated(GAAS, seed=61, n_angle=15, n_energy=120, upper=0.0, window=(1.532, 1.5435))
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
-        fit_dispersion(da, peaks_only=True, progress=False, max_steps=200)
+        fit_dispersion(da, peaks_only=True, sampler=SamplerSettings(progress=False, max_steps=200))
     assert any(
         issubclass(w.category, DataWarning) and "degenerate" in str(w.message) for w in caught
     ), [str(w.message) for w in caught]

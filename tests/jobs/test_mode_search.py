@@ -138,8 +138,8 @@ def hidden_fit(hidden_map):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ConvergenceWarning)  # short run on purpose
         warnings.simplefilter("ignore", DataWarning)  # one branch seen by the peak table
-        return polkit.fit_dispersion(path, seed=1, max_steps=2000, progress=False,
-                                     figures=False)
+        return polkit.fit_dispersion(path, seed=1, figures=False,
+                                     sampler=SamplerSettings(max_steps=2000, progress=False))
 
 
 def test_hidden_upper_branch_default_fit_finds_the_coupled_mode(hidden_map, hidden_fit):
@@ -198,7 +198,8 @@ def test_hidden_upper_branch_recovered_from_a_misleading_start(hidden_map, monke
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ConvergenceWarning)
         warnings.simplefilter("ignore", DataWarning)
-        fit = polkit.fit_dispersion(path, seed=1, max_steps=1000, progress=False, figures=False)
+        fit = polkit.fit_dispersion(path, seed=1, figures=False,
+                                    sampler=SamplerSettings(max_steps=1000, progress=False))
     s = _check_recovery(fit, truth)
     modes = s["diagnostics"]["mode_search"]["modes"]
     assert modes[0]["sampled"] and modes[0]["origin"].startswith("design point")
@@ -238,8 +239,8 @@ def test_peak_table_result_carries_the_measured_coverage_caveat(hidden_map):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ConvergenceWarning)  # short run on purpose
         warnings.simplefilter("ignore", DataWarning)
-        fit = polkit.fit_dispersion(path, peaks_only=True, seed=1, max_steps=200,
-                                    progress=False, figures=False)
+        fit = polkit.fit_dispersion(path, peaks_only=True, seed=1, figures=False,
+                                    sampler=SamplerSettings(max_steps=200, progress=False))
     d = fit.summary()["diagnostics"]
     assert "mode_search" not in d
     assert any("peak-table path" in c and "undercover" in c for c in d["caveats"])

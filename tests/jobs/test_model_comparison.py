@@ -12,20 +12,18 @@ from scipy import integrate, stats
 from polkit.cli import EXIT_NOT_CONVERGED, main
 from polkit.data import make_map
 from polkit.errors import ConfigError, ConvergenceWarning, DataWarning
-from polkit.jobs.dispersion.compare import (
-    COMPARISON_FILE,
-    ModelComparison,
-    ModelScore,
-    _split_priors,
-    compare_dispersion_models,
-    information_criteria,
-    pointwise_log_likelihood,
-)
-from polkit.jobs.dispersion.problem import DispersionProblem, default_space
+from polkit.inference import SamplerSettings
+from polkit.jobs.dispersion.compare import _split_priors, compare_models
+from polkit.jobs.dispersion.comparison import COMPARISON_FILE, ModelComparison, ModelScore
+from polkit.jobs.dispersion.criteria import information_criteria, pointwise_log_likelihood
+from polkit.jobs.dispersion.parameters import default_space
+from polkit.jobs.dispersion.problem import DispersionProblem
 from polkit.models.bare_modes import bare_mode_basis
 from polkit.models.spectral import emission_basis, project_linear, simulate_map
 
 MEV = 1e-3
+#: no progress bars, the job's default step limits
+QUIET = SamplerSettings(progress=False)
 ANGLES = np.linspace(-20.0, 20.0, 17)
 ENERGY = np.linspace(1.5320, 1.5610, 110)
 TRUTH = dict(e_c0=1.5420, n_eff=3.4, e_x=1.5450, gamma_c=0.25 * MEV, gamma_x=0.6 * MEV)
@@ -235,8 +233,8 @@ def test_a_strongly_coupled_map_rejects_weak_coupling(tmp_path):
     # two-oscillator model by a wide margin and write its files.
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", DataWarning)  # Pareto k of a few spectra
-        comp = compare_dispersion_models(_strong_map(), models=("weak", "two"), seed=1,
-                                         progress=False, out=tmp_path)
+        comp = compare_models(_strong_map(), models=("weak", "two"), seed=1,
+                              sampler=QUIET, out=tmp_path)
     assert comp.converged
     assert comp.preferred() == "two"
     d, se = comp.difference("weak", "two")
@@ -256,8 +254,7 @@ def test_an_uncoupled_map_prefers_weak_coupling(tmp_path):
     # line); the two-oscillator model cannot draw an uncoupled exciton line and must lose.
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", DataWarning)
-        comp = compare_dispersion_models(_weak_map(), models=("weak", "two"), seed=2,
-                                         progress=False)
+        comp = compare_models(_weak_map(), models=("weak", "two"), seed=2, sampler=QUIET)
     assert comp.converged
     assert comp.preferred() == "weak"
 
@@ -270,8 +267,7 @@ def test_a_second_exciton_that_is_not_there_is_not_preferred():
     # not converge; the comparison must then say so rather than hide it.
     with warnings.catch_warnings(record=True) as seen:
         warnings.simplefilter("always")
-        comp = compare_dispersion_models(_strong_map(), models=("two", "three"), seed=3,
-                                         progress=False)
+        comp = compare_models(_strong_map(), models=("two", "three"), seed=3, sampler=QUIET)
     assert comp.preferred() == "two"
     assert comp.scores["two"].converged
     warned = any(issubclass(w.category, ConvergenceWarning) for w in seen)

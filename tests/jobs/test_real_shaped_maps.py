@@ -16,6 +16,7 @@ import realistic_maps as rm
 
 from polkit.cli import EXIT_MODEL_CHECK, EXIT_OK, main
 from polkit.errors import DataWarning
+from polkit.inference import SamplerSettings
 from polkit.jobs.dispersion.run import fit_dispersion
 
 #: line-shape-convention slack (meV): the generator and polkit use the same pole-residue
@@ -79,7 +80,8 @@ def test_fifteen_count_map_with_a_faint_upper_branch_is_fitted_in_the_right_mode
     path = raw.write_txt(tmp_path / "low.txt")
     out = tmp_path / "fit"
     with pytest.warns(DataWarning, match="at most one line found"):
-        fit_dispersion(path, seed=2, progress=False, out=out, figures=False)
+        fit_dispersion(path, seed=2, sampler=SamplerSettings(progress=False), out=out,
+                       figures=False)
     summary = json.loads((out / "summary.json").read_text())
     _recovered(summary, raw.truth.as_dict())
     modes = summary["diagnostics"]["mode_search"]["modes"]

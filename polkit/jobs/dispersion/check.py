@@ -130,6 +130,21 @@ def _lined_up_outliers(mask: np.ndarray) -> int:
     return max(s[0].stop - s[0].start for s in spans if s is not None)
 
 
+def _worst_places(z: np.ndarray, ok: np.ndarray, active: np.ndarray, chi_row: np.ndarray,
+                  in_plane: np.ndarray, energy: np.ndarray, axis: str) -> tuple[list, list]:
+    """The three angles (or k) and the three energies with the largest chi-square per pixel."""
+    units = "degree" if axis == "angle" else "1/um"
+    order = np.argsort(-np.where(active, chi_row, -np.inf))[:3]
+    worst_angles = [{axis: float(in_plane[i]), "units": units,
+                     "chi2_per_pixel": float(chi_row[i])} for i in order if active[i]]
+    n_col = ok.sum(axis=0)
+    chi_col = np.where(n_col > 0, np.sum(z * z, axis=0) / np.maximum(n_col, 1), 0.0)
+    order_e = np.argsort(-chi_col)[:3]
+    worst_energies = [{"energy": float(energy[j]), "units": "eV",
+                       "chi2_per_pixel": float(chi_col[j])} for j in order_e if n_col[j] > 0]
+    return worst_angles, worst_energies
+
+
 def check_model(
     y: np.ndarray,
     model: np.ndarray,
@@ -204,15 +219,7 @@ def check_model(
          "threshold": th["outlier_angles"], "passed": span < th["outlier_angles"]},
     ]
     passed = all(t["passed"] for t in tests)
-    units = "degree" if axis == "angle" else "1/um"
-    order = np.argsort(-np.where(active, chi_row, -np.inf))[:3]
-    worst_angles = [{axis: float(in_plane[i]), "units": units,
-                     "chi2_per_pixel": float(chi_row[i])} for i in order if active[i]]
-    n_col = ok.sum(axis=0)
-    chi_col = np.where(n_col > 0, np.sum(z * z, axis=0) / np.maximum(n_col, 1), 0.0)
-    order_e = np.argsort(-chi_col)[:3]
-    worst_energies = [{"energy": float(energy[j]), "units": "eV",
-                       "chi2_per_pixel": float(chi_col[j])} for j in order_e if n_col[j] > 0]
+    worst_angles, worst_energies = _worst_places(z, ok, active, chi_row, in_plane, energy, axis)
     keys = ["chi2", "angle", "lag1", "outliers"]
     advice = " ".join(_ADVICE[k] for k, t in zip(keys, tests, strict=True) if not t["passed"])
     return {

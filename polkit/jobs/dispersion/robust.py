@@ -21,8 +21,7 @@ from typing import Any
 import numpy as np
 
 from polkit.jobs.dispersion.check import noise_floor, problem_model_check
-from polkit.jobs.dispersion.noise import detector_terms, premask_spikes
-from polkit.jobs.dispersion.problem import noise_inverse_variance
+from polkit.jobs.dispersion.noise import detector_terms, noise_inverse_variance, premask_spikes
 
 __all__ = ["settle_mode", "protected_mode"]
 

@@ -28,11 +28,13 @@ or in :mod:`polkit.jobs.dispersion.stages`, so the interactive panel
 
 from __future__ import annotations
 
+import dataclasses
 import logging
 import os
 from collections.abc import Mapping
+from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import xarray as xr
@@ -47,6 +49,7 @@ from polkit.jobs.dispersion.search import check_mode_margin, search_modes, weigh
 from polkit.jobs.dispersion.stages import (
     DispersionStart,
     MapInput,
+    loader_changes,
     map_problem,
     open_map,
     peak_start,
@@ -66,6 +69,9 @@ from polkit.jobs.steps import (
     warn_large_map,
 )
 
+if TYPE_CHECKING:
+    from polkit.data import LoadOptions
+
 __all__ = [
     "fit_dispersion",
     "calibrate_noise",
@@ -73,6 +79,7 @@ __all__ = [
     "DEFAULT_STEPS",
     "CHECKPOINT",
     "prepare_dispersion",
+    "job_load",
     "sample_problem",
     "build_dispersion_result",
 ]
@@ -103,22 +110,29 @@ class DispersionFit(FitResult):
 # --------------------------------------------------------------------------------------
 # the problem and where it starts
 # --------------------------------------------------------------------------------------
+def job_load(load: LoadOptions | Mapping[str, Any] | None = None) -> LoadOptions:
+    """``load`` as :class:`polkit.data.LoadOptions`, with the default camera steps when unset.
+
+    A job prepares a map with :class:`polkit.data.CameraOptions` (offset, saturation and
+    spike masks on) unless ``load.camera`` says otherwise.
+    """
+    from polkit.data import CameraOptions, LoadOptions
+
+    load = LoadOptions.of(load)
+    return load if load.camera is not None else dataclasses.replace(load, camera=CameraOptions())
+
+
 def prepare_dispersion(
     source: str | os.PathLike | xr.DataArray,
     *,
     model: str = "two",
-    kind: str | None = None,
     priors: str | os.PathLike | dict | None = None,
-    wavelength_medium: str | None = None,
-    angle_window: tuple[float, float] | None = None,
-    energy_window: tuple[float, float] | None = None,
-    load_options: dict | None = None,
+    load: LoadOptions | Mapping[str, Any] | None = None,
     profile: str = "lorentzian",
-    camera=None,
 ) -> tuple[DispersionProblem, DispersionStart]:
     """Load, crop and describe a map: the problem to fit and where to start.
 
-    Parameters are those of :func:`fit_dispersion` (``camera=None`` means the default
+    Parameters are those of :func:`fit_dispersion` (``load.camera=None`` means the default
     :class:`polkit.data.CameraOptions`: offset, saturation and spike masks on).
 
     Returns
@@ -127,15 +141,13 @@ def prepare_dispersion(
         ``(problem, start)``: the :class:`DispersionProblem` (with the peak table) and
         the :class:`DispersionStart`.
     """
-    from polkit.data import CameraOptions
-
-    camera = CameraOptions() if camera is None else camera
-    src = open_map(source, model=model, kind=kind, wavelength_medium=wavelength_medium,
-                   load_options=load_options, camera=camera).cropped(angle_window, energy_window)
+    load = job_load(load)
+    src = open_map(source, model=model, load=load).cropped(load.angle_window,
+                                                           load.energy_window)
     warn_large_map(src.data)
     table, guess, space = peak_start(src.data, n_excitons=src.n_excitons, kind=src.kind,
                                      priors=priors, profile=profile, coupling=src.coupling,
-                                     min_snr=camera.min_snr)
+                                     min_snr=load.camera.min_snr)
     x0 = start_vector(space, guess)
     problem = map_problem(src, space, table=table)
     return problem, DispersionStart(src, table, guess, x0)
@@ -181,7 +193,6 @@ def build_dispersion_result(
     DispersionFit
     """
     space = problem.space
-    da = source.data
     axis = source.axis
     derived = problem.derived(posterior_theta(output, space))
     strong = derived.pop("strong_coupling")
@@ -190,35 +201,11 @@ def build_dispersion_result(
         "1",
         "posterior probability that 2g > (gamma_C + gamma_X)/2",
     )
-    observed = xr.Dataset({"map": da.assign_attrs(dict(da.attrs))})
-    observed["inverse_variance"] = (
-        (axis, "energy"),
-        problem.inv_var,
-        {"units": f"1/({da.attrs.get('units', '1')})^2"},
-    )
-    for name in ("energy", "energy_error", "fwhm", "fwhm_error", "found"):
-        if table is not None and name in table:
-            observed[f"peak_{name}"] = (
-                table[name].rename({"peak": "peak_index"})
-                if "peak" in table[name].dims
-                else table[name]
-            )
-    for key in ("source", "sample", "position"):
-        if key in da.attrs:
-            observed.attrs[key] = str(da.attrs[key])
+    observed = _observed(problem, source, table)
     extra: dict[str, Any] = {"fit_path": path, "in_plane_axis": axis,
                              "n_excitons": source.n_excitons, "background": problem.background}
-    cal = getattr(problem, "noise_calibration", None) or {}
     if path == "whole_map":
-        from polkit.jobs.dispersion.check import problem_model_check
-
-        median = np.median(posterior_theta(output, space).reshape(-1, len(space)), axis=0)
-        check = problem_model_check(problem, median, da)
-        check["masked_pixels"] = {"outliers": int(cal.get("outliers", 0)),
-                                  "saturated": int(cal.get("saturated", 0)),
-                                  "cut": float(cal.get("cut", float("nan"))),
-                                  "cut_units": "standardised residual (sigma)"}
-        extra["model_check"] = check
+        extra["model_check"] = _model_check(problem, output, source.data)
     prov: dict[str, Any] = {
         "background": f"{problem.background} in energy, per {axis}",
         "input_sha256": source.sha256,
@@ -240,6 +227,45 @@ def build_dispersion_result(
     )
 
 
+def _observed(problem: DispersionProblem, source: MapInput,
+              table: xr.Dataset | None) -> xr.Dataset:
+    """The observed data a result keeps: the map, its inverse variance, the peak table."""
+    da = source.data
+    observed = xr.Dataset({"map": da.assign_attrs(dict(da.attrs))})
+    observed["inverse_variance"] = (
+        (source.axis, "energy"),
+        problem.inv_var,
+        {"units": f"1/({da.attrs.get('units', '1')})^2"},
+    )
+    for name in ("energy", "energy_error", "fwhm", "fwhm_error", "found"):
+        if table is not None and name in table:
+            observed[f"peak_{name}"] = (
+                table[name].rename({"peak": "peak_index"})
+                if "peak" in table[name].dims
+                else table[name]
+            )
+    for key in ("source", "sample", "position"):
+        if key in da.attrs:
+            observed.attrs[key] = str(da.attrs[key])
+    return observed
+
+
+def _model_check(problem: DispersionProblem, output: SamplerOutput,
+                 da: xr.DataArray) -> dict[str, Any]:
+    """The model check at the posterior median, with the pixels the noise model left out."""
+    from polkit.jobs.dispersion.check import problem_model_check
+
+    space = problem.space
+    cal = getattr(problem, "noise_calibration", None) or {}
+    median = np.median(posterior_theta(output, space).reshape(-1, len(space)), axis=0)
+    check = problem_model_check(problem, median, da)
+    check["masked_pixels"] = {"outliers": int(cal.get("outliers", 0)),
+                              "saturated": int(cal.get("saturated", 0)),
+                              "cut": float(cal.get("cut", float("nan"))),
+                              "cut_units": "standardised residual (sigma)"}
+    return check
+
+
 def _camera_provenance(begin: DispersionStart) -> dict[str, Any]:
     """What the camera steps masked (from the map's ``preprocessing`` JSON) and min_snr."""
     from polkit.data.camera import preprocessing_record
@@ -251,30 +277,72 @@ def _camera_provenance(begin: DispersionStart) -> dict[str, Any]:
 # --------------------------------------------------------------------------------------
 # the job
 # --------------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class _Route:
+    """Which likelihood a fit samples, from where, and the mode search behind the start."""
+
+    path: str
+    log_likelihood: Any
+    start: Any
+    noise_note: str
+    search: Any = None
+
+
+def _route(problem: DispersionProblem, begin: DispersionStart, peaks_only: bool) -> _Route:
+    """The peak-table mode, then (whole map) the mode search and the robust noise model."""
+    table_map = table_mode(problem, begin.x0)
+    if peaks_only:
+        return _Route("peak_table", problem.table_log_likelihood, table_map, PEAK_TABLE_NOISE)
+    search = search_modes(problem, [("usual start",
+                                     whole_map_start(problem, begin.x0, table_map.x))])
+    # robust noise model and outlier mask at the best mode, the mode again (and a
+    # spike-free start when the model check then fails)
+    start, noise_note = protected_mode(problem, search.best, begin.source.data, begin.x0,
+                                       table_map.x)
+    search = search.rescored(problem, start)
+    return _Route("whole_map", problem.log_likelihood, start, noise_note, search)
+
+
+def _fit_identity(model: str, begin: DispersionStart, route: _Route, load: LoadOptions,
+                  profile: str) -> dict[str, Any]:
+    """The fit identity of a dispersion run (what a resumed run must share)."""
+    return job_identity(begin.source.sha256, f"{model} {begin.source.kind}", route.path,
+                        route.noise_note,
+                        dict(angle_window=load.angle_window, energy_window=load.energy_window,
+                             profile=profile, wavelength_medium=load.wavelength_medium,
+                             load_options=loader_changes(load) or None,
+                             camera=_camera_provenance(begin)))
+
+
+def _sampled_result(problem: DispersionProblem, begin: DispersionStart, route: _Route,
+                    output: SamplerOutput, profile: str) -> DispersionFit:
+    """The result of a run: the mode-margin gate (or the peak-table caveat), the weights."""
+    if route.search is not None:
+        output = check_mode_margin(output, route.search, problem)
+    else:
+        output = add_caveats(output, [PEAK_TABLE_COVERAGE])
+    result = build_dispersion_result(problem, output, begin.source, path=route.path,
+                                     noise_note=route.noise_note, profile=profile,
+                                     table=begin.table, provenance=_camera_provenance(begin))
+    if route.search is not None:
+        result = weigh_strong_coupling(result, route.search, problem)
+    return result
+
+
 @locks_output
 def fit_dispersion(
     source: str | os.PathLike | xr.DataArray,
     *,
     model: str = "two",
-    kind: str | None = None,
     peaks_only: bool = False,
     priors: str | os.PathLike | dict | None = None,
     seed: int | np.random.SeedSequence | None = None,
-    resume: bool = False,
-    strict: bool = False,
     out: str | os.PathLike | None = None,
-    max_steps: int | None = None,
-    min_steps: int | None = None,
-    n_walkers: int | None = None,
-    progress: bool = True,
-    wavelength_medium: str | None = None,
-    angle_window: tuple[float, float] | None = None,
-    energy_window: tuple[float, float] | None = None,
-    load_options: dict | None = None,
-    stop_event=None,
-    figures: bool = True,
+    resume: bool = False,
+    sampler: SamplerSettings | Mapping[str, Any] | None = None,
+    load: LoadOptions | Mapping[str, Any] | None = None,
     profile: str = "lorentzian",
-    camera=None,
+    figures: bool = True,
     quick: bool = False,
 ) -> DispersionFit | dict:
     """Fit a coupled-oscillator model to an angle-resolved map.
@@ -286,39 +354,38 @@ def fit_dispersion(
     model
         ``"two"`` (photon + one exciton), ``"three"`` (photon + two excitons) or ``"weak"``
         (the uncoupled cavity mode and exciton line, ``g = 0``: the alternative of a model
-        comparison, :func:`polkit.jobs.dispersion.compare.compare_dispersion_models`).
-    kind
-        ``"emission"`` or ``"reflectance"``; default from the map's attributes.
+        comparison, :func:`polkit.jobs.dispersion.compare.compare_models`).
     peaks_only
         Fit the per-angle peak table only (fast; seeds the whole-map fit otherwise).
     priors
         TOML file or dict of priors overriding the defaults (keys: parameter names).
     seed
         Root seed (recorded; the same seed gives the same summary).
-    resume
-        Continue from ``out/chains.h5``.
-    strict
-        Four ensembles gated on nested R-hat <= 1.01.
     out
         Output folder (``posterior.nc``, ``summary.json``, figures, ``chains.h5``); nothing
         is written when ``None`` (then ``resume`` is unavailable).
-    max_steps, min_steps, n_walkers
-        Sampler limits (defaults 10000, 400 and 32; more walkers for the three-oscillator model).
-    progress
-        Progress bar (tqdm.auto).
-    angle_window, energy_window
-        Crop before fitting (degree or 1/um; eV).
-    stop_event
-        A :class:`threading.Event` that ends sampling early (result marked not converged).
-    figures
-        Write figures to ``out``.
+    resume
+        Continue from ``out/chains.h5``.
+    sampler
+        A :class:`polkit.inference.SamplerSettings` (or a dict of its fields): step limits
+        (defaults 10000 and 400 steps; 32 walkers, more for the three-oscillator model),
+        ``strict`` (four ensembles gated on nested R-hat <= 1.01), ``progress`` (a
+        tqdm.auto bar, default on) and ``stop_event`` (a :class:`threading.Event` that
+        ends sampling early; the result is then marked not converged).
+    load
+        A :class:`polkit.data.LoadOptions` (or a dict of its fields): ``kind``
+        (``"emission"`` or ``"reflectance"``; default from the map's attributes),
+        ``wavelength_medium`` and the loader's options (see :func:`polkit.load_map`),
+        ``angle_window`` and ``energy_window`` (crop before fitting: degree or 1/um; eV),
+        and ``camera``: a :class:`polkit.data.CameraOptions` (default: its defaults):
+        camera offset subtracted before unit conversion, saturated pixels and cosmic-ray
+        spikes masked, excluded windows, the peak table's detection threshold.  What was
+        masked is counted in the observed map's ``preprocessing`` attribute and in the
+        provenance.
     profile
         Peak shape of the peak table, ``"lorentzian"`` or ``"voigt"``.
-    camera
-        A :class:`polkit.data.CameraOptions` (default: its defaults): camera offset
-        subtracted before unit conversion, saturated pixels and cosmic-ray spikes masked,
-        excluded windows, the peak table's detection threshold.  What was masked is counted
-        in the observed map's ``preprocessing`` attribute and in the provenance.
+    figures
+        Write figures to ``out``.
     quick
         Stop after the quick answer at the mode (Laplace summary, labelled approximate):
         it is returned as a dict and written to ``out/quick_summary.json``; no chains.
@@ -328,52 +395,20 @@ def fit_dispersion(
     DispersionFit
         Posterior, derived quantities, diagnostics and provenance.
     """
-
-    problem, begin = prepare_dispersion(
-        source, model=model, kind=kind, priors=priors, wavelength_medium=wavelength_medium,
-        angle_window=angle_window, energy_window=energy_window, load_options=load_options,
-        profile=profile, camera=camera,
-    )
+    load = job_load(load)
+    problem, begin = prepare_dispersion(source, model=model, priors=priors, load=load,
+                                        profile=profile)
     checkpoint = None if quick else checkpoint_file(out, resume, refusal=DataError(
         "resume needs the output folder that holds the checkpoint; pass out=.", field="resume"))
-    sampler = job_sampler(DEFAULT_STEPS, SamplerSettings(
-        max_steps=max_steps, min_steps=min_steps, n_walkers=n_walkers, progress=progress,
-        strict=strict, stop_event=stop_event))
-
-    table_map = table_mode(problem, begin.x0)
-    search = None
-    if peaks_only:
-        path_used, like, start = "peak_table", problem.table_log_likelihood, table_map
-        noise_note = PEAK_TABLE_NOISE
-    else:
-        path_used, like = "whole_map", problem.log_likelihood
-        search = search_modes(problem, [("usual start",
-                                         whole_map_start(problem, begin.x0, table_map.x))])
-        # robust noise model and outlier mask at the best mode, the mode again (and a
-        # spike-free start when the model check then fails)
-        start, noise_note = protected_mode(problem, search.best, begin.source.data, begin.x0,
-                                           table_map.x)
-        search = search.rescored(problem, start)
+    sampler = job_sampler(DEFAULT_STEPS, sampler)
+    route = _route(problem, begin, peaks_only)
     if quick:  # the Laplace summary at the mode only: no chains
-        return quick_answer(problem, start, log_likelihood=like, out=out)
-
-    identity = job_identity(begin.source.sha256, f"{model} {begin.source.kind}", path_used,
-                            noise_note, dict(angle_window=angle_window, energy_window=energy_window,
-                                             profile=profile, wavelength_medium=wavelength_medium,
-                                             load_options=load_options,
-                                             camera=_camera_provenance(begin)))
-    output = sample_problem(problem, start, sampler=sampler, log_likelihood=like,
-                            seed=seed, pre_burn=True, checkpoint=checkpoint, resume=resume,
-                            identity=identity)
-    if search is not None:
-        output = check_mode_margin(output, search, problem)
-    else:
-        output = add_caveats(output, [PEAK_TABLE_COVERAGE])
-    result = build_dispersion_result(problem, output, begin.source, path=path_used,
-                                     noise_note=noise_note, profile=profile, table=begin.table,
-                                     provenance=_camera_provenance(begin))
-    if search is not None:
-        result = weigh_strong_coupling(result, search, problem)
+        return quick_answer(problem, route.start, log_likelihood=route.log_likelihood, out=out)
+    output = sample_problem(problem, route.start, sampler=sampler,
+                            log_likelihood=route.log_likelihood, seed=seed, pre_burn=True,
+                            checkpoint=checkpoint, resume=resume,
+                            identity=_fit_identity(model, begin, route, load, profile))
+    result = _sampled_result(problem, begin, route, output, profile)
     if out is not None:
         result.save(Path(out))
         if figures:

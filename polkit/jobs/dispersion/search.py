@@ -38,13 +38,19 @@ from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
-from scipy import optimize, special, stats
-from scipy.stats import qmc
+from scipy import special
 from threadpoolctl import threadpool_limits
 
 from polkit.errors import ConvergenceWarning
 from polkit.inference import LogPosterior, MapResult, SamplerOutput, find_map
 from polkit.inference.laplace import central_hessian
+from polkit.jobs.dispersion.exploration import (
+    DESIGN_SEED,
+    branch_grid,
+    hill_climb,
+    polish,
+    sobol_design,
+)
 
 __all__ = [
     "MODE_MARGIN_NATS",
@@ -64,9 +70,6 @@ MODE_MARGIN_NATS = 2.0
 DESIGN_POINTS = 4096
 #: design points improved together by the vectorised hill climb
 CLIMB_CANDIDATES = 16
-#: iterations and proposals per candidate of the hill climb
-CLIMB_ITERATIONS = 25
-CLIMB_PROPOSALS = 16
 #: local optimisations started from the best distant climbed points
 LOCAL_STARTS = 3
 #: minimum Euclidean distance between two design starts in unit-box coordinates
@@ -75,10 +78,6 @@ START_SEPARATION = 0.2
 RESCORE_WINDOW_NATS = 50.0
 #: optima closer than this many local spreads in every parameter are one mode
 SAME_MODE_SPREADS = 3.0
-#: parameters held at the start's value in the design (not physics)
-_HELD = ("noise_scale",)
-#: fixed seed of the design: the search depends on the data only, not on the run's seed
-_DESIGN_SEED = 20240611
 #: quantities reported per mode (with units from the space or here)
 _KEY_DERIVED = {"detuning": "meV"}
 
@@ -223,33 +222,8 @@ class ModeSearch:
 
 
 # --------------------------------------------------------------------------------------
-# the design
+# the search
 # --------------------------------------------------------------------------------------
-def _from_unit(prior, u: np.ndarray) -> np.ndarray:
-    """Map unit-interval coordinates onto a prior's support (by its quantiles)."""
-    eps = 1e-9
-    u = np.clip(u, eps, 1.0 - eps)
-    if prior.kind == "uniform":
-        return prior.low + u * (prior.high - prior.low)
-    if prior.kind == "loguniform":
-        return np.exp(np.log(prior.low) + u * (np.log(prior.high) - np.log(prior.low)))
-    if prior.kind == "normal":
-        return prior.mu + prior.sigma * stats.norm.ppf(u)
-    a, b = (prior.low - prior.mu) / prior.sigma, (prior.high - prior.mu) / prior.sigma
-    return stats.truncnorm.ppf(u, a, b, loc=prior.mu, scale=prior.sigma)
-
-
-def _design(space, held: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:
-    """Sobol points ``(n, P)`` in the parameters' units, and their unit-box coordinates."""
-    free = [j for j, name in enumerate(space.names) if name not in _HELD]
-    sobol = qmc.Sobol(d=len(free), scramble=True, seed=np.random.default_rng(_DESIGN_SEED))
-    u = sobol.random_base2(int(round(math.log2(n))))
-    theta = np.repeat(np.asarray(held, dtype=float)[None, :], u.shape[0], axis=0)
-    for k, j in enumerate(free):
-        theta[:, j] = _from_unit(space[space.names[j]].prior, u[:, k])
-    return theta, u
-
-
 def _diverse(order: np.ndarray, u: np.ndarray, values: np.ndarray, k: int,
              separation: float) -> list[int]:
     """Up to ``k`` of the best points, each at least ``separation`` apart in the unit box."""
@@ -267,173 +241,6 @@ def _diverse(order: np.ndarray, u: np.ndarray, values: np.ndarray, k: int,
 def _same(a: Mode, b: Mode) -> bool:
     tol = SAME_MODE_SPREADS * np.maximum(np.maximum(a.scale, b.scale), 1e-12)
     return bool(np.all(np.abs(a.x - b.x) <= tol))
-
-
-def _climb(post, space, theta0: np.ndarray, u0: np.ndarray, held: np.ndarray, *,
-           iterations: int = CLIMB_ITERATIONS, proposals: int = CLIMB_PROPOSALS,
-           rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray, np.ndarray, int]:
-    """A vectorised stochastic hill climb of many candidates at once, in unit-box coordinates.
-
-    Each iteration proposes ``proposals`` Gaussian moves per candidate (one call of the
-    posterior for all of them), keeps the best move when it improves and widens that
-    candidate's step (x1.3), else narrows it (x0.6).  It brings rough design points close
-    enough to their local optimum for the gradient optimiser to finish quickly.
-    # common practice, no published source
-    """
-    free = [j for j, name in enumerate(space.names) if name not in _HELD]
-    k, d = u0.shape
-    u = u0.copy()
-    theta = theta0.copy()
-    value = np.asarray(post(theta), dtype=float)
-    step = np.full(k, 0.05)
-    calls = 0
-    for _ in range(iterations):
-        trial = u[:, None, :] + step[:, None, None] * rng.standard_normal((k, proposals, d))
-        trial = np.clip(trial, 0.0, 1.0).reshape(-1, d)
-        th = np.repeat(np.asarray(held, dtype=float)[None, :], trial.shape[0], axis=0)
-        for c, j in enumerate(free):
-            th[:, j] = _from_unit(space[space.names[j]].prior, trial[:, c])
-        v = np.asarray(post(th), dtype=float).reshape(k, proposals)
-        v = np.where(np.isfinite(v), v, -np.inf)
-        calls += trial.shape[0]
-        best = np.argmax(v, axis=1)
-        gain = v[np.arange(k), best] > value
-        pick = np.arange(k) * proposals + best
-        u[gain] = trial[pick[gain]]
-        theta[gain] = th[pick[gain]]
-        value[gain] = v[np.arange(k), best][gain]
-        step = np.clip(np.where(gain, step * 1.3, step * 0.6), 1e-4, 0.3)
-    return theta, u, value, calls
-
-
-#: exciton energies x Rabi splittings of the branch-consistent grid
-BRANCH_GRID = (48, 32)
-#: hbar c in eV um  # Source: CODATA via scipy.constants
-_HBARC_EV_UM = 0.1973269804593025
-
-
-def _branch_grid(problem, held: np.ndarray, shape: tuple[int, int] = BRANCH_GRID):
-    """Points of the prior box that put one branch on the branch the peak table saw.
-
-    A map where only one branch is bright (a dim upper branch at room temperature, a faint
-    one at low counts) fixes that branch's energy ``L(theta)`` well but leaves the exciton
-    energy and the coupling nearly degenerate, and a random design rarely lands in the
-    narrow ridge of parameters that reproduce ``L``.  For every exciton energy ``E_X`` and
-    splitting ``2g`` of a grid over their priors, the coupled-oscillator relation
-    ``(L - E_C)(L - E_X) = g^2`` (Hopfield, Phys. Rev. 112, 1555 (1958), the 2 x 2
-    eigenvalue equation) gives the cavity energy at each angle where the branch was seen,
-    ``E_C = L + g^2 / (E_X - L)`` (the seen branch is the lower one where ``E_X > L``, the
-    upper one where ``E_X < L``); the planar-cavity dispersion, linear in ``sin^2(theta)``
-    for ``1/E_C^2`` (in ``k^2`` for ``E_C^2``), then gives ``E_C0`` and ``n_eff`` by linear
-    least squares.  Linewidths come from the table.  The whole-map posterior decides where
-    the dim branch is.  Returns ``(theta, unit_coordinates)`` or ``None``.
-    # common practice, no published source
-    """
-    space = problem.space
-    names = space.names
-    table = getattr(problem, "table", None)
-    if table is None or "rabi_splitting" not in names or "energy" not in table:
-        return None
-    found = np.asarray(table["found"].values, dtype=bool) & np.isfinite(table["energy"].values)
-    if found.ndim != 2 or not found.any():
-        return None
-    col = int(np.argmax(found.sum(axis=0)))
-    rows = found[:, col]
-    if rows.sum() < 4:
-        return None
-    lev = np.asarray(table["energy"].values[rows, col], dtype=float)  # eV
-    x_in = np.asarray(problem.in_plane, dtype=float)[rows]
-    fwhm = np.asarray(table["fwhm"].values[rows, col], dtype=float) if "fwhm" in table else []
-    to_mev = {"meV": 1.0, "eV": 1e3}.get(str(table["fwhm"].attrs.get("units", "meV")), 1.0) \
-        if "fwhm" in table else 1.0
-    width = float(np.nanmedian(fwhm)) * to_mev if np.size(fwhm) else float("nan")  # meV
-    ex_prior, g_prior = space["exciton_energy"].prior, space["rabi_splitting"].prior
-    ex = np.linspace(*_support(ex_prior), shape[0])
-    g_lo, g_hi = _support(g_prior)
-    rabi = np.geomspace(max(g_lo, 0.02 * g_hi, 1e-3), g_hi, shape[1])  # meV
-    ex_g, rabi_g = (a.ravel() for a in np.meshgrid(ex, rabi, indexing="ij"))
-    g = 0.5e-3 * rabi_g  # eV
-    diff = ex_g[:, None] - lev[None, :]
-    same_side = np.all(diff > 0, axis=1) | np.all(diff < 0, axis=1)
-    e_c = lev[None, :] + g[:, None] ** 2 / np.where(diff == 0, np.nan, diff)
-    if problem.axis == "angle":
-        reg, y = np.sin(np.radians(x_in)) ** 2, 1.0 / e_c**2
-    else:
-        reg, y = x_in**2, e_c**2
-    design = np.column_stack([np.ones_like(reg), reg])
-    coef = np.linalg.lstsq(design, np.nan_to_num(y).T, rcond=None)[0]  # (2, G)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        if problem.axis == "angle":
-            e_c0, n_eff = 1.0 / np.sqrt(coef[0]), np.sqrt(coef[0] / -coef[1])
-        else:
-            e_c0, n_eff = np.sqrt(coef[0]), _HBARC_EV_UM / np.sqrt(coef[1])
-    ok = same_side & np.isfinite(e_c0) & np.isfinite(n_eff)
-    if not ok.any():
-        return None
-    theta = np.repeat(np.asarray(held, dtype=float)[None, :], ok.sum(), axis=0)
-    values = {"exciton_energy": ex_g[ok], "rabi_splitting": rabi_g[ok],
-              "cavity_energy": e_c0[ok], "n_eff": n_eff[ok]}
-    if np.isfinite(width) and width > 0:
-        values["cavity_linewidth"] = np.full(ok.sum(), width)
-        values["exciton_linewidth"] = np.full(ok.sum(), width)
-    lo, hi = space.bounds.T
-    for name, v in values.items():
-        if name in names:
-            j = names.index(name)
-            theta[:, j] = v
-    inside = np.all((theta >= lo) & (theta <= hi), axis=1)
-    if not inside.any():
-        return None
-    theta = theta[inside]
-    u = (theta - lo) / np.where(hi > lo, hi - lo, 1.0)
-    free = [j for j, name in enumerate(names) if name not in _HELD]
-    return theta, u[:, free]
-
-
-def _support(prior) -> tuple[float, float]:
-    """A finite range of a prior (its bounds, or mu -/+ 3 sigma)."""
-    if prior.kind in ("uniform", "loguniform"):
-        return float(prior.low), float(prior.high)
-    lo = getattr(prior, "low", None)
-    hi = getattr(prior, "high", None)
-    mu, sd = float(prior.mu), float(prior.sigma)
-    lo = mu - 3 * sd if lo is None or not np.isfinite(lo) else max(float(lo), mu - 3 * sd)
-    hi = mu + 3 * sd if hi is None or not np.isfinite(hi) else min(float(hi), mu + 3 * sd)
-    return lo, hi
-
-
-def _polish(post, space, x0: np.ndarray) -> MapResult:
-    """A local optimum from ``x0``: L-BFGS-B with the gradient from one vectorised call.
-
-    Central differences (step 1e-4 of each parameter's typical scale, one-sided at a
-    bound) are evaluated for every parameter in a single call of the posterior, which is
-    far cheaper than one call per parameter; :func:`~polkit.inference.find_map` then
-    finishes from the optimum and gives the local spread.
-    # common practice, no published source
-    """
-    s = space.scales
-    lo, hi = space.bounds.T
-    p = x0.size
-    eye = np.eye(p)
-
-    def fun_grad(z):
-        x = np.clip(x0 + s * z, lo, hi)
-        up = np.clip(x[None, :] + 1e-4 * s * eye, lo, hi)
-        down = np.clip(x[None, :] - 1e-4 * s * eye, lo, hi)
-        f = np.asarray(post(np.vstack([x[None, :], up, down])), dtype=float)
-        if not np.isfinite(f[0]):
-            return 1e300, np.zeros(p)
-        fu, fd = f[1:p + 1], f[p + 1:]
-        fu = np.where(np.isfinite(fu), fu, f[0])
-        fd = np.where(np.isfinite(fd), fd, f[0])
-        span = (np.diag(up) - np.diag(down)) / s
-        grad = np.where(span > 0, (fu - fd) / np.where(span > 0, span, 1.0), 0.0)
-        return -f[0], -grad
-
-    zb = list(zip((lo - x0) / s, (hi - x0) / s, strict=True))
-    res = optimize.minimize(fun_grad, np.zeros(p), jac=True, method="L-BFGS-B", bounds=zb,
-                            options={"maxiter": 200})
-    return find_map(post, space, np.clip(x0 + s * res.x, lo, hi))
 
 
 def search_modes(problem, starts: list[tuple[str, MapResult]], *,
@@ -462,7 +269,7 @@ def _search_modes(problem, starts: list[tuple[str, MapResult]], *,
         Sobol points (rounded to a power of two).
     n_climb
         The best mutually distant design points improved together by a vectorised hill
-        climb (:func:`_climb`).
+        climb (:func:`~polkit.jobs.dispersion.exploration.hill_climb`).
     n_local
         Local optimisations (:func:`~polkit.inference.find_map`) from the best mutually
         distant climbed points.
@@ -476,7 +283,7 @@ def _search_modes(problem, starts: list[tuple[str, MapResult]], *,
     space = problem.space
     post = LogPosterior(problem.log_likelihood, space)
     held = starts[0][1].x
-    theta, u = _design(space, held, n_design)
+    theta, u = sobol_design(space, held, n_design)
     values = np.concatenate([np.asarray(post(theta[i:i + 1024]), dtype=float)
                              for i in range(0, theta.shape[0], 1024)])
     values = np.where(np.isfinite(values), values, -np.inf)
@@ -484,19 +291,19 @@ def _search_modes(problem, starts: list[tuple[str, MapResult]], *,
     order = np.argsort(-values, kind="stable")
     design_best = float(values[order[0]])
     picks = _diverse(order, u, values, n_climb, START_SEPARATION)
-    rng = np.random.default_rng(_DESIGN_SEED)
-    c_theta, c_u, c_val, calls = _climb(post, space, theta[picks], u[picks], held, rng=rng)
+    rng = np.random.default_rng(DESIGN_SEED)
+    c_theta, c_u, c_val, calls = hill_climb(post, space, theta[picks], u[picks], held, rng=rng)
     evaluations += calls
     c_order = np.argsort(-c_val, kind="stable")
     local = _diverse(c_order, c_u, c_val, n_local, 0.5 * START_SEPARATION)
     modes = [Mode(np.array(r.x), float(r.log_post), np.array(r.scale), label)
              for label, r in starts]
     for rank, i in enumerate(local):
-        r = _polish(post, space, c_theta[i])
+        r = polish(post, space, c_theta[i])
         cand = Mode(r.x, float(r.log_post), r.scale, f"design point {rank}")
         if not any(_same(cand, m) for m in modes):
             modes.append(cand)
-    grid = _branch_grid(problem, held)
+    grid = branch_grid(problem, held)
     if grid is not None:
         g_theta, g_u = grid
         g_val = np.concatenate([np.asarray(post(g_theta[i:i + 1024]), dtype=float)
@@ -505,7 +312,7 @@ def _search_modes(problem, starts: list[tuple[str, MapResult]], *,
         evaluations += g_theta.shape[0]
         g_order = np.argsort(-g_val, kind="stable")
         for rank, i in enumerate(_diverse(g_order, g_u, g_val, n_local, 0.5 * START_SEPARATION)):
-            r = _polish(post, space, g_theta[i])
+            r = polish(post, space, g_theta[i])
             cand = Mode(r.x, float(r.log_post), r.scale, f"branch grid point {rank}")
             if not any(_same(cand, m) for m in modes):
                 modes.append(cand)
@@ -638,7 +445,7 @@ def weigh_strong_coupling(result, search: ModeSearch, problem, *,
     if "probabilities" not in tree.children or name not in tree["probabilities"].data_vars:
         return result
     sampled = float(tree["probabilities"][name].values)
-    rng = np.random.default_rng(_DESIGN_SEED)
+    rng = np.random.default_rng(DESIGN_SEED)
     probs = {search.chosen: sampled}
     for i in others:
         probs[i] = _mode_strong_probability(problem, search.modes[i], rng)

@@ -22,7 +22,7 @@ import os
 from collections.abc import Mapping
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import xarray as xr
@@ -30,21 +30,19 @@ import xarray as xr
 from polkit.errors import DataError
 from polkit.files import file_sha256
 from polkit.inference import LogPosterior, MapResult, ParameterSpace, apply_priors, find_map
-from polkit.jobs.dispersion.noise import calibrate_noise
-from polkit.jobs.dispersion.problem import (
-    MODELS,
-    DispersionProblem,
-    default_space,
-    guess_from_peaks,
-    in_plane_axis,
-    noise_inverse_variance,
-)
+from polkit.jobs.dispersion.noise import calibrate_noise, noise_inverse_variance
+from polkit.jobs.dispersion.parameters import default_space, guess_from_peaks
+from polkit.jobs.dispersion.problem import MODELS, DispersionProblem, in_plane_axis
 from polkit.jobs.steps import clip_into
+
+if TYPE_CHECKING:
+    from polkit.data import LoadOptions
 
 __all__ = [
     "MapInput",
     "DispersionStart",
     "open_map",
+    "loader_changes",
     "peak_start",
     "start_vector",
     "map_problem",
@@ -127,8 +125,39 @@ class MapInput:
         return dataclasses.replace(self, data=da.transpose(self.axis, "energy"))
 
 
-def _load(source, wavelength_medium, load_options, camera=None):
-    """The map, its hash and name; with ``camera`` the camera steps are applied.
+#: LoadOptions fields a dispersion job reads itself (the rest go to the file loader)
+_JOB_FIELDS = ("kind", "wavelength_medium", "angle_window", "energy_window", "camera",
+               "reader_options")
+
+
+def loader_changes(load: LoadOptions) -> dict[str, Any]:
+    """The loader options of ``load`` that differ from the defaults, as a plain dict.
+
+    Everything but the spectrum kind, the wavelength medium, the windows and the camera
+    (which the job handles itself); a reader's own options are merged in.  This is what
+    the file loader receives beside the medium, and what a fit records of the loading in
+    its identity (``load_options``).
+    """
+    from polkit.data import LoadOptions
+
+    default = LoadOptions()
+    out = {f.name: getattr(load, f.name) for f in dataclasses.fields(load)
+           if f.name not in _JOB_FIELDS
+           and _differs(getattr(load, f.name), getattr(default, f.name))}
+    out.update(load.reader_options)
+    return out
+
+
+def _differs(value, default) -> bool:
+    """Whether an option's value is not its default (anything not comparable differs)."""
+    try:
+        return bool(value != default)
+    except (TypeError, ValueError):
+        return True
+
+
+def _load(source, load: LoadOptions):
+    """The map, its hash and name; with ``load.camera`` the camera steps are applied.
 
     A file's offset and saturation are handled by the loader on the raw counts (before
     any unit conversion); spikes and excluded windows on the canonical map
@@ -136,9 +165,10 @@ def _load(source, wavelength_medium, load_options, camera=None):
     """
     from polkit import data
 
-    opts = dict(load_options or {})
-    if wavelength_medium is not None:
-        opts["wavelength_medium"] = wavelength_medium
+    camera = load.camera
+    opts = loader_changes(load)
+    if load.wavelength_medium is not None:
+        opts["wavelength_medium"] = load.wavelength_medium
     if isinstance(source, xr.DataArray):
         da = data.validate_map(source)
         sha, name = _array_sha256(da), da.attrs.get("source", "<in memory>")
@@ -158,31 +188,26 @@ def open_map(
     source: str | os.PathLike | xr.DataArray,
     *,
     model: str = "two",
-    kind: str | None = None,
-    wavelength_medium: str | None = None,
-    load_options: dict | None = None,
-    camera=None,
+    load: LoadOptions | Mapping[str, Any] | None = None,
 ) -> MapInput:
     """Load and validate a map and check the model and the kind of spectrum.
 
     Parameters
     ----------
-    source
-        A map file (any format :func:`polkit.load_map` reads) or a canonical map.
-    model
-        ``"two"`` (photon + one exciton), ``"three"`` (photon + two excitons) or ``"weak"``
-        (the uncoupled cavity mode and exciton line).
-    kind
-        ``"emission"``, ``"reflectance"`` or ``"transmission"``; default from the map's
-        attributes.  Transmission peaks follow the photon spectral function, so it is
-        fitted with the emission model.
-    wavelength_medium, load_options
-        Passed to the loader (see :func:`polkit.load_map`).
-    camera
-        A :class:`polkit.data.CameraOptions`: subtract the camera offset before unit
-        conversion, mask saturated pixels, cosmic-ray spikes and excluded windows (counted
-        in ``data.attrs["preprocessing"]``).  ``None`` (default here): none of these steps;
-        :func:`~polkit.jobs.dispersion.run.fit_dispersion` passes the default options.
+    source, model
+        The map and the model, as for :func:`~polkit.jobs.dispersion.run.fit_dispersion`.
+    load
+        A :class:`polkit.data.LoadOptions` (or a dict of its fields).  Read here:
+        ``kind`` (``"emission"``, ``"reflectance"`` or ``"transmission"``; default from
+        the map's attributes; transmission peaks follow the photon spectral function, so
+        it is fitted with the emission model), ``wavelength_medium`` and the loader
+        options (see :func:`polkit.load_map`), and ``camera``: a
+        :class:`polkit.data.CameraOptions` that subtracts the camera offset before unit
+        conversion and masks saturated pixels, cosmic-ray spikes and excluded windows
+        (counted in ``data.attrs["preprocessing"]``); ``camera=None`` (the default here):
+        none of these steps, while :func:`~polkit.jobs.dispersion.run.fit_dispersion`
+        uses the default options.  The windows are not applied here
+        (:meth:`MapInput.cropped`).
 
     Returns
     -------
@@ -194,11 +219,14 @@ def open_map(
     DataError
         Unknown model or kind, or a bad map (naming the file and the field).
     """
+    from polkit.data import LoadOptions
+
     if model not in MODELS:
         raise DataError(f"expected model 'weak', 'two' or 'three', found {model!r}.",
                         field="model")
-    da, sha, source_name = _load(source, wavelength_medium, load_options, camera)
-    kind = kind or da.attrs.get("kind", "emission")
+    load = LoadOptions.of(load)
+    da, sha, source_name = _load(source, load)
+    kind = load.kind or da.attrs.get("kind", "emission")
     if kind == "transmission":
         kind_model = "emission"  # transmission peaks follow the photon spectral function too
     elif kind in ("emission", "reflectance"):
@@ -305,7 +333,7 @@ def map_problem(source: MapInput, space: ParameterSpace, *,
     """The :class:`DispersionProblem` of a map, with its first noise model.
 
     The first noise model comes from the map alone
-    (:func:`~polkit.jobs.dispersion.problem.noise_inverse_variance`);
+    (:func:`~polkit.jobs.dispersion.noise.noise_inverse_variance`);
     :func:`calibrate_problem_noise` replaces it at a mode.  ``table`` enables the
     peak-table likelihood.
     """
