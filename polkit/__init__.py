@@ -27,7 +27,7 @@ _LAZY = {
     "load_series": "polkit.data",
     "FitResult": "polkit.inference",
     "fit_dispersion": "polkit.jobs.dispersion.run",
-    "compare_dispersion_models": "polkit.jobs.dispersion.compare",
+    "compare_models": "polkit.jobs.dispersion.compare",
     "fit_power": "polkit.jobs.power.run",
     "energy_budget": "polkit.jobs.budget.run",
     "run_survey": "polkit.jobs.survey.run",

@@ -50,6 +50,7 @@ def run_demo(
     when the gate is not passed, never as converged).
     """
     from polkit.errors import DataError
+    from polkit.inference.settings import SamplerSettings
 
     folder = Path(data) if data is not None else demo_folder()
     if not folder.is_dir():
@@ -63,7 +64,8 @@ def run_demo(
     _say("polkit demo on the invented sample DS-1 (simulated data; see data_examples/README.md)")
     _say(SAFETY_LINE)
     _data_stage(folder, out)
-    fit = {"progress": progress, **({"max_steps": 600, "min_steps": 200} if quick else {})}
+    steps = {"max_steps": 600, "min_steps": 200} if quick else {}
+    fit = SamplerSettings(progress=progress, **steps)
     results = {**_dispersion_stage(folder, out, seed, fit), **_power_stage(folder, out, seed, fit)}
     _budget_stage(folder, out, seed)
 
@@ -90,7 +92,7 @@ def _data_stage(folder: Path, out: Path) -> None:
         _say(text)
 
 
-def _dispersion_stage(folder: Path, out: Path, seed: int, fit: dict) -> dict:
+def _dispersion_stage(folder: Path, out: Path, seed: int, fit) -> dict:
     """Stage 2: the whole-map fit of P1 and the peak-table fit of P2; their detunings."""
     from polkit.jobs.dispersion.run import fit_dispersion
 
@@ -98,12 +100,12 @@ def _dispersion_stage(folder: Path, out: Path, seed: int, fit: dict) -> dict:
     with warnings.catch_warnings():
         warnings.simplefilter("default", ConvergenceWarning)
         r = fit_dispersion(folder / "ds1_p1_emission.nc", model="two", seed=seed,
-                           out=out / "dispersion_p1", **fit)
+                           out=out / "dispersion_p1", sampler=fit)
     _say(r.table())
 
     _say("\n== 2b. dispersion: peak-table fit of position P2 (air-wavelength file) ==")
     r2 = fit_dispersion(folder / "ds1_p2_emission_nm.txt", model="two", seed=seed + 1,
-                        peaks_only=True, out=out / "dispersion_p2", **fit)
+                        peaks_only=True, out=out / "dispersion_p2", sampler=fit)
     _say(r2.table())
     for label, res in (("P1", r), ("P2", r2)):
         d = res.summary()["parameters"]["detuning"]
@@ -114,9 +116,8 @@ def _dispersion_stage(folder: Path, out: Path, seed: int, fit: dict) -> dict:
     return {"dispersion_p1": r, "dispersion_p2": r2}
 
 
-def _power_stage(folder: Path, out: Path, seed: int, fit: dict) -> dict:
+def _power_stage(folder: Path, out: Path, seed: int, fit) -> dict:
     """Stage 3: the coherent (calibrated) and the nonresonant power series."""
-    from polkit.inference.settings import SamplerSettings
     from polkit.jobs.power.run import fit_power
 
     _say("\n== 3. power series: coherent drive (up and down sweeps), calibrated ==")
@@ -125,12 +126,12 @@ def _power_stage(folder: Path, out: Path, seed: int, fit: dict) -> dict:
         pc = fit_power(folder / "ds1_p1_power_coherent.csv", model="coherent",
                        calibration=folder / "ds1_calibration.toml",
                        dispersion=out / "dispersion_p1", seed=seed + 2,
-                       out=out / "power_coherent", sampler=SamplerSettings(**fit))
+                       out=out / "power_coherent", sampler=fit)
     _say(pc.table())
 
     _say("\n== 3b. power series: nonresonant drive, condensation threshold ==")
     pr = fit_power(folder / "ds1_p1_power_nonresonant.csv", model="reservoir", seed=seed + 3,
-                   out=out / "power_nonresonant", sampler=SamplerSettings(**fit))
+                   out=out / "power_nonresonant", sampler=fit)
     _say(pr.table())
     return {"power_coherent": pc, "power_nonresonant": pr}
 

@@ -59,8 +59,8 @@ def coverage(n_maps: int = 20, max_steps: int = 4000, first_seed: int = 100) -> 
             path = raw.write_txt(Path(tmp) / f"map{k}.txt")
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", PolkitWarning)
-                fit = polkit.fit_dispersion(path, peaks_only=True, seed=k + 1,
-                                            max_steps=max_steps, progress=False,
+                run = polkit.SamplerSettings(max_steps=max_steps, progress=False)
+                fit = polkit.fit_dispersion(path, peaks_only=True, seed=k + 1, sampler=run,
                                             figures=False)
             s = fit.summary()
             converged += bool(s["diagnostics"]["converged"])

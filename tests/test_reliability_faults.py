@@ -161,7 +161,8 @@ def test_fit_killed_while_sampling_resumes_to_the_uninterrupted_chain(map_file, 
     np.testing.assert_array_equal(lp2[:first], lp1)
     assert not any((run / name).exists() for name in RESULT_FILES), "no result before the end"
 
-    kw = dict(peaks_only=True, seed=SEED, max_steps=STEPS, progress=False, figures=False)
+    kw = dict(peaks_only=True, seed=SEED, sampler=SamplerSettings(max_steps=STEPS, progress=False),
+              figures=False)
     with pytest.warns(ConvergenceWarning):  # STEPS is below the gate on purpose
         resumed = fit_dispersion(map_file, out=run, resume=True, **kw)
     with pytest.warns(ConvergenceWarning):
@@ -385,7 +386,7 @@ def test_full_disk_during_a_fit_gives_one_clear_line_and_keeps_old_results(map_f
     # a resumed chain against an uninterrupted one bit for bit
     with pytest.warns(ConvergenceWarning):  # 200 steps are below the gate on purpose
         fit_dispersion(map_file, out=out, resume=True, peaks_only=True, seed=SEED,
-                       max_steps=200, progress=False, figures=False)
+                       sampler=SamplerSettings(max_steps=200, progress=False), figures=False)
     final, final_lp = _stored_chain(out / "chains.h5")
     assert len(final) == 200
     np.testing.assert_array_equal(final[: len(stored)], stored)

@@ -27,10 +27,12 @@ CELLS = [
     ("code", 'map_file = "map.nc"\nseed = 1\nmax_steps = 60\nout_dir = "out"', ["parameters"]),
     ("code", "import warnings\nimport matplotlib.pyplot as plt\nimport ipywidgets\n"
              "from polkit.plotting import dispersion as plots\n"
+             "from polkit import SamplerSettings\n"
              "from polkit.jobs.dispersion.run import fit_dispersion\n"
              "warnings.simplefilter('ignore')", None),
-    ("code", "result = fit_dispersion(map_file, peaks_only=True, seed=seed, max_steps=max_steps,\n"
-             "                         out=out_dir, progress=False, figures=False)\n"
+    ("code", "run = SamplerSettings(max_steps=max_steps, progress=False)\n"
+             "result = fit_dispersion(map_file, peaks_only=True, seed=seed, out=out_dir,\n"
+             "                        sampler=run, figures=False)\n"
              "plots.fit_figure(result)\nplt.show()", None),
     ("code", "ipywidgets.IntSlider(value=3)", None),
     ("code", "print(result.table())", None),

@@ -102,6 +102,14 @@ def _fit_options(args, out: Path) -> dict:
                                         strict=args.strict, progress=_progress(args)))
 
 
+def _map_options(args):
+    """How the map file is read: spectrum kind, wavelength medium and camera steps."""
+    from polkit.data.options import LoadOptions
+
+    return LoadOptions(kind=args.kind, wavelength_medium=args.wavelength_medium,
+                       camera=_camera(args))
+
+
 def _cmd_power(args) -> int:
     from polkit.jobs.power.run import PowerCalibration, fit_power
 
@@ -171,10 +179,9 @@ def _cmd_dispersion(args) -> int:
 
     out = args.out or Path("polkit-out") / args.map.stem
     if args.quick:
-        summary = fit_dispersion(args.map, model=_MODEL_WORDS[args.model], kind=args.kind,
+        summary = fit_dispersion(args.map, model=_MODEL_WORDS[args.model],
                                  peaks_only=args.peaks_only, **_fit_options(args, out),
-                                 wavelength_medium=args.wavelength_medium, quick=True,
-                                 camera=_camera(args))
+                                 load=_map_options(args), quick=True)
         return _print_quick(summary, out)
     # a second process gets matplotlib ready while the fit samples, then draws the corner
     # plot alongside the other figures (see polkit.plotting.corner_process)
@@ -183,12 +190,10 @@ def _cmd_dispersion(args) -> int:
         result = fit_dispersion(
             args.map,
             model=_MODEL_WORDS[args.model],
-            kind=args.kind,
             peaks_only=args.peaks_only,
             **_fit_options(args, out),
-            wavelength_medium=args.wavelength_medium,
+            load=_map_options(args),
             figures=False,
-            camera=_camera(args),
         )
         result.figures(out, corner_process=corner_process)
     finally:
@@ -226,23 +231,23 @@ def _print_model_check(check) -> bool:
 
 
 def _cmd_compare(args) -> int:
-    from polkit.jobs.dispersion.compare import compare_dispersion_models
+    from polkit.data.options import LoadOptions
+    from polkit.inference.settings import SamplerSettings
+    from polkit.jobs.dispersion.compare import compare_models
 
     out = args.out or Path("polkit-out") / f"{args.map.stem}-compare"
-    result = compare_dispersion_models(
+    result = compare_models(
         args.map,
         models=[_MODEL_WORDS.get(m.strip(), m.strip()) for m in args.models.split(",")
                 if m.strip()],
-        kind=args.kind,
         priors=args.priors,
         seed=args.seed,
         out=out,
-        max_steps=args.max_steps,
-        n_walkers=args.walkers,
-        progress=_progress(args),
-        wavelength_medium=args.wavelength_medium,
-        figures=args.figures,
         resume=args.resume,
+        sampler=SamplerSettings(max_steps=args.max_steps, n_walkers=args.walkers,
+                                progress=_progress(args)),
+        load=LoadOptions(kind=args.kind, wavelength_medium=args.wavelength_medium),
+        figures=args.figures,
     )
     print(result.table())
     print(f"results written to {out}")

@@ -142,7 +142,7 @@ class CameraOptions:
         Excess, in noise standard deviations, above which a narrow pixel is a spike.
     min_snr
         Detection threshold of the peak table (fitted height over noise, after pooling
-        neighbouring pixels; see :func:`polkit.linefit.lines.peak_table`).
+        neighbouring pixels; see :func:`polkit.linefit.peak_table`).
     exclude
         Windows to mask (lines that are not polaritons): :class:`ExcludeWindow` items, or
         strings ``"E1:E2"``/``"E1:E2@A1:A2"``.

@@ -245,7 +245,7 @@ class DispersionPanel(FitPanel):
 
     def peak_table(self) -> xr.Dataset:
         """The per-angle peak table of the current window (computed once per window)."""
-        from polkit.linefit.lines import peak_table
+        from polkit.linefit import peak_table
 
         win = self.window()
         if win not in self._tables:

@@ -51,15 +51,15 @@ def cases(seed: int):
 
 
 def fit_case(raw, folder: Path, seed: int, max_steps: int | None):
-    from polkit import fit_dispersion
+    from polkit import SamplerSettings, fit_dispersion
 
     folder.mkdir(parents=True, exist_ok=True)
     path = raw.write_txt(folder / "map.txt")
     t0 = time.perf_counter()
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        kw = {} if max_steps is None else {"max_steps": max_steps}
-        res = fit_dispersion(path, seed=seed, progress=False, **kw)
+        res = fit_dispersion(path, seed=seed,
+                             sampler=SamplerSettings(max_steps=max_steps, progress=False))
     return res, time.perf_counter() - t0
 
 

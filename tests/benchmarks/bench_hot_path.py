@@ -114,7 +114,8 @@ def simulated_map(
 def problem_for(da: xr.DataArray, inv_var: np.ndarray, *, space=None, table=None,
                 sample_noise: bool = True):
     """The :class:`DispersionProblem` of a simulated map (default priors around the truth)."""
-    from polkit.jobs.dispersion.problem import DispersionProblem, default_space
+    from polkit.jobs.dispersion.parameters import default_space
+    from polkit.jobs.dispersion.problem import DispersionProblem
 
     energy = da["energy"].values.astype(float)
     if space is None:

@@ -29,7 +29,8 @@ SECOND_EXCITON = {"exciton2_energy": 1.556, "rabi_splitting2": 6.0, "exciton2_li
 
 def three_problem(da, inv_var):
     """The three-oscillator :class:`DispersionProblem` of the same map (default priors)."""
-    from polkit.jobs.dispersion.problem import DispersionProblem, default_space
+    from polkit.jobs.dispersion.parameters import default_space
+    from polkit.jobs.dispersion.problem import DispersionProblem
 
     energy = da["energy"].values.astype(float)
     space = default_space(energy, dict(TRUTH, **SECOND_EXCITON), n_excitons=2)

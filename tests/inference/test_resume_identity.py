@@ -24,6 +24,7 @@ from polkit.cli import main
 from polkit.data import make_map
 from polkit.errors import ConvergenceWarning, DataError
 from polkit.folder_lock import LOCK_FILE, FolderLockedError, folder_lock, read_lock
+from polkit.inference import SamplerSettings
 from polkit.inference import checkpoint as checkpoint_module
 from polkit.jobs import steps as _steps
 from polkit.jobs.dispersion.run import DispersionFit, fit_dispersion
@@ -32,7 +33,7 @@ from polkit.models.simulate import simulate_map
 MEV = 1e-3
 SEED = 5
 STEPS = 200  # below the 50-tau gate of this peak table: every run stops at exactly STEPS
-KW = dict(peaks_only=True, max_steps=STEPS, progress=False, figures=False)
+KW = dict(peaks_only=True, sampler=SamplerSettings(max_steps=STEPS, progress=False), figures=False)
 
 
 def _write_map(path: Path, seed: int = 3, e_x: float = 1.545) -> Path:

@@ -50,9 +50,9 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 import xarray as xr
 
+from polkit.config.priors import read_prior_file
 from polkit.errors import ConfigError, ConvergenceWarning, DataWarning
 from polkit.inference import SamplerSettings
-from polkit.inference.priors import read_prior_file
 from polkit.jobs.dispersion.comparison import (
     MIN_DIFFERENCE_NATS,
     MIN_DIFFERENCE_SE,

@@ -17,7 +17,7 @@ from typing import Any
 import numpy as np
 
 from polkit.jobs.dispersion.problem import DispersionProblem
-from polkit.models import spectral
+from polkit.numerics import projection
 
 __all__ = [
     "PARETO_K_LIMIT",
@@ -66,7 +66,7 @@ def pointwise_log_likelihood(
     act = np.empty_like(out)
     for start in range(0, flat.shape[0], batch):
         t = flat[start:start + batch]
-        sol = spectral.project_linear(problem._weighted, None, problem.basis(t), nonneg=True,
+        sol = projection.project_linear(problem._weighted, None, problem.basis(t), nonneg=True,
                                       return_parts=True)
         s = problem._noise_scale(t)[:, None]
         out[start:start + batch] = (-0.5 * sol.chi2_per_angle / (s * s)

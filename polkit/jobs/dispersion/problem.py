@@ -26,6 +26,8 @@ from polkit.models import dispersion as disp
 from polkit.models import spectral
 from polkit.models.bare_modes import bare_mode_basis
 from polkit.numerics import kernels as _kernels
+from polkit.numerics import projection
+from polkit.numerics import table_kernels as _table_kernels
 
 __all__ = [
     "MODELS",
@@ -141,7 +143,7 @@ class DispersionProblem:
             self._t_nobs = int(self._tfound.sum() + (self._tfound & w_ok).sum())
             self._t_fused = self._t_operands = None
             if _kernels.available():  # the table side in the kernels' form, once per fit
-                self._t_operands = _kernels.table_operands(*self._t_kernel)
+                self._t_operands = _table_kernels.table_operands(*self._t_kernel)
                 if self.n_excitons == 1:
                     self._t_fused = self._two_mode_operands()
 
@@ -154,11 +156,11 @@ class DispersionProblem:
         """
         idx = self._idx
         rabi = idx.get("rabi_splitting", -1)
-        parameters = _kernels.parameter_map(
+        parameters = _table_kernels.parameter_map(
             [idx["cavity_energy"], idx["n_eff"], idx["exciton_energy"], rabi,
              idx["cavity_linewidth"], idx["exciton_linewidth"]],
             [1.0, 1.0, 1.0, 0.5 * MEV, MEV, MEV], len(self.space.names))
-        return (parameters, _kernels.in_plane_terms(self.in_plane, self.axis),
+        return (parameters, _table_kernels.in_plane_terms(self.in_plane, self.axis),
                 self._t_operands)
 
     def set_noise(self, inv_var: np.ndarray, note: str = "") -> None:
@@ -174,7 +176,7 @@ class DispersionProblem:
             {"constant": 1, "linear": 2}.get(self.background, 0))
         active = int(np.count_nonzero((self.inv_var > 0).any(axis=1)))
         self._n_dof = max(self._n_pixels - active * n_columns, 1)
-        self._weighted = spectral.prepare_map(
+        self._weighted = projection.prepare_map(
             self.y, self.inv_var, background=self.background, energy_ev=self.energy
         )
 
@@ -250,14 +252,14 @@ class DispersionProblem:
         pixels and ``K`` the linear coefficients solved (their flat-prior marginal).
         """
         theta = np.atleast_2d(theta)
-        chi2 = spectral.project_linear(self._weighted, None, self.basis(theta), nonneg=True)
+        chi2 = projection.project_linear(self._weighted, None, self.basis(theta), nonneg=True)
         s = self._noise_scale(theta)
         return -0.5 * chi2 / (s * s) - self._n_dof * np.log(s)
 
     def model_map(self, theta: np.ndarray):
         """Best-fit map and its parts for one parameter vector (a LinearSolution)."""
         theta = np.atleast_2d(theta)[:1]
-        sol = spectral.project_linear(
+        sol = projection.project_linear(
             self._weighted, None, self.basis(theta), nonneg=True, return_parts=True
         )
         return sol
@@ -285,7 +287,7 @@ class DispersionProblem:
         chi2 = None
         compiled = _kernels.enabled()
         if compiled and self._t_fused is not None:  # one exciton: one compiled call
-            chi2, outside = _kernels.two_mode_table_chi2(theta, *self._t_fused)
+            chi2, outside = _table_kernels.two_mode_table_chi2(theta, *self._t_fused)
             if outside:  # the numpy route below raises the DataError naming the parameter
                 chi2 = None
         if chi2 is None:
@@ -296,7 +298,7 @@ class DispersionProblem:
             h = -poles.imag
             ratio = np.divide(res.imag, res.real, out=np.zeros_like(h), where=res.real > 0)
             if compiled:
-                chi2 = _kernels.table_chi2_prepared(poles.real, h, ratio, self._t_operands)
+                chi2 = _table_kernels.table_chi2_prepared(poles.real, h, ratio, self._t_operands)
             else:
                 chi2 = self._table_chi2_numpy(poles, h, ratio)
         s = self._noise_scale(theta)
@@ -427,7 +429,7 @@ def table_centre_response(table: xr.Dataset, energy: np.ndarray,
     A branch line of area ``A`` is ``A (h - beta x) / (pi (x^2 + h^2))`` with ``beta = b/a``
     the ratio of the imaginary to the real part of its photon residue.  A weighted
     least-squares fit of symmetric Lorentzians plus a constant (what
-    :func:`polkit.linefit.lines.peak_table` does) responds to the odd parts linearly, to first
+    :func:`polkit.linefit.peak_table` does) responds to the odd parts linearly, to first
     order in ``beta``: ``d p = (J^T W J)^-1 J^T W sum_k beta_k o_k`` with ``J`` the fit's
     Jacobian at the table's own parameters, ``W`` the pixel weights and
     ``o_k = -A_k x / (pi (x^2 + h_k^2))`` (the Gauss-Newton step of the perturbed fit,

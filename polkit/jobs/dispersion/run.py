@@ -8,7 +8,7 @@ or in :mod:`polkit.jobs.dispersion.stages`, so the interactive panel
 1. :func:`open_map`: load and validate the map (:func:`polkit.data.load_map`), check the
    model and the kind of spectrum;
 2. :func:`prepare_dispersion`: crop to the requested window; per-angle peak table
-   (:func:`polkit.linefit.lines.peak_table`; with only one branch visible, a warning that g and
+   (:func:`polkit.linefit.peak_table`; with only one branch visible, a warning that g and
    the detuning are degenerate); automatic starting point from the peak table
    (multi-start least squares), default priors from the data range, user priors on top;
 3. :func:`table_mode`: the peak-table fit (MAP; with ``peaks_only`` also the MCMC, a fast

@@ -27,9 +27,10 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 import xarray as xr
 
+from polkit.config.priors import apply_priors
 from polkit.errors import DataError
 from polkit.files import file_sha256
-from polkit.inference import LogPosterior, MapResult, ParameterSpace, apply_priors, find_map
+from polkit.inference import LogPosterior, MapResult, ParameterSpace, find_map
 from polkit.jobs.dispersion.noise import calibrate_noise, noise_inverse_variance
 from polkit.jobs.dispersion.parameters import default_space, guess_from_peaks
 from polkit.jobs.dispersion.problem import MODELS, DispersionProblem, in_plane_axis
@@ -293,7 +294,7 @@ def peak_start(
         ``"strong"`` (coupled oscillators) or ``"weak"`` (uncoupled modes: no Rabi
         splitting among the parameters).
     min_snr
-        Detection threshold of the peak table (see :func:`polkit.linefit.lines.peak_table`).
+        Detection threshold of the peak table (see :func:`polkit.linefit.peak_table`).
 
     Returns
     -------
@@ -301,7 +302,7 @@ def peak_start(
         ``(table, guess, space)``: the priors come from the map's energy range and the
         guess, with the user's priors on top.
     """
-    from polkit.linefit.lines import peak_table
+    from polkit.linefit import peak_table
 
     # peak_table warns (DataWarning) when only one branch is visible: g and detuning degenerate
     table = peak_table(da, n_peaks=n_excitons + 1, profile=profile, min_snr=min_snr)

@@ -101,16 +101,17 @@ def fit_position(task: dict[str, Any]) -> dict[str, Any]:
 
 def _fit(fit_dispersion, task: dict[str, Any], folder: Path, resume: bool):
     """``fit_dispersion`` (the dispersion job) on the task's map, saved in ``folder``."""
+    from polkit.data.options import LoadOptions
+    from polkit.inference.settings import SamplerSettings
+
     options = dict(
         model=task["model"],
-        kind=task["kind"],
         peaks_only=task["mode"] == "quick",
         priors=task["priors"],
         seed=task["seed"],
-        max_steps=task["max_steps"],
-        progress=False,
-        wavelength_medium=task["wavelength_medium"],
-        energy_window=task["energy_window"],
+        sampler=SamplerSettings(max_steps=task["max_steps"], progress=False),
+        load=LoadOptions(kind=task["kind"], wavelength_medium=task["wavelength_medium"],
+                         energy_window=task["energy_window"]),
         figures=False,
     )
     if task["mode"] == "full":
