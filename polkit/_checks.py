@@ -1,4 +1,4 @@
-"""Argument checks shared by the pure model functions: real, finite, signed arrays.
+"""Argument checks shared by the pure floors: real, finite, signed arrays; windows.
 
 The physics modules refuse bad arguments with a :class:`~polkit.errors.DataError` naming
 the argument, what was expected and what was found; each module words the sign rules in
@@ -7,12 +7,14 @@ its own physics (a linewidth is a positive FWHM, a pump rate is non-negative, ..
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
-from polkit.errors import DataError
+from polkit.errors import ConfigError, DataError
 
-__all__ = ["real_array"]
+__all__ = ["real_array", "window"]
 
 
 def real_array(
@@ -68,3 +70,19 @@ def real_array(
     if nonneg and np.any(arr < 0):
         raise DataError(nonneg_text.format(minimum=arr.min()), field=name)
     return arr
+
+
+def window(value, key: str) -> tuple[float, float]:
+    """The option ``key`` as a window ``(low, high)`` of two finite numbers, ``low < high``.
+
+    Anything else is refused with a :class:`~polkit.errors.ConfigError` naming ``key``.
+    """
+    try:
+        lo, hi = (float(v) for v in value)
+    except (TypeError, ValueError):
+        raise ConfigError(
+            f"expected a window (low, high) of two numbers; found {value!r}", key=key
+        ) from None
+    if not (math.isfinite(lo) and math.isfinite(hi)) or lo >= hi:
+        raise ConfigError(f"expected low < high, both finite; found ({lo:g}, {hi:g})", key=key)
+    return lo, hi

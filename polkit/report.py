@@ -38,7 +38,6 @@ import re
 import sys
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
-from importlib import metadata
 from pathlib import Path
 from typing import Any
 
@@ -173,14 +172,9 @@ def parse_params(items: list[str] | tuple[str, ...]) -> dict[str, Any]:
 # --------------------------------------------------------------------------------------
 def _versions() -> dict[str, str]:
     from polkit import __version__
+    from polkit.inference.result import library_versions
 
-    out = {"polkit": __version__}
-    for name in _LIBRARIES:
-        try:
-            out[name] = metadata.version(name)
-        except metadata.PackageNotFoundError:
-            out[name] = "not installed"
-    return out
+    return {"polkit": __version__, **library_versions(_LIBRARIES)}
 
 
 def _input_files(params: dict[str, Any], base: Path, results: Path) -> dict[str, dict]:

@@ -141,16 +141,9 @@ def _cmd_power(args) -> int:
 def _cmd_budget(args) -> int:
     from polkit.jobs.budget.run import energy_budget
 
-    result = energy_budget(
-        args.dispersion,
-        args.power,
-        args.device,
-        claims=args.claim,
-        seed=args.seed,
-        n_draws=args.draws,
-        out=args.out,
-        expect_same_sample=args.check_sample,
-    )
+    result = energy_budget(args.dispersion, args.power, args.device, claims=args.claim,
+                           seed=args.seed, n_draws=args.draws, out=args.out,
+                           expect_same_sample=args.check_sample)
     print(result.table())
     print(f"results written to {args.out}")
     return EXIT_OK

@@ -18,11 +18,16 @@ def _add_common_fit_options(p: argparse.ArgumentParser) -> None:
     )
     p.add_argument("--out", type=Path, default=None,
                    help="output folder (default: polkit-out/<input file name without suffix>)")
+    _add_limits(p, per="ensemble")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
+
+
+def _add_limits(p: argparse.ArgumentParser, *, per: str) -> None:
+    """The sampler's step limit (per ensemble or per model) and walker count."""
     p.add_argument("--max-steps", type=int, default=None,
-                   help="MCMC step limit per ensemble (default: 10000)")
+                   help=f"MCMC step limit per {per} (default: 10000)")
     p.add_argument("--walkers", type=int, default=None,
                    help="walkers per ensemble (default: 32; more for three oscillators)")
-    p.add_argument("--quiet", action="store_true", help="no progress bar")
 
 
 def _add_camera_options(p: argparse.ArgumentParser, *, detection: bool) -> None:
@@ -149,10 +154,7 @@ def _add_compare(sub) -> None:
                    help="root seed (default: a fresh seed, printed and recorded)")
     p.add_argument("--out", type=Path, default=None,
                    help="output folder (default: polkit-out/<map name>-compare)")
-    p.add_argument("--max-steps", type=int, default=None,
-                   help="MCMC step limit per model (default: 10000)")
-    p.add_argument("--walkers", type=int, default=None,
-                   help="walkers per ensemble (default: 32; more for three oscillators)")
+    _add_limits(p, per="model")
     p.add_argument("--figures", action="store_true", help="also write each model's figures")
     p.add_argument("--resume", action="store_true",
                    help="continue each model's fit from its checkpoint in --out")

@@ -26,6 +26,7 @@ from __future__ import annotations
 
 import xarray as xr
 
+from polkit.data import preprocess as _preprocess
 from polkit.data.assemble import raw_to_map
 from polkit.data.build import make_map, make_series
 from polkit.data.camera import CameraOptions, ExcludeWindow, detector_variance_terms, parse_exclude
@@ -38,17 +39,7 @@ from polkit.data.fourier import (
 )
 from polkit.data.inspect import describe_file
 from polkit.data.options import MAP_FIELDS, SERIES_FIELDS, LoadOptions, loader_options
-from polkit.data.preprocess import (
-    SymmetryReport,
-    bin_map,
-    check_symmetry,
-    crop,
-    flag_saturated,
-    remove_cosmic_rays,
-    shift_axis,
-    subtract_background,
-    subtract_dark,
-)
+from polkit.data.preprocess import *  # noqa: F403  (crop, bin_map, ...: its __all__)
 from polkit.data.registry import READERS, choose_reader, read_raw
 from polkit.data.series import raw_to_series
 from polkit.data.spikes import (
@@ -79,15 +70,7 @@ __all__ = [
     "mask_windows",
     "find_spikes",
     "mask_saturated_map",
-    "crop",
-    "subtract_dark",
-    "subtract_background",
-    "remove_cosmic_rays",
-    "bin_map",
-    "flag_saturated",
-    "check_symmetry",
-    "SymmetryReport",
-    "shift_axis",
+    *_preprocess.__all__,
     "sin_theta_from_pixel",
     "pixel_to_angle",
     "find_pupil_edges",

@@ -49,6 +49,14 @@ def fail(expected: str, found: str, fix: str, *, path=None, field=None) -> None:
     raise DataError(f"expected {expected}; found {found}. Fix: {fix}", path=path, field=field)
 
 
+def require_units(got, want: str, where: str, fix: str, *, path=None, field=None,
+                  missing: str = "none") -> None:
+    """Refuse units ``got`` that are not ``want`` (``missing``: the word for no units)."""
+    if got != want:
+        fail(f"units {want!r} {where}", missing if got is None else repr(got), fix, path=path,
+             field=field)
+
+
 def warn(message: str, *, path=None, field=None, stacklevel: int = 3) -> None:
     """Warn with a :class:`DataWarning` naming the file and the field."""
     where = ": ".join(

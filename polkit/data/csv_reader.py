@@ -35,7 +35,7 @@ from polkit.data.text import (
     parse_header_name,
     parse_metadata,
     parse_number,
-    split_comments,
+    text_lines,
 )
 from polkit.errors import DataError
 
@@ -89,13 +89,7 @@ def read(path, *, delimiter: str | None = None) -> xr.Dataset:
     """
     data = Path(path).read_bytes()
     text = decode_text(data, path=path)
-    comments, lines = split_comments(text)
-    if not lines:
-        raise DataError(
-            "expected a header line and data rows; found only comments. Fix: check the export",
-            path=path,
-            field="file",
-        )
+    comments, lines = text_lines(text, expected="a header line and data rows", path=path)
     delim, names, units = _header(lines[0], delimiter, path=path)
     rows = lines[1:]
     if not rows:

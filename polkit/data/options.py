@@ -7,7 +7,7 @@ from collections.abc import Mapping
 from dataclasses import dataclass, field
 from typing import Any
 
-from polkit.errors import ConfigError
+from polkit._settings import settings_base
 
 
 @dataclass(frozen=True)
@@ -71,21 +71,9 @@ class LoadOptions:
         Unknown names are refused with the list of known ones; names a reader understands
         go in ``reader_options``.
         """
-        if options is None:
-            base = cls()
-        elif isinstance(options, cls):
-            base = options
-        elif isinstance(options, Mapping):
-            base = cls.of(None, **dict(options))
-        else:
-            raise ConfigError(f"expected polkit.data.LoadOptions or a dict; found "
-                              f"{type(options).__name__}", key="load options")
-        known = {f.name for f in dataclasses.fields(cls)}
-        unknown = sorted(set(changes) - known)
-        if unknown:
-            raise ConfigError(
-                f"unknown load option(s) {', '.join(unknown)}; known: {', '.join(sorted(known))}"
-                " (a reader's own options go in reader_options={...})", key="load options")
+        base = settings_base(cls, options, changes, public_name="polkit.data.LoadOptions",
+                             key="load options", noun="load option",
+                             hint=" (a reader's own options go in reader_options={...})")
         return dataclasses.replace(base, **changes) if changes else base
 
     def loader_kwargs(self) -> dict[str, Any]:

@@ -43,6 +43,7 @@ import xarray as xr
 from scipy.interpolate import interp1d
 from scipy.optimize import minimize_scalar
 
+from polkit._checks import window
 from polkit.data.camera import detector_variance_terms, raw_counts
 from polkit.data.schema import append_history
 from polkit.data.validate import validate_map
@@ -71,18 +72,6 @@ def _with(da: xr.DataArray, values: np.ndarray, line: str, **attrs) -> xr.DataAr
     return validate_map(da.copy(data=values).assign_attrs(new_attrs))
 
 
-def _window(win, name: str) -> tuple[float, float]:
-    try:
-        lo, hi = (float(v) for v in win)
-    except (TypeError, ValueError):
-        raise ConfigError(
-            f"expected a window (low, high) of two numbers; found {win!r}", key=name
-        ) from None
-    if not (math.isfinite(lo) and math.isfinite(hi)) or lo >= hi:
-        raise ConfigError(f"expected low < high, both finite; found ({lo:g}, {hi:g})", key=name)
-    return lo, hi
-
-
 def _region(da: xr.DataArray, windows: dict) -> dict[str, slice]:
     sel = {}
     for name, win in windows.items():
@@ -90,7 +79,7 @@ def _region(da: xr.DataArray, windows: dict) -> dict[str, slice]:
             continue
         if name not in da.dims:
             raise ConfigError(f"expected a window on one of {da.dims}; found {name!r}", key=name)
-        lo, hi = _window(win, name)
+        lo, hi = window(win, name)
         sel[name] = slice(lo, hi)
     return sel
 

@@ -18,7 +18,7 @@ from pathlib import Path
 import xarray as xr
 
 from polkit.data import csv_reader, matrix_reader, netcdf_reader, npz_reader
-from polkit.data.text import decode_text, split_comments
+from polkit.data.text import decode_text, text_lines
 from polkit.errors import ConfigError, DataError
 
 __all__ = ["READERS", "choose_reader", "read_raw"]
@@ -85,13 +85,8 @@ def choose_reader(path, reader: str | None = None) -> str:
         )
     text = decode_text(p.read_bytes(), path=path)
     _refuse_settings_file(p, text)
-    _, lines = split_comments(text)
-    if not lines:
-        raise DataError(
-            "expected data lines; found only comments or blank lines. Fix: check the export",
-            path=path,
-            field="file",
-        )
+    _, lines = text_lines(text, expected="data lines", found="only comments or blank lines",
+                          path=path)
     return "matrix" if matrix_reader.looks_like_matrix(lines[0][1]) else "csv"
 
 

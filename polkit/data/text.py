@@ -100,6 +100,16 @@ def split_comments(text: str) -> tuple[list[str], list[tuple[int, str]]]:
     return comments, lines
 
 
+def text_lines(text: str, *, expected: str, found: str = "only comments",
+               path=None) -> tuple[list[str], list[tuple[int, str]]]:
+    """:func:`split_comments`, refusing a text without data lines (``expected``/``found``)."""
+    comments, lines = split_comments(text)
+    if not lines:
+        raise DataError(f"expected {expected}; found {found}. Fix: check the export", path=path,
+                        field="file")
+    return comments, lines
+
+
 def parse_metadata(comments: list[str]) -> dict[str, str]:
     """Collect ``key: value`` pairs from comment lines (keys lower-cased, spaces to ``_``)."""
     meta: dict[str, str] = {}

@@ -35,6 +35,7 @@ from polkit.data.checks import (
     check_values,
     checked_jacobian,
     fail,
+    require_units,
     warn,
 )
 from polkit.data.schema import (
@@ -166,15 +167,9 @@ def _map_coordinate(da: xr.DataArray, dim: str, minimum: int, *, path) -> np.nda
         )
     c = da.coords[dim]
     want = COORD_ATTRS[dim]["units"]
-    got = c.attrs.get("units")
-    if got != want:
-        fail(
-            f"units {want!r} on coordinate '{dim}'",
-            "no units" if got is None else repr(got),
-            "convert the axis with polkit's loaders, or set units after converting",
-            path=path,
-            field=dim,
-        )
+    require_units(c.attrs.get("units"), want, f"on coordinate '{dim}'",
+                  "convert the axis with polkit's loaders, or set units after converting",
+                  path=path, field=dim, missing="no units")
     values = check_axis_values(c.values, dim, path=path, units=want)
     if values.size < minimum:
         fail(
@@ -368,22 +363,12 @@ def _cube_checks(ds: xr.Dataset, *, path) -> None:
                 field=adim,
             )
         check_axis_values(c.values, adim, path=path, units=want)
-    if ds.sizes[POWER_DIM] < MIN_POWERS:
-        fail(
-            f"at least {MIN_POWERS} powers",
-            f"{ds.sizes[POWER_DIM]}",
-            "measure more pump powers",
-            path=path,
-            field="power",
-        )
-    if ds.sizes[ENERGY_DIM] < MIN_ENERGIES:
-        fail(
-            f"at least {MIN_ENERGIES} energies",
-            f"{ds.sizes[ENERGY_DIM]}",
-            "load a wider spectral window",
-            path=path,
-            field="energy",
-        )
+    for dim, minimum, what, fix in (
+        (POWER_DIM, MIN_POWERS, "powers", "measure more pump powers"),
+        (ENERGY_DIM, MIN_ENERGIES, "energies", "load a wider spectral window"),
+    ):
+        if ds.sizes[dim] < minimum:
+            fail(f"at least {minimum} {what}", f"{ds.sizes[dim]}", fix, path=path, field=dim)
 
 
 def _series_table_checks(ds: xr.Dataset, dim: str, *, path) -> None:
@@ -424,14 +409,10 @@ def _series_variable(var: xr.DataArray, name: str, iunits: str, masked: int, *, 
     if want is None:
         want = iunits
     got = var.attrs.get("units")
-    if want and got != want:
-        fail(
-            f"units {want!r} for '{name}'",
-            "none" if got is None else repr(got),
-            "convert the column with polkit's loaders (or fix its header)",
-            path=path,
-            field=name,
-        )
+    if want:
+        require_units(got, want, f"for '{name}'",
+                      "convert the column with polkit's loaders (or fix its header)",
+                      path=path, field=name)
     if not want and not got:
         fail(
             f"units on variable '{name}'",

@@ -83,14 +83,19 @@ def _attr_value(key: str, value: Any):
         ) from None
 
 
-def _library_versions() -> dict[str, str]:
-    out = {"python": platform.python_version()}
-    for name in _LIBRARIES:
+def library_versions(names=_LIBRARIES) -> dict[str, str]:
+    """The installed version of each named library ("not installed" where it is missing)."""
+    out = {}
+    for name in names:
         try:
             out[name] = metadata.version(name)
         except metadata.PackageNotFoundError:
             out[name] = "not installed"
     return out
+
+
+def _library_versions() -> dict[str, str]:
+    return {"python": platform.python_version(), **library_versions()}
 
 
 def _polkit_version() -> str:

@@ -8,7 +8,7 @@ from collections.abc import Mapping
 from dataclasses import dataclass, field
 from typing import Any
 
-from polkit.errors import ConfigError
+from polkit._settings import settings_base
 
 
 @dataclass(frozen=True)
@@ -100,21 +100,9 @@ class SamplerSettings:
         ``changes`` whose value is ``None`` are ignored (a caller's "not given"); unknown
         names are refused with the list of known ones.
         """
-        if settings is None:
-            base = cls()
-        elif isinstance(settings, cls):
-            base = settings
-        elif isinstance(settings, Mapping):
-            base = cls.of(None, **dict(settings))
-        else:
-            raise ConfigError(f"expected polkit.inference.SamplerSettings or a dict; found "
-                              f"{type(settings).__name__}", key="sampler settings")
-        known = {f.name for f in dataclasses.fields(cls)}
-        unknown = sorted(set(changes) - known)
-        if unknown:
-            raise ConfigError(
-                f"unknown sampler setting(s) {', '.join(unknown)}; known: "
-                f"{', '.join(sorted(known))}", key="sampler settings")
+        base = settings_base(cls, settings, changes,
+                             public_name="polkit.inference.SamplerSettings",
+                             key="sampler settings", noun="sampler setting")
         given = {k: v for k, v in changes.items() if v is not None}
         return dataclasses.replace(base, **given) if given else base
 

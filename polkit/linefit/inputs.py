@@ -11,6 +11,7 @@ import math
 import numpy as np
 import xarray as xr
 
+from polkit._checks import window
 from polkit.errors import ConfigError, DataError
 
 __all__ = [
@@ -59,17 +60,7 @@ def as_rng(rng) -> np.random.Generator:
 
 def parse_window(value, key) -> tuple[float, float] | None:
     """The window option ``key`` as a pair of floats ``low < high``, or None."""
-    if value is None:
-        return None
-    try:
-        lo, hi = (float(v) for v in value)
-    except (TypeError, ValueError):
-        raise ConfigError(
-            f"expected a pair (low, high) of numbers, found {value!r}", key=key
-        ) from None
-    if not (math.isfinite(lo) and math.isfinite(hi) and lo < hi):
-        raise ConfigError(f"expected finite low < high, found ({lo}, {hi})", key=key)
-    return lo, hi
+    return None if value is None else window(value, key)
 
 
 def check_energy(da: xr.DataArray, path) -> None:

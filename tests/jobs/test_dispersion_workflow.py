@@ -15,7 +15,7 @@ from polkit import ConfigError, ConvergenceWarning, DataError, DataWarning
 from polkit.data import make_map
 from polkit.inference import FitResult, SamplerSettings
 from polkit.jobs.dispersion.run import fit_dispersion
-from polkit.models.spectral import simulate_map
+from polkit.models.simulate import simulate_map
 
 MEV = 1e-3
 #: no progress bar, the job's default step limits

@@ -19,7 +19,9 @@ from polkit.jobs.dispersion.criteria import information_criteria, pointwise_log_
 from polkit.jobs.dispersion.parameters import default_space
 from polkit.jobs.dispersion.problem import DispersionProblem
 from polkit.models.bare_modes import bare_mode_basis
-from polkit.models.spectral import emission_basis, project_linear, simulate_map
+from polkit.models.simulate import simulate_map
+from polkit.models.spectral import emission_basis
+from polkit.numerics.projection import project_linear
 
 MEV = 1e-3
 #: no progress bars, the job's default step limits

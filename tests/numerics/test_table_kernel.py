@@ -26,11 +26,8 @@ import pytest
 import xarray as xr
 
 from polkit.errors import DataError
-from polkit.jobs.dispersion.problem import (
-    DispersionProblem,
-    default_space,
-    table_centre_response,
-)
+from polkit.jobs.dispersion.parameters import default_space
+from polkit.jobs.dispersion.problem import DispersionProblem, table_centre_response
 from polkit.jobs.dispersion.run import prepare_dispersion
 from polkit.models import spectral
 from polkit.models.dispersion import cavity_energy, two_mode_eigenvalues

@@ -43,7 +43,6 @@ import json
 import os
 from collections.abc import Mapping, Sequence
 from datetime import UTC, datetime
-from importlib import metadata
 from typing import Any
 
 import numpy as np
@@ -220,10 +219,7 @@ def _polkit_version() -> str:
 def _library_versions() -> dict[str, str]:
     import platform
 
-    out = {"python": platform.python_version()}
-    for name in ("numpy", "scipy", "xarray", "h5netcdf"):
-        try:
-            out[name] = metadata.version(name)
-        except metadata.PackageNotFoundError:
-            out[name] = "not installed"
-    return out
+    from polkit.inference.result import library_versions
+
+    return {"python": platform.python_version(),
+            **library_versions(("numpy", "scipy", "xarray", "h5netcdf"))}

@@ -275,10 +275,10 @@ class DispersionProblem:
         FWHM ``-2 Im eps``.
 
         Routes: with the compiled kernels on, one exciton goes from ``theta`` to the
-        chi-square in one call (:func:`polkit.numerics.kernels.two_mode_table_chi2`); a walker
+        chi-square in one call (:func:`polkit.numerics.table_kernels.two_mode_table_chi2`); a walker
         outside the model's domain sends the call to the numpy poles, which raise the
         ``DataError``.  Three oscillators take the numpy poles and the compiled matching
-        (:func:`polkit.numerics.kernels.table_chi2`); without numba (or with
+        (:func:`polkit.numerics.table_kernels.table_chi2`); without numba (or with
         ``POLKIT_COMPILED=0``) everything is numpy.
         """
         if self.table is None:
