@@ -381,12 +381,8 @@ def sample_problem(
                 seed = np.random.SeedSequence()
             start = preburn(like, space, start, walkers, seed, sampler.max_steps,
                             progress=progress)
-        # only these of the job's settings reach the run (its moves, ensemble count and
-        # gate are run_ensemble's defaults)
-        run = SamplerSettings(n_walkers=walkers, max_steps=sampler.max_steps,
-                              min_steps=sampler.min_steps, check_every=sampler.check_every,
-                              strict=sampler.strict, progress=progress,
-                              stop_event=sampler.stop_event)
+        # every setting of the caller reaches the run (gate, moves, ensembles included)
+        run = dataclasses.replace(sampler, n_walkers=walkers)
         output = run_ensemble(like, space, start, run, seed=seed, checkpoint=checkpoint,
                               resume=resume, identity=job)
     if quick is not None:

@@ -270,3 +270,16 @@ def test_one_visible_branch_warns_that_g_and_detuning_are_degenerate():
     assert any(
         issubclass(w.category, DataWarning) and "degenerate" in str(w.message) for w in caught
     ), [str(w.message) for w in caught]
+
+
+def test_the_callers_gate_reaches_the_run():
+    # common practice, no published source: a setting the caller passes in SamplerSettings
+    # must govern the run (a stricter gate silently dropped would report a weaker check)
+    from polkit.inference import GateSettings
+
+    da = _simulated(GAAS, seed=21)
+    strict = SamplerSettings(progress=False, max_steps=3000,
+                             gate=GateSettings(ess_target=1500.0))
+    r = fit_dispersion(da, peaks_only=True, seed=3, sampler=strict, figures=False)
+    targets = r.diagnostics["ess_target"]
+    assert targets["rabi_splitting"] == pytest.approx(1500.0), targets
