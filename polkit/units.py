@@ -39,6 +39,13 @@ __all__ = [
     "WAVEVECTOR_UNITS",
     "POWER_UNITS",
     "LINEWIDTH_UNITS",
+    "LENGTH_UNITS",
+    "AREA_UNITS",
+    "WAFER_LENGTH_UNITS",
+    "TIME_UNITS",
+    "FREQUENCY_UNITS",
+    "DEVICE_ENERGY_UNITS",
+    "subset",
     "EV_PER_INV_CM",
     "energy_axis_quantity",
     "parse_units",
@@ -139,6 +146,33 @@ POWER_UNITS: dict[str, float] = {
 }
 #: linewidth spellings given as an energy -> factor to meV
 LINEWIDTH_UNITS: dict[str, float] = {k: v * 1e3 for k, v in ENERGY_UNITS.items()}
+#: lengths on a sample (spots, nodes) -> factor to um
+LENGTH_UNITS: dict[str, float] = {"um": 1.0, "µm": 1.0, "nm": 1e-3, "mm": 1e3}
+#: areas on a sample -> factor to um^2
+AREA_UNITS: dict[str, float] = {"um2": 1.0, "um^2": 1.0, "µm2": 1.0, "µm^2": 1.0}
+#: positions on a wafer -> factor to mm
+WAFER_LENGTH_UNITS: dict[str, float] = {
+    "mm": 1.0,
+    "millimetre": 1.0,
+    "millimeter": 1.0,
+    "um": 1e-3,
+    "µm": 1e-3,
+    "μm": 1e-3,
+    "micron": 1e-3,
+    "cm": 10.0,
+    "m": 1e3,
+}
+#: times (lifetimes, windows, pulses) -> factor to ps
+TIME_UNITS: dict[str, float] = {"ps": 1.0, "fs": 1e-3, "ns": 1e3, "us": 1e6, "µs": 1e6}
+#: repetition rates -> factor to MHz
+FREQUENCY_UNITS: dict[str, float] = {"MHz": 1.0, "Hz": 1e-6, "kHz": 1e-3, "GHz": 1e3}
+#: switching energies of a device -> factor to fJ
+DEVICE_ENERGY_UNITS: dict[str, float] = {"fJ": 1.0, "aJ": 1e-3, "pJ": 1e3, "nJ": 1e6, "J": 1e15}
+
+
+def subset(table: dict[str, float], names) -> dict[str, float]:
+    """The entries ``names`` of a unit table, in that order (a file kind's accepted units)."""
+    return {u: table[u] for u in names}
 
 #: 1/cm expressed in eV: E[eV] = wavenumber[1/cm] * EV_PER_INV_CM
 EV_PER_INV_CM: float = HC_EV_NM * 1e-7

@@ -32,6 +32,7 @@ import os
 from collections.abc import Mapping
 from typing import Any
 
+from polkit import units as U
 from polkit.config.quantities import quantity, read_table, refuse_unknown, require_quantity
 from polkit.errors import ConfigError
 from polkit.files import file_sha256
@@ -44,11 +45,11 @@ logger = logging.getLogger(__name__)
 
 #: accepted units per dimension and their factor to polkit's unit (first entry)
 UNITS: dict[str, dict[str, float]] = {
-    "length": {"um": 1.0, "µm": 1.0, "nm": 1e-3, "mm": 1e3},
-    "area": {"um2": 1.0, "um^2": 1.0, "µm2": 1.0, "µm^2": 1.0},
-    "energy": {"eV": 1.0, "meV": 1e-3},
-    "time": {"ps": 1.0, "fs": 1e-3, "ns": 1e3},
-    "frequency": {"MHz": 1.0, "Hz": 1e-6, "kHz": 1e-3, "GHz": 1e3},
+    "length": U.LENGTH_UNITS,
+    "area": U.AREA_UNITS,
+    "energy": U.subset(U.ENERGY_UNITS, ("eV", "meV")),
+    "time": U.subset(U.TIME_UNITS, ("ps", "fs", "ns")),
+    "frequency": U.FREQUENCY_UNITS,
     "fraction": {"1": 1.0},
 }
 

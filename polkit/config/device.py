@@ -19,7 +19,7 @@ import numpy as np
 from polkit.config.quantities import quantity, read_table, refuse_unknown, require_quantity
 from polkit.errors import ConfigError
 from polkit.models.calibration import UncertainInput, draw_inputs
-from polkit.units import POWER_UNITS
+from polkit.units import AREA_UNITS, DEVICE_ENERGY_UNITS, LENGTH_UNITS, POWER_UNITS, TIME_UNITS
 
 __all__ = ["Device", "load_device", "DEVICE_UNITS", "DEVICE_QUANTITIES"]
 
@@ -27,14 +27,14 @@ log = logging.getLogger(__name__)
 
 #: Accepted units per dimension and their factor to polkit's unit (first entry).
 DEVICE_UNITS: dict[str, dict[str, float]] = {
-    "length": {"um": 1.0, "µm": 1.0, "nm": 1e-3, "mm": 1e3},
-    "area": {"um2": 1.0, "um^2": 1.0, "µm2": 1.0, "µm^2": 1.0},
+    "length": LENGTH_UNITS,
+    "area": AREA_UNITS,
     "phase": {"rad": 1.0},
     "fraction": {"1": 1.0},
     "temperature": {"K": 1.0},
-    "energy": {"fJ": 1.0, "aJ": 1e-3, "pJ": 1e3, "nJ": 1e6, "J": 1e15},
+    "energy": DEVICE_ENERGY_UNITS,
     "power": {u: POWER_UNITS[u] for u in ("mW", "nW", "uW", "µW", "W")},
-    "time": {"ps": 1.0, "fs": 1e-3, "ns": 1e3, "us": 1e6, "µs": 1e6},
+    "time": TIME_UNITS,
 }
 
 #: file key -> (dimension, Device attribute, lower bound kind, upper bound, required);

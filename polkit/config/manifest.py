@@ -18,7 +18,7 @@ from pathlib import Path
 from typing import Any
 
 from polkit.errors import DataError
-from polkit.units import ENERGY_UNITS
+from polkit.units import ENERGY_UNITS, WAFER_LENGTH_UNITS
 
 __all__ = [
     "read_manifest",
@@ -27,18 +27,8 @@ __all__ = [
     "safe_label",
 ]
 
-#: length spellings accepted for wafer positions -> factor to mm
-LENGTH_UNITS: dict[str, float] = {
-    "mm": 1.0,
-    "millimetre": 1.0,
-    "millimeter": 1.0,
-    "um": 1e-3,
-    "µm": 1e-3,
-    "μm": 1e-3,
-    "micron": 1e-3,
-    "cm": 10.0,
-    "m": 1e3,
-}
+#: length spellings accepted for wafer positions -> factor to mm (see polkit.units)
+LENGTH_UNITS: dict[str, float] = WAFER_LENGTH_UNITS
 
 # manifest columns: name -> kind of value (text, or a number in length or energy units)
 _TEXT, _LENGTH, _ENERGY = "text", "length", "energy"

@@ -21,7 +21,7 @@ from polkit._paths import shareable
 from polkit.errors import ConfigError, ConvergenceWarning, DataError, DataWarning
 from polkit.inference import FitResult
 from polkit.jobs.budget.claims import CLAIM_UNITS
-from polkit.units import ENERGY_UNITS, LINEWIDTH_UNITS
+from polkit.units import ENERGY_UNITS, LINEWIDTH_UNITS, TIME_UNITS, subset
 
 __all__ = ["Fits", "read_fits", "CANONICAL_UNITS", "input_record"]
 
@@ -30,7 +30,7 @@ _RESULT_UNITS = {
     "lp_energy_k0": {u: ENERGY_UNITS[u] for u in ("eV", "meV")},
     "lp_linewidth_k0": {u: LINEWIDTH_UNITS[u] for u in ("meV", "ueV", "µeV", "eV")},
     "exciton_fraction_k0": {"1": 1.0},
-    "lp_lifetime_k0": {"ps": 1.0, "fs": 1e-3, "ns": 1e3},
+    "lp_lifetime_k0": subset(TIME_UNITS, ("ps", "fs", "ns")),
     "interaction_constant": {u: f for u, (_, f) in CLAIM_UNITS.items()
                              if CLAIM_UNITS[u][0] == "interaction"},
 }
