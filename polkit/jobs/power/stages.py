@@ -18,7 +18,6 @@ from __future__ import annotations
 import hashlib
 import logging
 import os
-import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -27,7 +26,7 @@ import numpy as np
 import xarray as xr
 
 from polkit.config.calibration import read_calibration
-from polkit.config.priors import apply_priors
+from polkit.config.priors import apply_priors, read_prior_file
 from polkit.errors import ConfigError, DataError
 from polkit.files import file_sha256
 from polkit.inference import FitResult, LogPosterior, MapResult, Prior, find_map
@@ -200,13 +199,7 @@ def _split_priors(priors, model):
     path = None
     if isinstance(priors, (str, os.PathLike)):
         path = Path(priors)
-        try:
-            with open(path, "rb") as fh:
-                table = tomllib.load(fh)
-        except FileNotFoundError:
-            raise ConfigError("prior file not found; check the path", path=path) from None
-        except (OSError, tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
-            raise ConfigError(f"cannot read the prior file as TOML ({exc})", path=path) from None
+        table = read_prior_file(path)
     elif isinstance(priors, dict):
         table = dict(priors)
     else:
