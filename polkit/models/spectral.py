@@ -383,30 +383,51 @@ def emission_basis(
          "gamma_x": gamma_x, "sigma_x": sigma_x},
     )
     poles, residues = _poles_flat(e_c, flat, compiled=True)
+    if flat["sigma_x"] is None:
+        return emission_basis_from_poles(poles, residues, energy, batch=batch)
     k = poles.shape[-1]
     coefficients = _lorentz_coefficients(poles, residues)
     lorentz = _lorentz_block(energy, *coefficients)
-    names = ("lower", "upper") if k == 2 else ("lower", "middle", "upper") if k == 3 else tuple(
-        f"branch{i}" for i in range(k))
-    if flat["sigma_x"] is None:
-        block = lorentz
-        fused = ("lorentz", (energy, *coefficients))
-    else:
-        base = _green_base(energy, flat, flat["sigma_x"])
-        green = _green_block(base)
+    names = _branch_names(k)
+    # exciton disorder: each branch its share of the photon spectral weight
+    base = _green_base(energy, flat, flat["sigma_x"])
+    green = _green_block(base)
 
-        def block(ws: slice, as_: slice) -> NDArray:
-            parts = lorentz(ws, as_)
-            share = parts.sum(axis=2, keepdims=True)
-            a_sigma = green(ws, as_, e_c).imag[:, :, None, :] * (-1.0 / np.pi)
-            with np.errstate(divide="ignore", invalid="ignore"):
-                ratio = np.where(share != 0, a_sigma / share, 0.0)
-            parts *= ratio
-            return parts
+    def block(ws: slice, as_: slice) -> NDArray:
+        parts = lorentz(ws, as_)
+        share = parts.sum(axis=2, keepdims=True)
+        a_sigma = green(ws, as_, e_c).imag[:, :, None, :] * (-1.0 / np.pi)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            ratio = np.where(share != 0, a_sigma / share, 0.0)
+        parts *= ratio
+        return parts
 
-        fused = ("disorder", (energy, *coefficients, base, e_c))
+    fused = ("disorder", (energy, *coefficients, base, e_c))
     basis = MapBasis(batch, grid.size, k, energy, block, kind="emission", columns=names)
     basis._fused = fused
+    return basis
+
+
+def _branch_names(k: int) -> tuple[str, ...]:
+    return ("lower", "upper") if k == 2 else ("lower", "middle", "upper") if k == 3 else tuple(
+        f"branch{i}" for i in range(k))
+
+
+def emission_basis_from_poles(poles: NDArray, residues: NDArray, energy_ev: NDArray, *,
+                              batch: tuple[int, ...] | None = None) -> MapBasis:
+    """The emission basis of :func:`emission_basis` from its branch poles and photon residues.
+
+    For callers that compute the poles themselves (a compiled kernel of the same formulas);
+    no exciton disorder.  ``poles`` and ``residues`` are complex, shape ``(W, A, K)``,
+    ``energy_ev`` the 1-D energy axis (eV); ``batch`` the batch shape (default ``(W,)``).
+    """
+    energy = np.asarray(energy_ev, dtype=float)
+    k = poles.shape[-1]
+    coefficients = _lorentz_coefficients(poles, residues)
+    basis = MapBasis(batch if batch is not None else (poles.shape[0],), poles.shape[1], k,
+                     energy, _lorentz_block(energy, *coefficients), kind="emission",
+                     columns=_branch_names(k))
+    basis._fused = ("lorentz", (energy, *coefficients))
     return basis
 
 

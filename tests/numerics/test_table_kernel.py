@@ -542,6 +542,31 @@ def test_domain_errors_are_the_same_on_both_paths(axis, name, value, field, swit
     switch(True)
     chi2, outside = _table_kernels.two_mode_table_chi2(theta, *problem._t_fused)
     assert outside == 1 and np.isnan(chi2[5]) and np.all(np.isfinite(np.delete(chi2, 5)))
+    # the whole-map likelihood refuses the same walker with the same words on both paths
+    refusals = []
+    for flag in (True, False):
+        switch(flag)
+        with pytest.raises(DataError) as info:
+            problem.log_likelihood(theta)
+        refusals.append(str(info.value))
+    assert refusals[0] == refusals[1] and f"field '{field}'" in refusals[0]
+
+
+@pytest.mark.parametrize("axis", ["angle", "k"])
+def test_whole_map_likelihood_is_the_same_with_compiled_poles(axis, switch):
+    # common practice, no published source: the compiled one-exciton poles and residues
+    # (the closed forms, checked against numpy below) feed the same emission basis, so the
+    # whole-map log-likelihood agrees with the numpy path to rounding
+    problem, x_true = invented_problem(1, "emission", 2, seed=31, axis=axis)
+    theta = spread_walkers(x_true, problem.space, 16, 1e-3, seed=4)
+    switch(True)
+    assert problem._whole_map_compiled()
+    compiled = problem.log_likelihood(theta)
+    switch(False)
+    assert not problem._whole_map_compiled()
+    plain = problem.log_likelihood(theta)
+    assert np.all(np.isfinite(plain))
+    np.testing.assert_allclose(compiled, plain, rtol=REL, atol=0)
 
 
 # -- poles and residues against the numpy closed forms ----------------------------------

@@ -111,6 +111,7 @@ class DispersionProblem:
                            f"{self.coupling!r} with {self.n_excitons} excitons.")
         self.set_noise(self.inv_var, self.noise_note)
         self._idx = {n: i for i, n in enumerate(self.space.names)}
+        self._wm_two_mode = None
         if self.table is not None:
             (_, _, self._te, self._tde, self._tw, self._tdw, self._tfound) = table_arrays(
                 self.table
@@ -154,14 +155,17 @@ class DispersionProblem:
         ``g = 0.5 * 1e-3 * rabi`` eV, linewidths in meV -> eV; no Rabi column: ``g = 0``),
         the axis terms ``sin^2(angle)`` or ``hbar c k`` and the table side.
         """
+        return (*self._two_mode_map(), self._t_operands)
+
+    def _two_mode_map(self) -> tuple:
+        """How the one-exciton kernels read the physics from ``theta``, and the axis terms."""
         idx = self._idx
         rabi = idx.get("rabi_splitting", -1)
         parameters = _table_kernels.parameter_map(
             [idx["cavity_energy"], idx["n_eff"], idx["exciton_energy"], rabi,
              idx["cavity_linewidth"], idx["exciton_linewidth"]],
             [1.0, 1.0, 1.0, 0.5 * MEV, MEV, MEV], len(self.space.names))
-        return (parameters, _table_kernels.in_plane_terms(self.in_plane, self.axis),
-                self._t_operands)
+        return parameters, _table_kernels.in_plane_terms(self.in_plane, self.axis)
 
     def set_noise(self, inv_var: np.ndarray, note: str = "") -> None:
         """Set the inverse variance per pixel and precompute the data side of the projection."""
@@ -231,6 +235,10 @@ class DispersionProblem:
 
     # -- whole map ----------------------------------------------------------------
     def basis(self, theta: np.ndarray):
+        if self._whole_map_compiled():
+            basis = self._compiled_basis(np.atleast_2d(np.asarray(theta, dtype=float)))
+            if basis is not None:
+                return basis
         p = self.physics(theta)
         kappa = None
         if self.kind == "reflectance":
@@ -243,6 +251,34 @@ class DispersionProblem:
         if kappa is not None:
             return spectral.reflectance_basis(self.in_plane, self.energy, kappa=kappa, **p)
         return spectral.emission_basis(self.in_plane, self.energy, **p)
+
+    def _whole_map_compiled(self) -> bool:
+        """True if the emission basis of one strongly coupled exciton takes compiled poles."""
+        return (self.kind != "reflectance" and self.coupling != "weak"
+                and self.n_excitons == 1 and _kernels.enabled())
+
+    def _compiled_basis(self, theta: np.ndarray):
+        """The emission basis from the compiled one-exciton poles, or None outside the domain.
+
+        :func:`polkit.numerics.table_kernels.two_mode_poles` computes the cavity energy, the
+        closed-form poles and the photon residues of :func:`polkit.models.spectral.branch_poles`
+        in one call (the same formulas; agreement to rounding is tested).  A walker outside
+        the model's domain (``g < 0``, a level or width ``<= 0``, ``n_eff <= max |sin|``, or
+        NaN) returns None, so the numpy path runs and names the offending parameter.
+        """
+        if self._wm_two_mode is None:  # once per fit
+            self._wm_two_mode = self._two_mode_map()
+        parameters, axis_terms = self._wm_two_mode
+        columns, scales, _ = parameters
+        values = np.where(columns >= 0, theta[:, np.maximum(columns, 0)], 0.0) * scales
+        e_c0, n_eff, e_x, g, gamma_c, gamma_x = values.T
+        with np.errstate(invalid="ignore"):
+            inside = ((e_c0 > 0) & (n_eff > axis_terms[2]) & (e_x > 0) & (g >= 0)
+                      & (gamma_c > 0) & (gamma_x > 0))
+        if not inside.all():
+            return None
+        poles, residues = _table_kernels.two_mode_poles(theta, parameters, axis_terms)
+        return spectral.emission_basis_from_poles(poles, residues, self.energy)
 
     def log_likelihood(self, theta: np.ndarray) -> np.ndarray:
         """Whole-map Gaussian log-likelihood (up to a constant), shape ``(W,)``.
