@@ -32,6 +32,7 @@ from polkit.jobs.dispersion.run import prepare_dispersion
 from polkit.models import spectral
 from polkit.models.dispersion import cavity_energy, two_mode_eigenvalues
 from polkit.models.green import photon_green
+from polkit.models.simulate import simulate_map
 from polkit.numerics import kernels as _kernels
 from polkit.numerics import table_kernels as _table_kernels
 
@@ -558,6 +559,13 @@ def test_whole_map_likelihood_is_the_same_with_compiled_poles(axis, switch):
     # (the closed forms, checked against numpy below) feed the same emission basis, so the
     # whole-map log-likelihood agrees with the numpy path to rounding
     problem, x_true = invented_problem(1, "emission", 2, seed=31, axis=axis)
+    # a map to fit: both branches at the truth plus a background, with Gaussian noise
+    physics = {k: v for k, v in problem.physics(x_true).items() if k != "axis"}
+    mean = simulate_map(problem.in_plane, problem.energy, amplitudes=[1.0, 0.4],
+                        background=0.02, axis=axis, **physics).signal[0]
+    sigma = 0.01 * mean.max()
+    problem.y = mean + sigma * np.random.default_rng(8).standard_normal(mean.shape)
+    problem.set_noise(np.full(mean.shape, sigma ** -2))
     theta = spread_walkers(x_true, problem.space, 16, 1e-3, seed=4)
     switch(True)
     assert problem._whole_map_compiled()
