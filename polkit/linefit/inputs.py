@@ -116,7 +116,8 @@ def select_window(da: xr.DataArray, dim: str, window, path, key: str,
 
 def check_min_snr(min_snr) -> None:
     """Refuse a detection threshold that is not a positive finite number."""
-    if not (isinstance(min_snr, (int, float)) and math.isfinite(min_snr) and min_snr > 0):
+    if isinstance(min_snr, bool) or not (isinstance(min_snr, (int, float))
+                                         and math.isfinite(min_snr) and min_snr > 0):
         raise ConfigError(f"expected a positive number, found {min_snr!r}", key="min_snr")
 
 

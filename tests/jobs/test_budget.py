@@ -220,6 +220,17 @@ def test_exciton_route_matches_polariton_constant(tmp_path):
     np.testing.assert_allclose(b.draws("interaction_constant"), 1.0, rtol=1e-12)
 
 
+@pytest.mark.parametrize("wells", [0, 2.5, -1, True, "2"])
+def test_exciton_route_refuses_a_recorded_well_count_that_is_not_whole(tmp_path, wells):
+    # common practice, no published source: N in g_X |X|^4 / N counts quantum wells, a whole
+    # number >= 1; a recorded 0 or 2.5 must not be replaced by a guess
+    disp = _dispersion(tmp_path / "disp", [0.1, 0.2], [1.6, 1.6], x2=0.5)
+    exc = _power(tmp_path / "exc", [8.0, 8.0], name="exciton_interaction_constant",
+                 provenance={"n_wells": wells})
+    with pytest.raises(DataError, match="whole number of wells"):
+        energy_budget(disp, exc, _device(), seed=3, n_draws=2, interaction="exciton")
+
+
 # -- propagation --------------------------------------------------------------------------------
 
 

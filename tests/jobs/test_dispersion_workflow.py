@@ -283,3 +283,14 @@ def test_the_callers_gate_reaches_the_run():
     r = fit_dispersion(da, peaks_only=True, seed=3, sampler=strict, figures=False)
     targets = r.diagnostics["ess_target"]
     assert targets["rabi_splitting"] == pytest.approx(1500.0), targets
+
+
+def test_loader_options_with_a_map_in_memory_are_refused_not_ignored():
+    # common practice, no published source: an option that cannot act (the map was read
+    # already) is refused with its fix, so a user never believes it was applied
+    from polkit.data import LoadOptions
+
+    da = _simulated(GAAS, seed=21)
+    with pytest.raises(ConfigError, match="wavelength_medium apply when reading a file"):
+        fit_dispersion(da, peaks_only=True, seed=3, sampler=QUIET,
+                       load=LoadOptions(wavelength_medium="air"))

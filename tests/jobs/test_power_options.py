@@ -48,9 +48,14 @@ def test_sample_constants_travel_in_the_calibration_and_are_checked():
     assert setup.options == {"n_wells": 2, "exciton_binding_meV": 10.0, "bohr_radius_nm": 10.0,
                              "reservoir_lifetime": (50.0, 0.1)}
     assert setup.calibration is not None and setup.spot == "point"
-    with pytest.raises(ConfigError, match="quantum wells") as info:
-        prepare_power(_series(), model="reservoir", calibration=PowerCalibration(n_wells=0))
-    assert info.value.key == "n_wells"
+    for wells in (0, True, 2.5):  # True is not one well: a flag passed by mistake
+        with pytest.raises(ConfigError, match="quantum wells") as info:
+            prepare_power(_series(), model="reservoir",
+                          calibration=PowerCalibration(n_wells=wells))
+        assert info.value.key == "n_wells"
+    with pytest.raises(ConfigError, match="lifetime in ps"):
+        prepare_power(_series(), model="reservoir",
+                      calibration=PowerCalibration(reservoir_lifetime_ps=(True, 0.0)))
     with pytest.raises(ConfigError, match="lifetime in ps") as info:
         prepare_power(_series(), model="reservoir",
                       calibration=PowerCalibration(reservoir_lifetime_ps=-1.0))

@@ -254,8 +254,9 @@ def test_sampler_settings_the_survey_would_not_use_are_refused(tmp_path):
     path.write_text("file,x [mm],y [mm]\na.nc,1,2\n")
     with pytest.raises(ConfigError, match="found n_walkers set"):
         run_survey(path, out=tmp_path / "out", sampler=SamplerSettings(n_walkers=64))
-    with pytest.raises(ConfigError, match="expected max_steps >= 1; found 0"):
-        run_survey(path, out=tmp_path / "out", sampler={"max_steps": 0, "progress": False})
+    for bad in (0, "many", 2.5):
+        with pytest.raises(ConfigError, match=f"max_steps >= 1; found {bad!r}"):
+            run_survey(path, out=tmp_path / "out", sampler={"max_steps": bad, "progress": False})
     assert not (tmp_path / "out").exists()
 
 
@@ -312,3 +313,15 @@ def test_embedded_cluster_listens_on_loopback_without_dashboard(monkeypatch):
     assert seen["host"] == "127.0.0.1" and seen["dashboard_address"] is None
     assert seen["closed"] and os.path.isdir(seen["local_directory"])
     assert "0.0.0.0" not in json.dumps({k: str(v) for k, v in seen.items()})
+
+
+@pytest.mark.parametrize("state", ['{"format": 1, "mode": "quick", "model": "two"}',
+                                   '{"format": 1, "seed_entropy": "not a number"}', "[1, 2]"])
+def test_a_state_file_without_a_readable_seed_is_refused_by_name(tmp_path, state):
+    # common practice, no published source: a damaged survey_state.json is named with its
+    # fix, never a bare KeyError, and never silently replaced by a fresh seed
+    from polkit.jobs.survey.state import open_state
+
+    (tmp_path / "survey_state.json").write_text(state, encoding="utf-8")
+    with pytest.raises(ConfigError, match="survey_state.json is unreadable"):
+        open_state(tmp_path, "quick", "two", None, None)

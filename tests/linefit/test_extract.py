@@ -325,6 +325,9 @@ def test_bad_options_are_refused():
         peak_table(da, profile="gauss")
     with pytest.raises(ConfigError, match="energy_window"):
         peak_table(da, energy_window=(1.62, 1.58))
+    for bad in (True, 0.0, float("nan")):  # a flag is not a threshold of 1
+        with pytest.raises(ConfigError, match="min_snr"):
+            peak_table(da, min_snr=bad)
     with pytest.raises(DataError, match="energy_window"):
         peak_table(da, energy_window=(1.70, 1.80))
     with pytest.raises(DataError, match="gain"):

@@ -125,9 +125,13 @@ def joint_draws(fits: Fits, dev: Device, n: int, rng: np.random.Generator, *,
 
 def _polariton_constant(inputs: dict[str, BudgetInput], fits: Fits) -> BudgetInput:
     """``g_LP = g_X |X|^4 / N`` per draw, N the ``n_wells`` the power result recorded."""
-    wells = fits.power.provenance.get("n_wells") or 1
-    if isinstance(wells, bool) or not isinstance(wells, (int, float)) or wells < 1:
-        raise DataError(f"expected a whole number of wells >= 1, found {wells!r}",
+    wells = fits.power.provenance.get("n_wells")
+    if wells is None:  # not recorded: per mode
+        wells = 1
+    whole = isinstance(wells, int) or (isinstance(wells, float) and wells.is_integer())
+    if isinstance(wells, bool) or not whole or wells < 1:
+        raise DataError(f"expected a whole number of wells >= 1, found {wells!r}. Fix: refit "
+                        "the power series with the sample's number of quantum wells",
                         path=fits.power_where, field="n_wells")
     g_x = inputs["exciton_interaction_constant"].values
     g_lp = g_x * inputs["exciton_fraction_k0"].values ** 2 / wells

@@ -28,7 +28,7 @@ import numpy as np
 import xarray as xr
 
 from polkit.config.priors import apply_priors
-from polkit.errors import DataError
+from polkit.errors import ConfigError, DataError
 from polkit.files import file_sha256
 from polkit.inference import LogPosterior, MapResult, ParameterSpace, find_map
 from polkit.jobs.dispersion.noise import calibrate_noise, noise_inverse_variance
@@ -171,6 +171,12 @@ def _load(source, load: LoadOptions):
     if load.wavelength_medium is not None:
         opts["wavelength_medium"] = load.wavelength_medium
     if isinstance(source, xr.DataArray):
+        if opts:  # a map in memory was read already: these would be silently ignored
+            raise ConfigError(
+                f"loader options {', '.join(sorted(opts))} apply when reading a file; this "
+                "map is already in memory. Fix: read the file with polkit.load_map(path, "
+                "...) and those options, or leave them out",
+                key="load options")
         da = data.validate_map(source)
         sha, name = _array_sha256(da), da.attrs.get("source", "<in memory>")
     else:

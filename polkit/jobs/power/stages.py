@@ -223,7 +223,8 @@ def _check_options(model, physics: PowerCalibration):
     if model not in MODELS:
         raise ConfigError(f"expected model 'coherent' or 'reservoir', found {model!r}",
                           key="model")
-    if n_wells is not None and not (isinstance(n_wells, (int, np.integer)) and n_wells >= 1):
+    if n_wells is not None and (isinstance(n_wells, bool) or not (
+            isinstance(n_wells, (int, np.integer)) and n_wells >= 1)):
         raise ConfigError(f"expected a whole number of quantum wells >= 1, found {n_wells!r}",
                           key="n_wells")
     if exciton_binding_meV is not None and bohr_radius_nm is not None:
@@ -235,7 +236,8 @@ def _check_options(model, physics: PowerCalibration):
         return None
     value = reservoir_lifetime_ps
     pair = tuple(value) if isinstance(value, (tuple, list)) else (value, 0.0)
-    if len(pair) != 2 or not all(isinstance(v, (int, float)) for v in pair) or not (
+    if len(pair) != 2 or not all(isinstance(v, (int, float)) and not isinstance(v, bool)
+                                 for v in pair) or not (
             pair[0] > 0 and pair[1] >= 0):
         raise ConfigError(
             f"expected a lifetime in ps > 0, or (value_ps, relative_error), found {value!r}",

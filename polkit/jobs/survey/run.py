@@ -209,8 +209,10 @@ def _check_options(mode, model, workers, scheduler, max_steps, surface_degree) -
             "cluster decides. Fix: pass one of them",
             key="workers",
         )
-    if max_steps is not None and (isinstance(max_steps, bool) or int(max_steps) < 1):
-        raise ConfigError(f"expected max_steps >= 1; found {max_steps!r}", key="max_steps")
+    if max_steps is not None and (not isinstance(max_steps, (int, np.integer))
+                                  or isinstance(max_steps, bool) or max_steps < 1):
+        raise ConfigError(f"expected a whole number max_steps >= 1; found {max_steps!r}",
+                          key="max_steps")
     if surface_degree not in SURFACE_TERMS:
         raise ConfigError(f"expected surface_degree 1 or 2; found {surface_degree!r}",
                           key="surface_degree")

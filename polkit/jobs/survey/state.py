@@ -39,7 +39,7 @@ def open_state(out: Path, mode: str, model: str, seed, priors_key) -> np.random.
     """
     path = out / STATE_FILE
     old = read_json(path) if path.exists() else None
-    if path.exists() and old is None:
+    if path.exists() and not _readable(old):
         raise ConfigError(
             f"{STATE_FILE} is unreadable; expected the JSON written by run_survey. Fix: "
             "choose a new output folder, or delete the file to start the survey afresh",
@@ -59,6 +59,16 @@ def open_state(out: Path, mode: str, model: str, seed, priors_key) -> np.random.
         "created": datetime.now(UTC).isoformat(timespec="seconds"),
     })
     return root
+
+
+def _readable(state) -> bool:
+    """True for a state dict as run_survey writes it (its root seed readable)."""
+    try:
+        int(state["seed_entropy"])
+        [int(k) for k in state.get("seed_spawn_key", [])]
+    except (TypeError, KeyError, ValueError):
+        return False
+    return isinstance(state, dict)
 
 
 def _continue_state(path: Path, old: dict, mode: str, model: str, seed,
