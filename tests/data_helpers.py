@@ -116,3 +116,14 @@ def write_matrix(
         lines.append(delimiter.join([repr(float(r))] + [repr(float(v)) for v in row]))
     with open(path, "w", encoding="utf-8", newline="") as fh:
         fh.write(newline.join(lines) + newline)
+
+
+def calibration_dict() -> dict:
+    """A valid density calibration as a dict (cw drive, invented numbers)."""
+    return {
+        "drive": "cw",
+        "spot_fwhm": {"value": 2.0, "units": "um"},
+        "photon_energy": {"value": 1.6, "units": "eV"},
+        "coupling_efficiency": {"value": 0.5, "units": "1"},
+        "polariton_lifetime": {"value": 10.0, "units": "ps"},
+    }

@@ -27,6 +27,7 @@ from dataclasses import dataclass
 import numpy as np
 import tmm
 from scipy import constants
+from scipy.optimize import minimize_scalar
 
 #: h c in eV nm from CODATA (kept local: the reference must not lean on polkit)
 HC_EV_NM = constants.h * constants.c / constants.e * 1e9
@@ -143,3 +144,22 @@ def strong_coupling_cavity(**overrides) -> Microcavity:
     base = {"qw_strength_ev2": 0.02}
     base.update(overrides)
     return Microcavity(**base)
+
+
+# The strongly coupled cavity of the cross-check: Bragg (cavity) energy 4 meV below the
+# exciton, so that the anticrossing sits near 13 degrees (invented numbers).
+CAVITY = strong_coupling_cavity(qw_strength_ev2=0.4, design_energy_ev=1.526)
+
+
+def reflectance_dips(cavity: Microcavity, angle: float, lo=1.520, hi=1.540, step=2e-4):
+    """Local minima of R(E) at one angle: coarse scan, then a bounded 1-D refinement."""
+    energies = np.arange(lo, hi, step)
+    r = np.array([reflectance(cavity, angle, e) for e in energies])
+    found = []
+    for i in range(1, energies.size - 1):
+        if r[i] < r[i - 1] and r[i] <= r[i + 1]:
+            res = minimize_scalar(lambda e: reflectance(cavity, angle, e),
+                                  bounds=(energies[i - 1], energies[i + 1]), method="bounded",
+                                  options={"xatol": 1e-9})
+            found.append(res.x)
+    return np.array(found)

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import pytest
+from data_helpers import calibration_dict
 
 from polkit.config.calibration import load_calibration
 from polkit.errors import ConfigError
@@ -20,14 +21,6 @@ repetition_rate = {value = 80.0, units = "MHz"}
 """
 
 
-def _good_dict():
-    return {
-        "drive": "cw",
-        "spot_fwhm": {"value": 2.0, "units": "um"},
-        "photon_energy": {"value": 1.6, "units": "eV"},
-        "coupling_efficiency": {"value": 0.5, "units": "1"},
-        "polariton_lifetime": {"value": 10.0, "units": "ps"},
-    }
 
 
 def test_toml_file_loads_with_unit_conversion(tmp_path):
@@ -75,7 +68,7 @@ def test_toml_file_loads_with_unit_conversion(tmp_path):
     ],
 )
 def test_bad_calibrations_raise_config_error_naming_the_key(change, key, message):
-    raw = _good_dict()
+    raw = calibration_dict()
     raw.update(change)
     with pytest.raises(ConfigError, match=message) as info:
         load_calibration(raw)
@@ -84,7 +77,7 @@ def test_bad_calibrations_raise_config_error_naming_the_key(change, key, message
 
 
 def test_missing_required_keys_and_bad_files(tmp_path):
-    raw = _good_dict()
+    raw = calibration_dict()
     del raw["photon_energy"]
     with pytest.raises(ConfigError, match="key 'photon_energy': missing"):
         load_calibration(raw)
@@ -95,7 +88,7 @@ def test_missing_required_keys_and_bad_files(tmp_path):
     assert info.value.path == str(bad)
     with pytest.raises(ConfigError, match="not found"):
         load_calibration(tmp_path / "absent.toml")
-    raw = _good_dict()
+    raw = calibration_dict()
     del raw["polariton_lifetime"]
     with pytest.raises(ConfigError, match="polariton_lifetime"):
         load_calibration(raw).density(1.0)
@@ -113,6 +106,6 @@ def test_a_power_fits_calibration_file_may_name_the_pump_spot(tmp_path):
     assert spot == "flat" and cal.drive == "cw"
     assert info["calibration"]["spot"] == "flat"
     assert info["calibration_file"] == str(path) and len(info["calibration_sha256"]) == 64
-    cal, info, spot = read_calibration(_good_dict())  # no spot key: none named
+    cal, info, spot = read_calibration(calibration_dict())  # no spot key: none named
     assert spot is None and "calibration_file" not in info
     assert read_calibration(None) == (None, {}, None)

@@ -150,7 +150,7 @@ def test_transfer_matrix_reflectance_gives_the_dip_splitting(tmp_path):
     # (dip positions of a lossy reflectance differ from branch energies by a few percent
     # of the splitting; common practice, no published tolerance).
     tmm_reference = pytest.importorskip("tmm_reference")
-    from test_transfer_matrix import CAVITY, reflectance_dips
+    CAVITY, reflectance_dips = tmm_reference.CAVITY, tmm_reference.reflectance_dips
 
     angles = np.linspace(0.0, 21.0, 11)
     energies = np.linspace(1.5225, 1.5375, 150)

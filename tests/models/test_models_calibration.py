@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from data_helpers import calibration_dict
 from scipy import constants
 from scipy.integrate import quad
 
@@ -17,16 +18,6 @@ from polkit.models.calibration import (
     photon_flux,
     pulsed_density,
 )
-
-
-def _good_dict():
-    return {
-        "drive": "cw",
-        "spot_fwhm": {"value": 2.0, "units": "um"},
-        "photon_energy": {"value": 1.6, "units": "eV"},
-        "coupling_efficiency": {"value": 0.5, "units": "1"},
-        "polariton_lifetime": {"value": 10.0, "units": "ps"},
-    }
 
 
 @pytest.mark.parametrize("fwhm", [0.7, 2.0, 25.0])
@@ -56,7 +47,7 @@ def test_hand_worked_cw_and_pulsed_densities():
     assert photon_flux(1.0, 1.6) == pytest.approx(3900.943, rel=1e-6)
     assert cw_density(1.0, 1.6, area, 0.5, 10.0) == pytest.approx(4303.435, rel=1e-6)
     assert pulsed_density(1.0, 1.6, area, 0.5, 80.0) == pytest.approx(5.379293e6, rel=1e-6)
-    cal = load_calibration(_good_dict())
+    cal = load_calibration(calibration_dict())
     assert cal.density(1.0) == pytest.approx(4303.435, rel=1e-6)
     # Source: CODATA via scipy.constants
     assert constants.e == 1.602176634e-19
@@ -102,7 +93,7 @@ def test_draws_follow_the_log_normal_priors_and_respect_efficiency_bound():
 def test_exact_input_and_generator_check():
     q = UncertainInput(value=2.5, sigma_log=0.0, units="ps")
     np.testing.assert_array_equal(q.draw(np.random.default_rng(1), 4), 2.5)
-    cal = load_calibration(_good_dict())
+    cal = load_calibration(calibration_dict())
     assert isinstance(cal, DensityCalibration)
     with pytest.raises(ConfigError, match="Generator"):
         cal.draw(42, 10)

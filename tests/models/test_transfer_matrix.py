@@ -12,14 +12,13 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import tmm
-from scipy.optimize import brentq, least_squares, minimize, minimize_scalar
+from scipy.optimize import brentq, least_squares, minimize
 from tmm_reference import (
+    CAVITY,
     HC_EV_NM,
-    Microcavity,
     dbr_layers,
-    reflectance,
+    reflectance_dips,
     reflectance_map,
-    strong_coupling_cavity,
 )
 
 from polkit.models.dispersion import cavity_energy, two_mode_eigenvalues
@@ -30,9 +29,6 @@ N_HIGH, N_LOW, N_SUB = 3.5, 2.95, 3.5  # GaAs/AlAs-like indices, value from memo
 E_BRAGG = 1.530  # eV, invented
 LAM_BRAGG = HC_EV_NM / E_BRAGG
 
-# The strongly coupled cavity of the cross-check: Bragg (cavity) energy 4 meV below the
-# exciton, so that the anticrossing sits near 13 degrees (invented numbers).
-CAVITY = strong_coupling_cavity(qw_strength_ev2=0.4, design_energy_ev=1.526)
 
 
 def dbr_reflectance(pairs: int, energy_ev: float, *, outside: float = 1.0,
@@ -78,20 +74,6 @@ def test_dbr_stop_band_matches_macleod():
     lower = brentq(lambda e: xi2(e) - 1.0, 0.8 * E_BRAGG, E_BRAGG, xtol=1e-13)
     expected = 4 / np.pi * np.arcsin((N_HIGH - N_LOW) / (N_HIGH + N_LOW))
     assert (upper - lower) / E_BRAGG == pytest.approx(expected, rel=1e-8)
-
-
-def reflectance_dips(cavity: Microcavity, angle: float, lo=1.520, hi=1.540, step=2e-4):
-    """Local minima of R(E) at one angle: coarse scan, then a bounded 1-D refinement."""
-    energies = np.arange(lo, hi, step)
-    r = np.array([reflectance(cavity, angle, e) for e in energies])
-    found = []
-    for i in range(1, energies.size - 1):
-        if r[i] < r[i - 1] and r[i] <= r[i + 1]:
-            res = minimize_scalar(lambda e: reflectance(cavity, angle, e),
-                                  bounds=(energies[i - 1], energies[i + 1]), method="bounded",
-                                  options={"xatol": 1e-9})
-            found.append(res.x)
-    return np.array(found)
 
 
 @pytest.fixture(scope="module")
