@@ -202,7 +202,10 @@ def test_hidden_upper_branch_recovered_from_a_misleading_start(hidden_map, monke
                                     sampler=SamplerSettings(max_steps=1000, progress=False))
     s = _check_recovery(fit, truth)
     modes = s["diagnostics"]["mode_search"]["modes"]
-    assert modes[0]["sampled"] and modes[0]["origin"].startswith("design point")
+    # the sampled mode is one the global search found (its Sobol design or its branch grid;
+    # which of the two gets there first depends on rounding), not the misleading start
+    assert modes[0]["sampled"]
+    assert modes[0]["origin"].startswith(("design point", "branch grid point")), modes[0]
     assert any(m["origin"] == "usual start" for m in modes)
     worse = [m for m in modes if m["origin"] == "usual start"][0]
     assert worse["log_posterior"] < modes[0]["log_posterior"] - 100.0
