@@ -290,3 +290,21 @@ def test_cli_compare_marks_an_unconverged_comparison(tmp_path, capsys):
     assert "elpd_loo" in out and "nat" in out
     saved = json.loads((tmp_path / "cmp" / COMPARISON_FILE).read_text())
     assert saved["converged"] is False
+
+
+def test_a_comparison_resumed_with_other_camera_steps_is_refused(tmp_path):
+    # common practice, no published source: the camera steps decide which pixels are fitted,
+    # so a chain drawn under one set must not be continued under another
+    from polkit.data import CameraOptions, ExcludeWindow, LoadOptions
+    from polkit.inference.identity import CheckpointMismatch
+
+    da = _strong_map()
+    masked = LoadOptions(camera=CameraOptions(exclude=(ExcludeWindow((1.5330, 1.5345)),)))
+    short = SamplerSettings(max_steps=200, min_steps=200, progress=False)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        compare_models(da, models=("weak", "two"), seed=7, sampler=short, load=masked,
+                       out=tmp_path)
+        with pytest.raises(CheckpointMismatch, match="preprocessing"):
+            compare_models(da, models=("weak", "two"), seed=7, sampler=short, out=tmp_path,
+                           resume=True)

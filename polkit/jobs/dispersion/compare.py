@@ -69,6 +69,7 @@ from polkit.jobs.dispersion.problem import MODELS, DispersionProblem
 from polkit.jobs.dispersion.run import (
     DEFAULT_STEPS,
     build_dispersion_result,
+    camera_provenance,
     prepare_dispersion,
 )
 from polkit.jobs.dispersion.stages import (
@@ -317,6 +318,8 @@ def compare_models(
                     angle_window=load.angle_window, energy_window=load.energy_window,
                     load_options=loader_changes(load) or None, models=list(models))
     prepared = _prepared_models(source, models, priors, load)
+    # what the camera steps masked decides the posterior too (a resume must see the same)
+    settings["camera"] = camera_provenance(prepared[models[0]][1])
     # modes, then one noise model from the reference model's mode, shared by all
     modes = _cross_started_modes(prepared)
     reference, ref_problem, noise_note = _shared_noise(prepared, modes, models)

@@ -266,7 +266,7 @@ def _model_check(problem: DispersionProblem, output: SamplerOutput,
     return check
 
 
-def _camera_provenance(begin: DispersionStart) -> dict[str, Any]:
+def camera_provenance(begin: DispersionStart) -> dict[str, Any]:
     """What the camera steps masked (from the map's ``preprocessing`` JSON) and min_snr."""
     from polkit.data.camera import preprocessing_record
 
@@ -311,7 +311,7 @@ def _fit_identity(model: str, begin: DispersionStart, route: _Route, load: LoadO
                         dict(angle_window=load.angle_window, energy_window=load.energy_window,
                              profile=profile, wavelength_medium=load.wavelength_medium,
                              load_options=loader_changes(load) or None,
-                             camera=_camera_provenance(begin)))
+                             camera=camera_provenance(begin)))
 
 
 def _sampled_result(problem: DispersionProblem, begin: DispersionStart, route: _Route,
@@ -323,7 +323,7 @@ def _sampled_result(problem: DispersionProblem, begin: DispersionStart, route: _
         output = add_caveats(output, [PEAK_TABLE_COVERAGE])
     result = build_dispersion_result(problem, output, begin.source, path=route.path,
                                      noise_note=route.noise_note, profile=profile,
-                                     table=begin.table, provenance=_camera_provenance(begin))
+                                     table=begin.table, provenance=camera_provenance(begin))
     if route.search is not None:
         result = weigh_strong_coupling(result, route.search, problem)
     return result
