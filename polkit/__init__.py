@@ -34,6 +34,7 @@ _LAZY = {
     "SamplerSettings": "polkit.inference.settings",
     "GateSettings": "polkit.inference.settings",
     "LoadOptions": "polkit.data.options",
+    "PowerCalibration": "polkit.jobs.power.options",
 }
 
 __all__ = ["__version__", *_LAZY, *_ERRORS]

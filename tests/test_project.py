@@ -55,3 +55,15 @@ def test_read_only_folder_gives_clear_error(tmp_path):
         assert (folder / "old.json").read_text() == "{}"
     finally:
         folder.chmod(0o700)
+
+
+def test_the_main_verbs_and_settings_are_importable_from_polkit():
+    # common practice, no published source: every public name of the package resolves, and
+    # the verbs a user starts from are among them
+    import polkit
+
+    for name in polkit.__all__:
+        assert getattr(polkit, name) is not None, name
+    assert {"load_map", "load_series", "fit_dispersion", "compare_models", "fit_power",
+            "energy_budget", "run_survey", "FitResult", "SamplerSettings", "LoadOptions",
+            "PowerCalibration", "DataError", "ConfigError", "FitError"} <= set(polkit.__all__)
