@@ -172,7 +172,7 @@ def parse_params(items: list[str] | tuple[str, ...]) -> dict[str, Any]:
 # --------------------------------------------------------------------------------------
 def _versions() -> dict[str, str]:
     from polkit import __version__
-    from polkit.inference.result import library_versions
+    from polkit.provenance import library_versions
 
     return {"polkit": __version__, **library_versions(_LIBRARIES)}
 

@@ -39,7 +39,6 @@ import os
 import platform
 from collections.abc import Mapping
 from datetime import UTC, datetime
-from importlib import metadata
 from pathlib import Path
 from typing import Any, NoReturn
 
@@ -51,6 +50,7 @@ from polkit.errors import ConfigError, DataError
 from polkit.files import json_safe, write_json, write_netcdf
 from polkit.inference.output import SamplerOutput
 from polkit.inference.priors import ParameterSpace
+from polkit.provenance import library_versions
 
 __all__ = ["FitResult", "POSTERIOR_FILE", "SUMMARY_FILE"]
 
@@ -83,19 +83,8 @@ def _attr_value(key: str, value: Any):
         ) from None
 
 
-def library_versions(names=_LIBRARIES) -> dict[str, str]:
-    """The installed version of each named library ("not installed" where it is missing)."""
-    out = {}
-    for name in names:
-        try:
-            out[name] = metadata.version(name)
-        except metadata.PackageNotFoundError:
-            out[name] = "not installed"
-    return out
-
-
 def _library_versions() -> dict[str, str]:
-    return {"python": platform.python_version(), **library_versions()}
+    return {"python": platform.python_version(), **library_versions(_LIBRARIES)}
 
 
 def _polkit_version() -> str:

@@ -219,7 +219,7 @@ def _polkit_version() -> str:
 def _library_versions() -> dict[str, str]:
     import platform
 
-    from polkit.inference.result import library_versions
+    from polkit.provenance import library_versions
 
     return {"python": platform.python_version(),
             **library_versions(("numpy", "scipy", "xarray", "h5netcdf"))}
