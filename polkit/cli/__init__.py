@@ -27,7 +27,6 @@ from polkit.cli.commands import (
     EXIT_OK,  # noqa: F401
     EXIT_WRITE,
     _one_line,
-    _print_model_check,  # noqa: F401  (tests call it as polkit.cli._print_model_check)
 )
 from polkit.cli.parser import build_parser
 from polkit.errors import ConvergenceWarning, PolkitError, PolkitWarning

@@ -76,13 +76,6 @@ class LoadOptions:
                              hint=" (a reader's own options go in reader_options={...})")
         return dataclasses.replace(base, **changes) if changes else base
 
-    def loader_kwargs(self) -> dict[str, Any]:
-        """The keyword arguments of the file loaders (without the job's windows and camera)."""
-        out = {f.name: getattr(self, f.name) for f in dataclasses.fields(self)
-               if f.name not in ("angle_window", "energy_window", "camera", "reader_options")}
-        out.update(self.reader_options)
-        return out
-
 
 #: the fields :func:`polkit.data.load_map` reads (windows and camera are a job's business)
 MAP_FIELDS = (

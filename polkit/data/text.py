@@ -15,13 +15,12 @@ from __future__ import annotations
 
 import re
 
-import numpy as np
-
 from polkit.errors import DataError
 
 __all__ = [
     "decode_text",
     "split_comments",
+    "text_lines",
     "parse_metadata",
     "parse_header_name",
     "parse_number",
@@ -169,8 +168,3 @@ def parse_number(cell: str, *, path=None, line: int | None = None, column=None) 
         path=path,
         field=str(column),
     )
-
-
-def to_float_array(cells: list[str], **where) -> np.ndarray:
-    """Parse a list of cells with :func:`parse_number`."""
-    return np.array([parse_number(c, **where) for c in cells], dtype=float)

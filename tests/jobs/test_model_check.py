@@ -140,7 +140,7 @@ def test_false_alarm_rate_on_fifty_clean_maps(tmp_path):
 
 
 def test_cli_prints_a_failed_check_and_says_so(capsys):
-    from polkit import cli
+    from polkit.cli import commands as cli
 
     check = {"passed": False, "statistic": 3.2, "threshold": THRESHOLDS["chi2_per_dof"],
              "noise_floor": "neighbour differences",

@@ -266,12 +266,13 @@ class DispersionProblem:
         the model's domain (``g < 0``, a level or width ``<= 0``, ``n_eff <= max |sin|``, or
         NaN) returns None, so the numpy path runs and names the offending parameter.
         """
-        if self._wm_two_mode is None:  # once per fit
-            self._wm_two_mode = self._two_mode_map()
-        parameters, axis_terms = self._wm_two_mode
-        columns, scales, _ = parameters
-        values = np.where(columns >= 0, theta[:, np.maximum(columns, 0)], 0.0) * scales
-        e_c0, n_eff, e_x, g, gamma_c, gamma_x = values.T
+        if self._wm_two_mode is None:  # once per fit: the map and the physics' columns
+            parameters, axis_terms = self._two_mode_map()
+            columns, scales, _ = parameters
+            self._wm_two_mode = (parameters, axis_terms, np.maximum(columns, 0),
+                                 np.where(columns >= 0, scales, 0.0))
+        parameters, axis_terms, gather, factors = self._wm_two_mode
+        e_c0, n_eff, e_x, g, gamma_c, gamma_x = (theta[:, gather] * factors).T
         with np.errstate(invalid="ignore"):
             inside = ((e_c0 > 0) & (n_eff > axis_terms[2]) & (e_x > 0) & (g >= 0)
                       & (gamma_c > 0) & (gamma_x > 0))

@@ -63,12 +63,14 @@ def open_state(out: Path, mode: str, model: str, seed, priors_key) -> np.random.
 
 def _readable(state) -> bool:
     """True for a state dict as run_survey writes it (its root seed readable)."""
+    if not isinstance(state, dict):
+        return False
     try:
         int(state["seed_entropy"])
         [int(k) for k in state.get("seed_spawn_key", [])]
     except (TypeError, KeyError, ValueError):
         return False
-    return isinstance(state, dict)
+    return True
 
 
 def _continue_state(path: Path, old: dict, mode: str, model: str, seed,
